@@ -1,0 +1,336 @@
+"""Capture: a recording's metadata plus chunked, memory-mapped access to its samples.
+
+A :class:`Capture` never holds a whole file in memory. Samples are read on demand through
+``numpy.memmap`` and converted chunk by chunk to complex64 full-scale values. Non-finite float
+samples (NaN, Inf) are erasures: they read as 0 and are counted.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from iqstat.errors import CaptureError, ParameterError
+from iqstat.formats.datatypes import DataType, convert_components, parse_datatype
+
+DEFAULT_CHUNK_SAMPLES = 1 << 20
+
+
+@dataclass(frozen=True)
+class Segment:
+    """A SigMF capture segment: a run of samples sharing centre frequency and start time.
+
+    Attributes
+    ----------
+    sample_start : int
+        Index of the segment's first sample in the recording.
+    sample_count : int
+        Samples in the segment.
+    frequency_hz : float or None
+        Centre frequency of the segment (``core:frequency``).
+    datetime : str or None
+        Time of the segment's first sample (``core:datetime``, RFC 3339).
+    byte_offset : int
+        Offset of the segment's first sample from the start of the data region, in bytes.
+    """
+
+    sample_start: int
+    sample_count: int
+    frequency_hz: float | None = None
+    datetime: str | None = None
+    byte_offset: int = 0
+
+    @property
+    def sample_stop(self) -> int:
+        return self.sample_start + self.sample_count
+
+
+@dataclass(frozen=True)
+class Annotation:
+    """A SigMF annotation kept from the recording (all its fields in ``fields``)."""
+
+    sample_start: int
+    sample_count: int | None
+    label: str | None
+    fields: dict = field(default_factory=dict, compare=False)
+
+
+class Capture:
+    """A recording opened for reading.
+
+    Use :func:`iqstat.open_capture` to open files; :meth:`from_array` wraps an array (tests,
+    notebooks). Samples are read with :meth:`read` or :meth:`iter_chunks`.
+
+    Attributes
+    ----------
+    path : Path or None
+        The data file (or archive) read.
+    name : str
+        A short name for reports.
+    sample_rate_hz : float
+    datatype : DataType
+    n_samples : int
+        Samples per channel.
+    num_channels : int
+    channel : int
+        The channel read (0-based).
+    segments : tuple of Segment
+    annotations : tuple of Annotation
+    metadata : dict
+        The ``global`` object of the SigMF metadata (empty for raw files).
+    leftover_bytes : int
+        Bytes after the last whole sample that were ignored.
+    """
+
+    def __init__(
+        self,
+        *,
+        sample_rate_hz: float,
+        datatype: DataType,
+        n_samples: int,
+        segments: tuple[Segment, ...],
+        data_path: Path | None = None,
+        data_offset: int = 0,
+        array: np.ndarray | None = None,
+        num_channels: int = 1,
+        channel: int = 0,
+        annotations: tuple[Annotation, ...] = (),
+        metadata: dict | None = None,
+        path: Path | None = None,
+        name: str = "capture",
+        leftover_bytes: int = 0,
+    ) -> None:
+        if not (sample_rate_hz > 0 and np.isfinite(sample_rate_hz)):
+            raise CaptureError(f"sample rate {sample_rate_hz!r} must be a positive number of Hz")
+        if not 0 <= channel < num_channels:
+            raise ParameterError(
+                f"channel {channel} does not exist: the recording has {num_channels} channel(s), "
+                f"choose --channel 0 to {num_channels - 1}"
+            )
+        self.sample_rate_hz = float(sample_rate_hz)
+        self.datatype = datatype
+        self.n_samples = int(n_samples)
+        self.segments = segments
+        self.num_channels = int(num_channels)
+        self.channel = int(channel)
+        self.annotations = annotations
+        self.metadata = metadata or {}
+        self.path = path
+        self.name = name
+        self.leftover_bytes = int(leftover_bytes)
+        self._data_path = data_path
+        self._data_offset = int(data_offset)
+        self._array = array
+        self._memmap: np.ndarray | None = None
+
+    # -- construction ---------------------------------------------------------------------
+    @classmethod
+    def from_array(
+        cls,
+        x: np.ndarray,
+        sample_rate_hz: float,
+        *,
+        center_frequency_hz: float | None = None,
+        name: str = "array",
+    ) -> Capture:
+        """Wrap an in-memory complex (or real) array as a capture (full-scale units)."""
+        x = np.asarray(x)
+        if x.ndim != 1:
+            raise ParameterError(f"array capture must be 1-D, got shape {x.shape}")
+        is_complex = np.iscomplexobj(x)
+        dt = parse_datatype("cf32_le" if is_complex else "rf32_le")
+        arr = x.astype(np.complex64 if is_complex else np.float32, copy=False)
+        seg = (Segment(0, len(arr), center_frequency_hz, None, 0),)
+        return cls(
+            sample_rate_hz=sample_rate_hz,
+            datatype=dt,
+            n_samples=len(arr),
+            segments=seg,
+            array=arr,
+            name=name,
+        )
+
+    # -- properties -----------------------------------------------------------------------
+    @property
+    def is_complex(self) -> bool:
+        return self.datatype.is_complex
+
+    @property
+    def duration_s(self) -> float:
+        return self.n_samples / self.sample_rate_hz
+
+    @property
+    def center_frequency_hz(self) -> float | None:
+        """Centre frequency of the first segment (None if not recorded)."""
+        return self.segments[0].frequency_hz if self.segments else None
+
+    @property
+    def start_datetime(self) -> str | None:
+        return self.segments[0].datetime if self.segments else None
+
+    def segment_of(self, sample: int) -> Segment:
+        """The segment holding sample index ``sample``."""
+        starts = [s.sample_start for s in self.segments]
+        i = int(np.searchsorted(starts, sample, side="right")) - 1
+        return self.segments[max(i, 0)]
+
+    # -- sample access --------------------------------------------------------------------
+    def _components(self) -> np.ndarray:
+        """The whole data region as a memmap of stored components (lazy, not loaded)."""
+        if self._memmap is None:
+            dt = self.datatype
+            n_bytes_used = self._region_bytes()
+            n_items = n_bytes_used // dt.component_dtype.itemsize
+            self._memmap = np.memmap(
+                self._data_path,
+                dtype=dt.component_dtype,
+                mode="r",
+                offset=self._data_offset,
+                shape=(n_items,),
+            )
+        return self._memmap
+
+    def _region_bytes(self) -> int:
+        last = self.segments[-1]
+        per_sample = self.datatype.sample_bytes * self.num_channels
+        return last.byte_offset + last.sample_count * per_sample
+
+    def read(self, start: int = 0, count: int | None = None) -> np.ndarray:
+        """Read samples ``[start, start + count)`` of the selected channel as complex64.
+
+        Real recordings are returned as complex64 with zero imaginary part (check
+        :attr:`is_complex`). Non-finite values read as 0.
+
+        Parameters
+        ----------
+        start : int
+            First sample index.
+        count : int, optional
+            Number of samples; default to the end of the recording.
+
+        Returns
+        -------
+        ndarray of complex64, shape (count,)
+        """
+        start = int(start)
+        stop = self.n_samples if count is None else min(self.n_samples, start + int(count))
+        if start < 0 or start > self.n_samples:
+            raise ParameterError(f"start sample {start} is outside the capture (0..{self.n_samples})")
+        stop = max(stop, start)
+        out = np.empty(stop - start, dtype=np.complex64)
+        self._read_into(start, stop, out)
+        return out
+
+    def _read_into(self, start: int, stop: int, out: np.ndarray) -> int:
+        """Fill ``out[:stop-start]``; returns the number of non-finite samples replaced."""
+        if self._array is not None:
+            out[: stop - start] = self._array[start:stop]
+            bad = ~np.isfinite(out[: stop - start])
+            n_bad = int(np.count_nonzero(bad))
+            if n_bad:
+                out[: stop - start][bad] = 0
+            return n_bad
+        n_bad = 0
+        pos = start
+        for seg in self.segments:
+            if pos >= stop:
+                break
+            if seg.sample_stop <= pos:
+                continue
+            a, b = pos, min(stop, seg.sample_stop)
+            n_bad += self._read_segment(seg, a, b, out[a - start : b - start])
+            pos = b
+        return n_bad
+
+    def _read_segment(self, seg: Segment, a: int, b: int, out: np.ndarray) -> int:
+        dt = self.datatype
+        comps = self._components()
+        item = dt.component_dtype.itemsize
+        per_sample_items = dt.components * self.num_channels
+        first = seg.byte_offset // item + (a - seg.sample_start) * per_sample_items
+        raw = comps[first : first + (b - a) * per_sample_items]
+        if self.num_channels > 1:
+            raw = raw.reshape(b - a, self.num_channels, dt.components)[:, self.channel, :].ravel()
+        if dt.is_complex:
+            buf = out.view(np.float32)
+            convert_components(raw, dt, out=buf)
+        else:
+            re = convert_components(raw, dt)
+            out.real = re
+            out.imag = 0
+        if dt.kind == "f":
+            bad = ~np.isfinite(out)
+            n_bad = int(np.count_nonzero(bad))
+            if n_bad:
+                out[bad] = 0
+            return n_bad
+        return 0
+
+    def iter_chunks(
+        self,
+        chunk_samples: int = DEFAULT_CHUNK_SAMPLES,
+        start: int = 0,
+        stop: int | None = None,
+    ) -> Iterator[tuple[int, np.ndarray]]:
+        """Yield ``(start_index, samples)`` chunks of complex64 over ``[start, stop)``.
+
+        The yielded array is a reused buffer: copy it if you keep it past the next iteration.
+        """
+        stop = self.n_samples if stop is None else min(int(stop), self.n_samples)
+        buf = np.empty(int(chunk_samples), dtype=np.complex64)
+        for a in range(int(start), stop, int(chunk_samples)):
+            b = min(stop, a + int(chunk_samples))
+            self._read_into(a, b, buf)
+            yield a, buf[: b - a]
+
+    def iter_chunks_counted(
+        self, chunk_samples: int = DEFAULT_CHUNK_SAMPLES
+    ) -> Iterator[tuple[int, np.ndarray, int]]:
+        """Like :meth:`iter_chunks` over the whole capture, also yielding the erasure count."""
+        buf = np.empty(int(chunk_samples), dtype=np.complex64)
+        for a in range(0, self.n_samples, int(chunk_samples)):
+            b = min(self.n_samples, a + int(chunk_samples))
+            n_bad = self._read_into(a, b, buf)
+            yield a, buf[: b - a], n_bad
+
+    def iter_raw_chunks(
+        self, chunk_samples: int = DEFAULT_CHUNK_SAMPLES
+    ) -> Iterator[tuple[int, np.ndarray]]:
+        """Yield ``(start_index, stored components)`` of the selected channel, unconverted.
+
+        Used by the facts pass to count samples at full scale in integer recordings.
+        Array-backed captures yield nothing.
+        """
+        if self._array is not None:
+            return
+        dt = self.datatype
+        comps = self._components()
+        item = dt.component_dtype.itemsize
+        per = dt.components * self.num_channels
+        for seg in self.segments:
+            for a in range(seg.sample_start, seg.sample_stop, int(chunk_samples)):
+                b = min(seg.sample_stop, a + int(chunk_samples))
+                first = seg.byte_offset // item + (a - seg.sample_start) * per
+                raw = comps[first : first + (b - a) * per]
+                if self.num_channels > 1:
+                    raw = raw.reshape(b - a, self.num_channels, dt.components)[:, self.channel, :]
+                yield a, raw.reshape(b - a, dt.components)
+
+    def close(self) -> None:
+        """Release the memory map."""
+        self._memmap = None
+
+    def __enter__(self) -> Capture:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return (
+            f"Capture({self.name!r}, {self.datatype.name}, {self.n_samples} samples, "
+            f"{self.sample_rate_hz:g} Hz)"
+        )
