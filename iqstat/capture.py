@@ -34,7 +34,8 @@ class Segment:
     datetime : str or None
         Time of the segment's first sample (``core:datetime``, RFC 3339).
     byte_offset : int
-        Offset of the segment's first sample from the start of the data region, in bytes.
+        Offset of the segment's first sample from the start of the data region (file or
+        archive member), in bytes, header bytes included.
     """
 
     sample_start: int
@@ -124,7 +125,7 @@ class Capture:
         self._data_path = data_path
         self._data_offset = int(data_offset)
         self._array = array
-        self._memmap: np.ndarray | None = None
+        self._maps: dict[int, np.ndarray] = {}
 
     # -- construction ---------------------------------------------------------------------
     @classmethod
@@ -178,25 +179,20 @@ class Capture:
         return self.segments[max(i, 0)]
 
     # -- sample access --------------------------------------------------------------------
-    def _components(self) -> np.ndarray:
-        """The whole data region as a memmap of stored components (lazy, not loaded)."""
-        if self._memmap is None:
+    def _segment_components(self, index: int) -> np.ndarray:
+        """Stored components of segment ``index`` as a read-only memmap (lazy, not loaded)."""
+        if index not in self._maps:
             dt = self.datatype
-            n_bytes_used = self._region_bytes()
-            n_items = n_bytes_used // dt.component_dtype.itemsize
-            self._memmap = np.memmap(
+            seg = self.segments[index]
+            n_items = seg.sample_count * dt.components * self.num_channels
+            self._maps[index] = np.memmap(
                 self._data_path,
                 dtype=dt.component_dtype,
                 mode="r",
-                offset=self._data_offset,
+                offset=self._data_offset + seg.byte_offset,
                 shape=(n_items,),
             )
-        return self._memmap
-
-    def _region_bytes(self) -> int:
-        last = self.segments[-1]
-        per_sample = self.datatype.sample_bytes * self.num_channels
-        return last.byte_offset + last.sample_count * per_sample
+        return self._maps[index]
 
     def read(self, start: int = 0, count: int | None = None) -> np.ndarray:
         """Read samples ``[start, start + count)`` of the selected channel as complex64.
@@ -218,7 +214,9 @@ class Capture:
         start = int(start)
         stop = self.n_samples if count is None else min(self.n_samples, start + int(count))
         if start < 0 or start > self.n_samples:
-            raise ParameterError(f"start sample {start} is outside the capture (0..{self.n_samples})")
+            raise ParameterError(
+                f"start sample {start} is outside the capture (0..{self.n_samples})"
+            )
         stop = max(stop, start)
         out = np.empty(stop - start, dtype=np.complex64)
         self._read_into(start, stop, out)
@@ -235,22 +233,22 @@ class Capture:
             return n_bad
         n_bad = 0
         pos = start
-        for seg in self.segments:
+        for i, seg in enumerate(self.segments):
             if pos >= stop:
                 break
-            if seg.sample_stop <= pos:
+            if seg.sample_stop <= pos or seg.sample_count == 0:
                 continue
             a, b = pos, min(stop, seg.sample_stop)
-            n_bad += self._read_segment(seg, a, b, out[a - start : b - start])
+            n_bad += self._read_segment(i, a, b, out[a - start : b - start])
             pos = b
         return n_bad
 
-    def _read_segment(self, seg: Segment, a: int, b: int, out: np.ndarray) -> int:
+    def _read_segment(self, index: int, a: int, b: int, out: np.ndarray) -> int:
         dt = self.datatype
-        comps = self._components()
-        item = dt.component_dtype.itemsize
+        seg = self.segments[index]
+        comps = self._segment_components(index)
         per_sample_items = dt.components * self.num_channels
-        first = seg.byte_offset // item + (a - seg.sample_start) * per_sample_items
+        first = (a - seg.sample_start) * per_sample_items
         raw = comps[first : first + (b - a) * per_sample_items]
         if self.num_channels > 1:
             raw = raw.reshape(b - a, self.num_channels, dt.components)[:, self.channel, :].ravel()
@@ -307,21 +305,22 @@ class Capture:
         if self._array is not None:
             return
         dt = self.datatype
-        comps = self._components()
-        item = dt.component_dtype.itemsize
         per = dt.components * self.num_channels
-        for seg in self.segments:
+        for i, seg in enumerate(self.segments):
+            if seg.sample_count == 0:
+                continue
+            comps = self._segment_components(i)
             for a in range(seg.sample_start, seg.sample_stop, int(chunk_samples)):
                 b = min(seg.sample_stop, a + int(chunk_samples))
-                first = seg.byte_offset // item + (a - seg.sample_start) * per
+                first = (a - seg.sample_start) * per
                 raw = comps[first : first + (b - a) * per]
                 if self.num_channels > 1:
                     raw = raw.reshape(b - a, self.num_channels, dt.components)[:, self.channel, :]
                 yield a, raw.reshape(b - a, dt.components)
 
     def close(self) -> None:
-        """Release the memory map."""
-        self._memmap = None
+        """Release the memory maps."""
+        self._maps.clear()
 
     def __enter__(self) -> Capture:
         return self

@@ -109,7 +109,9 @@ def parse_datatype(name: str) -> DataType:
         (e.g. ``"cf32"`` without byte order, or ``"cf32_lexyz"``).
     """
     if not isinstance(name, str):
-        raise CaptureError(f"datatype {name!r} is not a string; use a SigMF datatype such as ci16_le")
+        raise CaptureError(
+            f"datatype {name!r} is not a string; use a SigMF datatype such as ci16_le"
+        )
     m = _DATATYPE.match(name)
     if m is None or (m["kind"], int(m["bits"])) not in _VALID:
         raise CaptureError(
@@ -119,7 +121,9 @@ def parse_datatype(name: str) -> DataType:
     bits = int(m["bits"])
     if bits == 8:
         if m["endian"]:
-            raise CaptureError(f"datatype {name!r}: 8-bit types take no byte order; write {name[:-3]}")
+            raise CaptureError(
+                f"datatype {name!r}: 8-bit types take no byte order; write {name[:-3]}"
+            )
         endian = "|"
     else:
         if not m["endian"]:
