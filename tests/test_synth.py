@@ -1,0 +1,243 @@
+"""Tests of the synthetic-capture generator: modulator, SigMF writer, scenarios.
+
+References used below:
+[PS] J. G. Proakis and M. Salehi, Digital Communications, 5th ed., 2008, §3.3: CPFSK has a
+     constant envelope and a phase that is the integral of the instantaneous frequency [mem].
+[MH] K. Murota and K. Hirade, "GMSK modulation for digital mobile radio telephony", IEEE Trans.
+     Commun. 29(7):1044–1050, 1981: Gaussian premodulation filter with 3-dB bandwidth B,
+     impulse-response standard deviation σ = √(ln 2)/(2πB) [mem].
+[M§3] /work/shared/METHODS.md §0 and §3 (correlator conventions; Es/N0 estimate spread).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import integrate, stats
+
+from iqstat.errors import ParameterError
+from iqstat.synth import modulate, n_output_samples, symbol_boundaries, symbol_period_samples
+
+FS = 250e3
+RS = 4800.0  # 52.083 samples per symbol: deliberately not an integer
+
+
+def inst_freq_hz(s: np.ndarray, fs: float) -> np.ndarray:
+    """Mean instantaneous frequency over each sample interval [n−1, n]."""
+    return np.angle(s[1:] * np.conj(s[:-1])) * fs / (2 * np.pi)
+
+
+def tone_hz(i, m, spacing, cfo):
+    """Tone i of M at cfo + (i − (M−1)/2)·Δf (project convention)."""
+    return cfo + (np.asarray(i) - (m - 1) / 2) * spacing
+
+
+# ----------------------------------------------------------------------------- modulator
+
+FSK_CASES = [
+    ("2fsk", 1.0),
+    ("2fsk", 0.5),
+    ("4fsk", 1.0),
+    ("4fsk", 0.5),
+]
+
+
+@pytest.mark.parametrize("modulation,h", FSK_CASES)
+@pytest.mark.parametrize("bt", [None, 0.5])
+def test_cpfsk_constant_envelope(modulation, h, bt):
+    # [PS]: CPFSK is a constant-envelope signal, |s(t)| = A at every sample of the burst.
+    rng = np.random.default_rng(11)
+    m = 2 if modulation == "2fsk" else 4
+    sym = rng.integers(0, m, 300)
+    s = modulate(
+        sym, modulation=modulation, sample_rate_hz=FS, symbol_rate_hz=RS,
+        tone_spacing_hz=h * RS, bt=bt, cfo_hz=1234.5, amplitude=0.7,
+        timing_offset_samples=3.3, clock_offset_ppm=40.0,
+    )  # fmt: skip
+    burst = s[4:]  # samples at t >= t0 = 3.3
+    assert np.all(s[:4] == 0)
+    np.testing.assert_allclose(np.abs(burst), 0.7, rtol=1e-12)
+
+
+@pytest.mark.parametrize("modulation,h", FSK_CASES)
+def test_mid_symbol_frequency_is_the_tone(modulation, h):
+    # [PS]: with a rectangular frequency pulse the instantaneous frequency over symbol k is the
+    # tone frequency; the tone map is the project convention cfo + (i − (M−1)/2)·Δf.
+    rng = np.random.default_rng(12)
+    m = 2 if modulation == "2fsk" else 4
+    sym = rng.integers(0, m, 400)
+    cfo, spacing, t0, ppm = -2100.0, h * RS, 7.61, -25.0
+    s = modulate(
+        sym, modulation=modulation, sample_rate_hz=FS, symbol_rate_hz=RS,
+        tone_spacing_hz=spacing, cfo_hz=cfo, timing_offset_samples=t0, clock_offset_ppm=ppm,
+    )  # fmt: skip
+    f = inst_freq_hz(s, FS)  # f[n-1] covers [n-1, n]
+    edges = symbol_boundaries(
+        sym.size, sample_rate_hz=FS, symbol_rate_hz=RS, timing_offset_samples=t0,
+        clock_offset_ppm=ppm,
+    )  # fmt: skip
+    n = np.arange(1, s.size)
+    k_lo = np.floor((n - 1 - t0) / (edges[1] - edges[0]))
+    k_hi = np.floor((n - t0) / (edges[1] - edges[0]))
+    whole = (k_lo == k_hi) & (n - 1 >= t0)  # interval inside one symbol
+    k = k_lo[whole].astype(int)
+    expected = tone_hz(sym[k], m, spacing, cfo)
+    # exact up to float64 phase rounding (~1e-12 rad per sample → ~1e-7 Hz)
+    np.testing.assert_allclose(f[whole], expected, atol=1e-6)
+    # every tone occurred
+    assert set(np.unique(sym[k])) == set(range(m))
+
+
+@pytest.mark.parametrize("modulation,h", FSK_CASES)
+def test_fractional_symbol_boundaries_and_phase_continuity(modulation, h):
+    # [PS]: the phase is the integral of the frequency. Over a sample interval [n−1, n] that holds
+    # the boundary τ between symbols k−1 and k, the phase advance is
+    # 2π/fs·[f_{k−1}(τ − (n−1)) + f_k(n − τ)]: solving for τ recovers each boundary exactly.
+    # A modulator that rounded the period (52.083 → 52 samples) would drift by 0.083 sample
+    # per symbol, i.e. 125 samples over these 1500 symbols.
+    rng = np.random.default_rng(13)
+    m = 2 if modulation == "2fsk" else 4
+    sym = rng.integers(0, m, 1500)
+    cfo, spacing, t0, ppm = 800.0, h * RS, 0.37, 20.0
+    s = modulate(
+        sym, modulation=modulation, sample_rate_hz=FS, symbol_rate_hz=RS,
+        tone_spacing_hz=spacing, cfo_hz=cfo, timing_offset_samples=t0, clock_offset_ppm=ppm,
+    )  # fmt: skip
+    f = inst_freq_hz(s, FS)
+    period = (FS / RS) / (1 + ppm * 1e-6)
+    tau = t0 + np.arange(1, sym.size) * period  # boundary before symbol k = 1..n−1
+    n = np.ceil(tau).astype(int)
+    keep = (sym[1:] != sym[:-1]) & (n - tau > 1e-6) & (n - tau < 1 - 1e-6)
+    f_prev = tone_hz(sym[:-1], m, spacing, cfo)[keep]
+    f_next = tone_hz(sym[1:], m, spacing, cfo)[keep]
+    f_meas = f[n[keep] - 1]
+    tau_est = n[keep] - (f_meas - f_prev) / (f_next - f_prev)
+    np.testing.assert_allclose(tau_est, tau[keep], atol=1e-6)
+    assert keep.sum() > 500
+    # continuity: no sample-to-sample phase step larger than the highest tone allows
+    assert np.max(np.abs(f)) <= np.max(np.abs(tone_hz([0, m - 1], m, spacing, cfo))) + 1e-6
+
+
+def test_clock_offset_sign_and_length():
+    # Documented convention: transmitter clock fast by ppm → T' = (fs/Rs)/(1 + ppm·1e-6);
+    # output length ceil(t0 + n·T').
+    period = symbol_period_samples(FS, RS, 100.0)
+    assert period == pytest.approx((FS / RS) / 1.0001, rel=1e-15)
+    assert period < FS / RS
+    n = n_output_samples(1000, sample_rate_hz=FS, symbol_rate_hz=RS,
+                         timing_offset_samples=2.5, clock_offset_ppm=100.0)  # fmt: skip
+    assert n == math.ceil(2.5 + 1000 * (FS / RS) / 1.0001)
+    s = modulate(np.zeros(1000, int), modulation="2fsk", sample_rate_hz=FS, symbol_rate_hz=RS,
+                 tone_spacing_hz=RS, timing_offset_samples=2.5, clock_offset_ppm=100.0)  # fmt: skip
+    assert s.size == n and s.dtype == np.complex128
+    # integer sps: 48 kS/s, 1200 Bd, 10 symbols → exactly 400 samples, none extra
+    assert n_output_samples(10, sample_rate_hz=48e3, symbol_rate_hz=1200) == 400
+
+
+def test_gaussian_pulse_matches_the_filtered_step():
+    # [MH]: a step of the frequency level from a to b at τ through a Gaussian filter of
+    # 3-dB bandwidth B = BT/T gives f(t) = Δf·[a + (b − a)·Φ((t − τ)/σ)], σ = √(ln 2)/(2πB).
+    # The per-sample phase advance is the integral of that over [n−1, n] (quadrature, scipy).
+    bt, spacing, cfo = 0.5, 4800.0, 0.0
+    sym = np.array([0] * 30 + [1] * 30)
+    s = modulate(sym, modulation="2fsk", sample_rate_hz=FS, symbol_rate_hz=RS,
+                 tone_spacing_hz=spacing, bt=bt, cfo_hz=cfo)  # fmt: skip
+    period = FS / RS
+    tau = 30 * period
+    sigma = math.sqrt(math.log(2)) / (2 * math.pi * bt / period)
+
+    def f_model(t):
+        return spacing * (-0.5 + stats.norm.cdf((t - tau) / sigma))
+
+    f = inst_freq_hz(s, FS)
+    for n in range(int(tau) - 60, int(tau) + 60, 7):
+        ref, _ = integrate.quad(f_model, n - 1, n, epsabs=1e-10)
+        assert f[n - 1] == pytest.approx(ref, abs=1e-5)
+
+
+def test_gaussian_bt_smooths_transitions():
+    # Smoothing: rectangular CPFSK steps by the whole spacing within one sample; BT = 0.5 limits
+    # the slope to Δf·max φ(x)/σ per sample = Δf/(σ√(2π)) [MH], σ ≈ 19.5 samples here.
+    rng = np.random.default_rng(14)
+    sym = rng.integers(0, 2, 400)
+    kw = dict(modulation="2fsk", sample_rate_hz=FS, symbol_rate_hz=RS, tone_spacing_hz=RS)
+    f_rect = inst_freq_hz(modulate(sym, **kw), FS)
+    f_gauss = inst_freq_hz(modulate(sym, bt=0.5, **kw), FS)
+    sigma = math.sqrt(math.log(2)) / (2 * math.pi * 0.5) * FS / RS
+    slope_limit = RS / (sigma * math.sqrt(2 * math.pi))
+    assert np.max(np.abs(np.diff(f_rect))) > 0.5 * RS
+    assert np.max(np.abs(np.diff(f_gauss))) <= slope_limit * 1.001
+    # area preserved: over the burst the total phase equals that of the rectangular pulse
+    # except for the pulses cut by the burst ends (q(∞) = T).
+    long_run = np.ones(200, int)
+    ph_r = np.unwrap(np.angle(modulate(long_run, **kw)))
+    ph_g = np.unwrap(np.angle(modulate(long_run, bt=0.5, **kw)))
+    mid = slice(2000, 8000)
+    np.testing.assert_allclose(np.diff(ph_g[mid]), np.diff(ph_r[mid]), atol=1e-9)
+
+
+def test_ook_rect_and_raised_cosine():
+    bits = np.array([1, 1, 0, 1, 0, 0, 1, 1, 1, 0])
+    t0 = 30.2
+    kw = dict(modulation="ook", sample_rate_hz=FS, symbol_rate_hz=RS, cfo_hz=3000.0,
+              timing_offset_samples=t0, amplitude=0.5)  # fmt: skip
+    s = modulate(bits, **kw)
+    period = FS / RS
+    t = np.arange(s.size)
+    k = np.floor((t - t0) / period).astype(int)
+    on = (k >= 0) & (k < bits.size)
+    expected = np.zeros(s.size)
+    expected[on] = 0.5 * bits[k[on]]
+    np.testing.assert_allclose(np.abs(s), expected, atol=1e-12)
+    # carrier at cfo_hz during "on" (fact: a pure tone's phase advance is 2π f/fs per sample)
+    f = inst_freq_hz(s, FS)
+    both_on = (expected[1:] > 0) & (expected[:-1] > 0)
+    np.testing.assert_allclose(f[both_on], 3000.0, atol=1e-6)
+    # raised cosine: ramps centred on boundaries, complementary (a run of ones stays flat),
+    # value ½ exactly at a 0/1 boundary, envelope within [0, A].
+    rc = modulate(bits, ook_shape="raised-cosine", ook_rolloff=0.5, **kw)
+    env = np.abs(rc) / 0.5
+    u = (t - t0) / period
+    far = np.abs(u - np.rint(u)) > 0.25 + 1e-9
+    np.testing.assert_allclose(env[far], expected[far] / 0.5, atol=1e-12)
+    assert np.all(env <= 1 + 1e-12) and np.all(env >= 0)
+    # inside the run 6..8 the boundaries 7 and 8 join ones: envelope stays 1
+    run = (u > 6.3) & (u < 8.7)
+    np.testing.assert_allclose(env[run], 1.0, atol=1e-12)
+    # the envelope follows r(x) = ½(1 + sin(πx/α)) across the 1→0 boundary at u = 2
+    near = np.abs(u - 2) < 0.25
+    x = u[near] - 2
+    np.testing.assert_allclose(env[near], 1 - 0.5 * (1 + np.sin(np.pi * x / 0.5)), atol=1e-12)
+    # the leading ramp begins α·T'/2 before t0
+    assert env[int(t0) - 5] > 0 and env[int(t0 - 0.25 * period) - 1] == 0
+
+
+@pytest.mark.parametrize(
+    "kwargs,match",
+    [
+        (dict(modulation="3fsk"), "modulation"),
+        (dict(modulation="2fsk"), "tone_spacing_hz"),
+        (dict(modulation="2fsk", tone_spacing_hz=-5.0), "tone_spacing_hz"),
+        (dict(modulation="ook", tone_spacing_hz=4800.0), "tone_spacing_hz"),
+        (dict(modulation="ook", ook_shape="gauss"), "ook_shape"),
+        (dict(modulation="ook", ook_rolloff=1.5), "ook_rolloff"),
+        (dict(modulation="2fsk", tone_spacing_hz=4800.0, timing_offset_samples=-1), "timing"),
+        (dict(modulation="2fsk", tone_spacing_hz=4800.0, sample_rate_hz=0.0), "sample_rate"),
+        (dict(modulation="2fsk", tone_spacing_hz=4800.0, symbol_rate_hz=1e6), "symbol_rate"),
+    ],
+)
+def test_modulate_rejects_bad_parameters(kwargs, match):
+    args = dict(sample_rate_hz=FS, symbol_rate_hz=RS)
+    args.update(kwargs)
+    with pytest.raises(ParameterError, match=match):
+        modulate(np.array([0, 1, 1]), **args)
+
+
+def test_modulate_rejects_out_of_range_symbols():
+    with pytest.raises(ParameterError, match="out of range"):
+        modulate(np.array([0, 2]), modulation="2fsk", sample_rate_hz=FS, symbol_rate_hz=RS,
+                 tone_spacing_hz=RS)  # fmt: skip
+    with pytest.raises(ParameterError, match="integers"):
+        modulate(np.array([0.5]), modulation="ook", sample_rate_hz=FS, symbol_rate_hz=RS)
