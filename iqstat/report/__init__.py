@@ -1,0 +1,1 @@
+"""Renderers of iqstat's results: terminal tables (rich) and JSON."""

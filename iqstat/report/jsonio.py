@@ -1,0 +1,57 @@
+"""JSON output helpers: no NaN ever reaches a file, numpy scalars become Python numbers."""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from iqstat.errors import ParameterError
+
+
+def json_safe(obj):
+    """Recursively convert to JSON-safe values: NaN/Inf → None, numpy → Python, tuples → lists."""
+    if isinstance(obj, dict):
+        return {str(k): json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_safe(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return [json_safe(v) for v in obj.tolist()]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        v = float(obj)
+        return v if math.isfinite(v) else None
+    return obj
+
+
+def dumps(obj) -> str:
+    return json.dumps(json_safe(obj), indent=2, allow_nan=False) + "\n"
+
+
+def write_json(obj, target: str | Path) -> None:
+    """Write JSON to a path (atomically, via a temporary file) or to stdout for ``-``."""
+    text = dumps(obj)
+    if str(target) == "-":
+        sys.stdout.write(text)
+        return
+    path = Path(target)
+    if path.is_dir():
+        raise ParameterError(f"--json {path} is a folder; give a file name")
+    if not path.parent.exists():
+        raise ParameterError(f"--json {path}: folder {path.parent} does not exist")
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(text)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
