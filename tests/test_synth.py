@@ -241,3 +241,124 @@ def test_modulate_rejects_out_of_range_symbols():
                  tone_spacing_hz=RS)  # fmt: skip
     with pytest.raises(ParameterError, match="integers"):
         modulate(np.array([0.5]), modulation="ook", sample_rate_hz=FS, symbol_rate_hz=RS)
+
+
+# ----------------------------------------------------------------------------- SigMF writer
+
+
+def _quantise_reference(x: np.ndarray, datatype: str) -> tuple[np.ndarray, int]:
+    """Expected read-back after quantisation, from the SigMF spec's integer full-scale rule
+    (signed v/2^(b−1); unsigned (v − 2^(b−1))/2^(b−1)), as sigmf-python's autoscale applies it.
+    Returns the complex values and the number of saturated components."""
+    comps = np.stack([x.real, x.imag], axis=-1).ravel()
+    if datatype == "cf32_le":
+        return x.astype(np.complex64), 0
+    if datatype == "ci16_le":
+        q = np.rint(comps * 32768.0)
+        clipped = int(np.count_nonzero((q < -32768) | (q > 32767)))
+        v = np.clip(q, -32768, 32767) / 32768.0
+    elif datatype == "cu8":
+        q = np.rint(comps * 128.0 + 128.0)
+        clipped = int(np.count_nonzero((q < 0) | (q > 255)))
+        v = (np.clip(q, 0, 255) - 128.0) / 128.0
+    else:
+        raise AssertionError(datatype)
+    return (v[0::2] + 1j * v[1::2]).astype(np.complex64), clipped
+
+
+@pytest.mark.parametrize("datatype", ["cf32_le", "ci16_le", "cu8"])
+def test_write_recording_reads_back_with_sigmf(tmp_path, datatype):
+    import hashlib
+    import json
+
+    import sigmf
+
+    from iqstat.formats.sigmf_writer import write_recording
+
+    rng = np.random.default_rng(21)
+    x = 0.35 * (rng.standard_normal(5000) + 1j * rng.standard_normal(5000))  # some clip at ±1
+    chunks = [x[:1234], x[1234:4000], x[4000:]]
+    res = write_recording(
+        tmp_path / "hill", iter(chunks), datatype=datatype, sample_rate_hz=250e3,
+        frequency_hz=402.5e6, datetime_utc="2026-04-01T06:30:00Z", description="unit test",
+        author="test suite", annotations=[{"core:sample_start": np.int64(100),
+                                           "core:sample_count": np.int64(50),
+                                           "core:label": "burst"}],
+    )  # fmt: skip
+    meta_path, data_path = res
+    assert meta_path.name == "hill.sigmf-meta" and data_path.name == "hill.sigmf-data"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["hill.sigmf-data", "hill.sigmf-meta"]
+    # the library verifies our sha512 on open (skip_checksum=False) and validates the schema
+    rec = sigmf.fromfile(str(meta_path), skip_checksum=False)
+    rec.validate()
+    y = rec.read_samples()
+    expected, n_clip = _quantise_reference(x, datatype)
+    assert y.shape == x.shape
+    np.testing.assert_array_equal(y.astype(np.complex64), expected)
+    assert res.n_samples == 5000 and res.n_clipped == n_clip
+    if datatype != "cf32_le":
+        assert n_clip > 0  # σ = 0.35 per component: P(|v| > 1) ≈ 0.4 % of 10000 components
+    digest = hashlib.sha512(data_path.read_bytes()).hexdigest()
+    meta = json.loads(meta_path.read_text())
+    assert meta["global"]["core:sha512"] == digest == res.sha512
+    assert meta["global"]["core:version"] == sigmf.__specification__
+    assert meta["global"]["core:recorder"].startswith("iqstat synth ")
+    assert meta["captures"] == [{"core:sample_start": 0, "core:frequency": 402.5e6,
+                                 "core:datetime": "2026-04-01T06:30:00Z"}]  # fmt: skip
+    assert rec.get_global_field("core:datatype") == datatype
+
+
+def test_write_recording_refuses_to_overwrite(tmp_path):
+    from iqstat.errors import CaptureError
+    from iqstat.formats.sigmf_writer import write_recording
+
+    x = np.full(10, 0.5 + 0.25j)
+    write_recording(tmp_path / "a", x, datatype="ci16_le", sample_rate_hz=1e3)
+    before = (tmp_path / "a.sigmf-data").read_bytes()
+    with pytest.raises(CaptureError, match="already exist.*overwrite=True"):
+        write_recording(tmp_path / "a", -x, datatype="ci16_le", sample_rate_hz=1e3)
+    assert (tmp_path / "a.sigmf-data").read_bytes() == before
+    write_recording(tmp_path / "a", -x, datatype="ci16_le", sample_rate_hz=1e3, overwrite=True)
+    assert (tmp_path / "a.sigmf-data").read_bytes() != before
+    assert len(list(tmp_path.iterdir())) == 2
+
+
+def test_write_recording_leaves_nothing_on_failure(tmp_path):
+    from iqstat.formats.sigmf_writer import write_recording
+
+    def chunks():
+        yield np.zeros(100, complex)
+        yield np.array([np.nan + 0j])
+
+    with pytest.raises(ParameterError, match="NaN"):
+        write_recording(tmp_path / "b", chunks(), datatype="cf32_le", sample_rate_hz=1e3)
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize(
+    "kwargs,match",
+    [
+        (dict(datetime_utc="2026-04-01T06:30:00+02:00"), "RFC 3339"),
+        (dict(extra_global={"pumphouse:site": "x"}), "core:extensions"),
+        (dict(extra_global={"core:datatype": "cu8"}), "sets core:datatype"),
+        (dict(annotations=[{"core:sample_start": 1, "core:freq_lower_edge": 1.0}]), "edge"),
+        (dict(annotations=[{"core:sample_start": 99}]), "beyond"),
+        (dict(sample_rate_hz=-1.0), "sample_rate_hz"),
+    ],
+)
+def test_write_recording_rejects_bad_metadata(tmp_path, kwargs, match):
+    from iqstat.formats.sigmf_writer import write_recording
+
+    args = dict(datatype="ci16_le", sample_rate_hz=1e3)
+    args.update(kwargs)
+    with pytest.raises(ParameterError, match=match):
+        write_recording(tmp_path / "c", np.zeros(10, complex), **args)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_write_recording_bad_datatype(tmp_path):
+    from iqstat.errors import CaptureError
+    from iqstat.formats.sigmf_writer import write_recording
+
+    with pytest.raises(CaptureError, match="cf32"):
+        write_recording(tmp_path / "d", np.zeros(4, complex), datatype="cf32", sample_rate_hz=1e3)
