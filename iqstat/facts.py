@@ -174,7 +174,7 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
         nonfinite_samples=n_bad,
         leftover_bytes=capture.leftover_bytes,
         spectrum_freq_hz=tuple(float(f) for f in freqs),
-        spectrum_dbfs_per_hz=tuple(float(v) if v > 0 else -300.0 for v in db(np.maximum(psd, 1e-30))),
+        spectrum_dbfs_per_hz=tuple(float(v) for v in db(np.maximum(psd, 1e-30))),
     )
 
 

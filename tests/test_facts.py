@@ -1,0 +1,96 @@
+"""The one-pass capture facts against independent references.
+
+References: scipy.signal.welch (density scaling, two-sided) for the spectrum; the Gamma law
+of an L-sample mean of exponential powers (METHODS §5, scipy.stats.gamma) for the noise floor;
+statistical spreads of sample means for DC and power.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import signal
+
+from iqstat.capture import Capture
+from iqstat.facts import compute_facts, gamma_floor_factor
+from iqstat.formats.open import open_capture
+
+FS = 250e3
+
+
+def _noise(rng, n, var):
+    return (rng.standard_normal(n) + 1j * rng.standard_normal(n)) * np.sqrt(var / 2)
+
+
+def test_gamma_floor_factor_matches_methods_table():
+    # METHODS §5 [computed]: median factor of a Gamma(L, 1/L) mean: 0.918 (L=4), 0.979 (16),
+    # 0.9948 (64).
+    assert abs(gamma_floor_factor(4, 0.5) - 0.918) < 5e-4
+    assert abs(gamma_floor_factor(16, 0.5) - 0.979) < 5e-4
+    assert abs(gamma_floor_factor(64, 0.5) - 0.9948) < 5e-5
+
+
+def test_noise_floor_and_power_of_white_noise(rng):
+    var = 1e-3
+    x = _noise(rng, 1_000_000, var)
+    f = compute_facts(Capture.from_array(x, FS))
+    # mean power: sample mean of 1e6 Exp(var) values has relative std 1e-3 → ±0.02 dB at 5σ
+    assert abs(f.mean_power_dbfs - 10 * np.log10(var)) < 0.03
+    # floor from 3906 frame means: 10th-percentile estimator, spread well under 0.05 dB
+    assert abs(f.noise_floor_dbfs - 10 * np.log10(var)) < 0.1
+    assert abs(f.noise_psd_dbfs_per_hz - 10 * np.log10(var / FS)) < 0.1
+    assert f.occupied_bandwidth_hz is None
+
+
+def test_noise_floor_survives_bursts_filling_most_of_the_capture(rng):
+    """METHODS §10: a median-over-time floor lands inside bursts that fill most of the capture."""
+    var = 1e-4
+    n = 1_000_000
+    x = _noise(rng, n, var)
+    t = np.arange(n)
+    on = (t % 100_000) < 70_000  # 70 % duty cycle
+    x[on] += 0.05 * np.exp(2j * np.pi * 0.02 * t[on])
+    f = compute_facts(Capture.from_array(x, FS))
+    assert abs(f.noise_floor_dbfs - 10 * np.log10(var)) < 0.3
+
+
+def test_spectrum_agrees_with_scipy_welch(rng):
+    n = 1 << 18
+    t = np.arange(n)
+    x = _noise(rng, n, 1e-4) + 0.02 * np.exp(2j * np.pi * (12_500 / FS) * t)
+    f = compute_facts(Capture.from_array(x, FS))
+    ref_f, ref_p = signal.welch(x, fs=FS, window="hann", nperseg=1024, noverlap=0,
+                                return_onesided=False, scaling="density", detrend=False)
+    ref_f, ref_p = np.fft.fftshift(ref_f), np.fft.fftshift(ref_p)
+    np.testing.assert_allclose(f.spectrum_freq_hz, ref_f)
+    # np.hanning is symmetric, scipy's 'hann' periodic: tiny difference in the window only.
+    np.testing.assert_allclose(10 ** (np.array(f.spectrum_dbfs_per_hz) / 10), ref_p, rtol=0.02)
+    # Invariant (as scipy's own tests use): the PSD integrates to the mean power.
+    df = FS / 1024
+    total = np.sum(10 ** (np.array(f.spectrum_dbfs_per_hz) / 10)) * df
+    assert abs(10 * np.log10(total) - f.mean_power_dbfs) < 0.05
+    assert abs(f.occupied_center_hz - 12_500) < 2 * df
+    assert f.occupied_bandwidth_hz < 6 * df
+
+
+def test_dc_offset_and_clipping_of_integer_data(tmp_path, rng):
+    n = 200_000
+    x = _noise(rng, n, 0.01) + (0.05 - 0.02j)
+    x[:1000] = 1.5 + 1.5j  # 1000 clipped samples
+    comps = np.empty(2 * n)
+    comps[0::2], comps[1::2] = x.real, x.imag
+    q = np.clip(np.rint(comps * 32768), -32768, 32767).astype("<i2")
+    q.tofile(tmp_path / "c.cs16")
+    f = compute_facts(open_capture(tmp_path / "c.cs16", datatype="ci16_le", sample_rate_hz=FS))
+    assert f.clipped_fraction == 1000 / n
+    # DC: std of the mean of n samples of variance 0.005 per component ≈ 1.6e-4
+    assert abs(f.dc_offset_i - (0.05 + 1000 * (1 - 0.05) / n)) < 1e-3
+    assert abs(f.dc_offset_q - (-0.02 + 1000 * (1 + 0.02) / n)) < 1e-3
+
+
+def test_chunk_size_does_not_change_the_figures(rng):
+    x = _noise(rng, 300_001, 1e-3)
+    a = compute_facts(Capture.from_array(x, FS), chunk_samples=1 << 16)
+    b = compute_facts(Capture.from_array(x, FS), chunk_samples=1 << 20)
+    assert abs(a.mean_power_dbfs - b.mean_power_dbfs) < 1e-9
+    assert a.peak_power_dbfs == b.peak_power_dbfs
+    np.testing.assert_allclose(a.spectrum_dbfs_per_hz, b.spectrum_dbfs_per_hz, atol=1e-4)  # float32 sums
