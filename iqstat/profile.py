@@ -227,6 +227,13 @@ class LinkProfile:
                     "lengthen the payload or lower payload_bits",
                 )
 
+        if self.modulation == "4fsk" and self.payload_bits is not None and self.payload_bits % 2:
+            fail(
+                "payload_bits",
+                f"{self.payload_bits} is odd but 4fsk carries bit pairs; "
+                "give the even length actually sent (with its padding bit)",
+            )
+
         ber = self.required_ber
         if ber is not None:
             if isinstance(ber, bool) or not isinstance(ber, (int, float, np.integer, np.floating)):

@@ -141,6 +141,8 @@ FR = OO + "[frame]\n"  # ... followed by [frame]
         # out-of-range requirement
         (OO + "[requirement]\nber = 0.5\n", r"ber 0.5 must lie strictly between"),
         (OO + "[requirement]\nber = 0\n", r"ber 0 must lie strictly between"),
+        # 4fsk sends bit pairs
+        ('[link]\nmodulation = "4fsk"\n[frame]\npayload_bits = 511\n', r"payload_bits 511 is odd"),
         # tone spacing is an FSK parameter
         (OO + "tone_spacing = 4800\n", r"tone_spacing 4800.0 is only meaningful for FSK"),
         # structure
