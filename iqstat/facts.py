@@ -106,18 +106,24 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
     psd_frames = 0
     pw = np.empty(chunk_samples, dtype=np.float32)
     carry = 0  # samples to skip at the start of a chunk so Welch frames stay on the global grid
-    for start, x, bad in capture.iter_chunks_counted(chunk_samples):
+    n_clip = 0
+    for start, x, bad, clip in _fact_chunks(capture, chunk_samples):
         m = len(x)
         n_bad += bad
+        n_clip += clip
         p = pw[:m]
         np.abs(x, out=p)
         p *= p
-        total_power += float(p.sum(dtype=np.float64))
         peak = max(peak, float(p.max()))
-        dc += complex(x.sum(dtype=np.complex128))
+        dc += complex(x.sum())  # pairwise summation in complex64: ample for a mean
         n_frames = m // FLOOR_FRAME
+        used = n_frames * FLOOR_FRAME
         if n_frames:
-            frame_powers.append(p[: n_frames * FLOOR_FRAME].reshape(n_frames, FLOOR_FRAME).mean(1))
+            sums = p[:used].reshape(n_frames, FLOOR_FRAME).sum(1)
+            total_power += float(sums.sum(dtype=np.float64))
+            frame_powers.append(sums / FLOOR_FRAME)
+        if used < m:
+            total_power += float(p[used:].sum(dtype=np.float64))
         first = start + carry
         idx = np.arange(first, start + m - WELCH_FFT + 1, WELCH_FFT * welch_stride) - start
         if len(idx):
@@ -128,9 +134,14 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
             carry = int(idx[-1] + WELCH_FFT * welch_stride - m)
         else:
             carry = max(0, carry - m)
+    # Integer chunks were left unscaled (saves a multiply per sample): scale the sums now.
+    sc = _unscaled_factor(capture)
+    total_power *= sc * sc
+    peak *= sc * sc
+    dc *= sc
     mean_power = total_power / n
     dc /= n
-    clipped = _clipped_fraction(capture, chunk_samples)
+    clipped = n_clip / n if capture.datatype.is_integer else None
     floor = None
     if frame_powers:
         fp = np.concatenate(frame_powers)
@@ -178,21 +189,39 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
     )
 
 
-def _clipped_fraction(capture: Capture, chunk_samples: int) -> float | None:
-    """Fraction of samples with a component at or beyond 99 % of full scale (integer types)."""
+def _unscaled_factor(capture: Capture) -> float:
     dt = capture.datatype
-    if not dt.is_integer:
-        return None
+    return dt.scale if (dt.is_integer and dt.is_complex) else 1.0
+
+
+def _fact_chunks(capture: Capture, chunk_samples: int):
+    """Yield ``(start, samples, n_nonfinite, n_clipped)`` for the facts pass.
+
+    Complex integer recordings are read from their stored components in one pass that both
+    counts samples with a component at or beyond 99 % of full scale and converts to complex64
+    without the final scaling (the caller applies :func:`_unscaled_factor`). Other types use
+    the capture's ordinary conversion (which also counts non-finite values).
+    """
+    dt = capture.datatype
+    if not (dt.is_integer and dt.is_complex):
+        for start, x, bad in capture.iter_chunks_counted(chunk_samples):
+            yield start, x, bad, 0
+        return
     span = dt.full_scale_max - dt.full_scale_min
     lo = dt.full_scale_min + (1 - NEAR_FULL_SCALE) * span / 2
     hi = dt.full_scale_max - (1 - NEAR_FULL_SCALE) * span / 2
-    n_clip = 0
-    for _, raw in capture.iter_raw_chunks(chunk_samples):
+    buf = np.empty((int(chunk_samples), 2), dtype=np.float32)
+    for start, raw in capture.iter_raw_chunks(chunk_samples):
+        m = len(raw)
+        clip = 0
         # Cheap test first: most chunks of a healthy recording never approach full scale.
-        if raw.max() < hi and raw.min() > lo:
-            continue
-        n_clip += int(np.count_nonzero(((raw >= hi) | (raw <= lo)).any(axis=1)))
-    return n_clip / capture.n_samples
+        if raw.max() >= hi or raw.min() <= lo:
+            clip = int(np.count_nonzero(((raw >= hi) | (raw <= lo)).any(axis=1)))
+        b = buf[:m]
+        np.copyto(b, raw, casting="unsafe")
+        if dt.offset:
+            b -= np.float32(dt.offset)
+        yield start, b.reshape(-1).view(np.complex64), 0, clip
 
 
 def _occupied_band(freqs, psd, psd_floor, fs, n_frames) -> tuple[float | None, float | None]:
