@@ -90,7 +90,7 @@ def _as_array(x: ArrayLike, name: str) -> np.ndarray:
             f"{name}={x!r} is not a number or an array of numbers; pass a real value"
         ) from None
     if not np.all(np.isfinite(arr)):
-        bad = arr[~np.isfinite(arr)].ravel()[0]
+        bad = float(arr[~np.isfinite(arr)].ravel()[0])
         raise ParameterError(f"{name} contains {bad!r}; every value must be a finite real number")
     return arr
 
@@ -98,7 +98,7 @@ def _as_array(x: ArrayLike, name: str) -> np.ndarray:
 def _as_nonneg(x: ArrayLike, name: str, hint: str = "") -> np.ndarray:
     arr = _as_array(x, name)
     if np.any(arr < 0):
-        bad = arr[arr < 0].ravel()[0]
+        bad = float(arr[arr < 0].ravel()[0])
         raise ParameterError(f"{name}={bad!r} is negative; it must be >= 0{hint}")
     return arr
 
@@ -113,7 +113,7 @@ def _as_ebn0(ebn0: ArrayLike, name: str = "ebn0") -> np.ndarray:
 def _as_rho_abs(rho_abs: ArrayLike, name: str = "rho_abs") -> np.ndarray:
     arr = _as_nonneg(rho_abs, name, " (the magnitude of a correlation coefficient)")
     if np.any(arr > 1.0):
-        bad = arr[arr > 1.0].ravel()[0]
+        bad = float(arr[arr > 1.0].ravel()[0])
         raise ParameterError(
             f"{name}={bad!r} exceeds 1; a correlation magnitude lies in [0, 1] "
             "(use abs(tone_correlation(...)))"
@@ -234,23 +234,17 @@ def log_i0(x: ArrayLike):
     whose truncation error at |x| = 1e-2 is ~1e-22 (relative ~1e-17).
     """
     arr = _as_array(x, "x")
-    ax = np.abs(arr)
-    small = ax < 1e-2
-    with np.errstate(divide="ignore"):
-        out = np.log(special.i0e(ax)) + ax
-    if np.any(small):
-        s = ax[small] ** 2
-        out[small] = s / 4.0 - s**2 / 64.0 + s**3 / 576.0 - 11.0 * s**4 / 49152.0  # eq. (1)
+    out = _log_i0_array(np.abs(arr).reshape(-1)).reshape(arr.shape)
     return _finish(out, arr)
 
 
 def _log_i0_array(x: np.ndarray) -> np.ndarray:
-    """log I0 for an already-validated non-negative array (internal, no checks)."""
+    """log I0 of a validated non-negative 1-D array (see :func:`log_i0`; no checks)."""
     out = np.log(special.i0e(x)) + x
     small = x < 1e-2
     if np.any(small):
         s = x[small] ** 2
-        out[small] = s / 4.0 - s**2 / 64.0 + s**3 / 576.0 - 11.0 * s**4 / 49152.0
+        out[small] = s / 4.0 - s**2 / 64.0 + s**3 / 576.0 - 11.0 * s**4 / 49152.0  # eq. (1)
     return out
 
 
@@ -267,6 +261,25 @@ def _ser_ncfsk_sum(esn0: np.ndarray, m: int) -> np.ndarray:
     return np.clip(np.sum(coef * np.exp(expo), axis=-1), 0.0, 1.0 - 1.0 / m)
 
 
+def _log_ser_integrand(x: np.ndarray, a: np.ndarray, m: int) -> np.ndarray:
+    """Log of the integrand of eq. (1) of :func:`_ser_ncfsk_integral`, finite wherever it is > 0.
+
+    log of the miss term 1 − (1 − u)^{M−1}, u = e^{−x²/2}, is formed from
+    y = −(M−1)·log1p(−u) without ever computing a subnormal u: for u < 1e-8,
+    log(−log1p(−u)) = −x²/2 + u/2 + O(u²); and log(−expm1(−y)) = log y − y/2 + O(y²) for small y.
+    """
+    half_x2 = 0.5 * x**2
+    with np.errstate(divide="ignore", under="ignore"):
+        u = np.exp(-np.minimum(half_x2, 700.0))
+        log_y = np.log(m - 1.0) + np.where(
+            u >= 1e-8, np.log(-np.log1p(-np.minimum(u, 1.0 - 1e-16))), -half_x2 + 0.5 * u
+        )
+        y = np.exp(np.minimum(log_y, 700.0))
+        log_miss = np.where(y > 1e-8, np.log(-np.expm1(-y)), log_y - 0.5 * y)
+        log_pdf = np.log(x) - 0.5 * (x - a) ** 2 + np.log(special.i0e(a * x))
+    return log_miss + log_pdf
+
+
 def _ser_ncfsk_integral(esn0: np.ndarray, m: int) -> np.ndarray:
     """SER of noncoherent orthogonal M-FSK by composite Gauss-Legendre quadrature.
 
@@ -276,31 +289,41 @@ def _ser_ncfsk_integral(esn0: np.ndarray, m: int) -> np.ndarray:
 
         P_s = ∫_0^∞ [1 − (1 − e^{−x²/2})^{M−1}] · x·e^{−(x−a)²/2}·i0e(a·x) dx          (1)
 
-    (the Rician pdf x·e^{−(x²+a²)/2}·I0(ax) written with i0e to avoid overflow). The bracket is
-    evaluated as −expm1((M−1)·log1p(−e^{−x²/2})), accurate when the error probability is tiny.
-    The integrand is negligible beyond x = a + 12. The loop below runs over blocks of Eb/N0
+    (the Rician pdf x·e^{−(x²+a²)/2}·I0(ax) written with i0e to avoid overflow). The integrand
+    is evaluated in the log domain. A 1025-point scan of [0, a + 12] locates where the log
+    integrand is within 46 nats (e^{−46} ≈ 1e-20) of its peak; that interval, widened by one
+    scan step each side, is integrated with 16-point Gauss-Legendre panels no wider than
+    0.5, relative to the peak value, which is multiplied back at the end (so P_s underflows to
+    0 only when it is itself below the float64 range). The loop runs over blocks of Eb/N0
     values, not over samples or symbols.
     """
     flat = esn0.ravel()
     out = np.empty_like(flat)
     a_all = np.sqrt(2.0 * flat)
-    hi_all = a_all + 12.0
     block = 64
+    n_scan = 1025
     for start in range(0, flat.size, block):
         a = a_all[start : start + block, None]
-        hi = hi_all[start : start + block, None]
-        n_panels = int(np.ceil(hi.max() / _GL_PANEL_WIDTH))
-        width = hi / n_panels  # (B, 1), <= _GL_PANEL_WIDTH
-        left = np.arange(n_panels, dtype=np.float64)[None, :, None] * width[:, :, None]
-        x = (left + _GL_NODES[None, None, :] * width[:, :, None]).reshape(a.shape[0], -1)
-        w = np.broadcast_to(
-            _GL_WEIGHTS[None, None, :] * width[:, :, None], (a.shape[0], n_panels, 16)
-        )
-        w = w.reshape(a.shape[0], -1)
-        with np.errstate(under="ignore", divide="ignore"):
-            miss = -np.expm1((m - 1) * np.log1p(-np.exp(-0.5 * x**2)))
-            pdf = x * np.exp(-0.5 * (x - a) ** 2) * special.i0e(a * x)
-        out[start : start + block] = np.sum(w * miss * pdf, axis=1)  # eq. (1)
+        n_b = a.shape[0]
+        hi = a + 12.0
+        scan = np.linspace(0.0, 1.0, n_scan)[None, :] * hi
+        log_scan = _log_ser_integrand(scan, a, m)
+        peak = np.max(log_scan, axis=1, keepdims=True)
+        keep = log_scan >= peak - 46.0
+        first = np.argmax(keep, axis=1)
+        last = n_scan - 1 - np.argmax(keep[:, ::-1], axis=1)
+        rows = np.arange(n_b)
+        lo_x = scan[rows, np.maximum(first - 1, 0)][:, None]
+        hi_x = scan[rows, np.minimum(last + 1, n_scan - 1)][:, None]
+        n_panels = max(1, int(np.ceil(np.max(hi_x - lo_x) / _GL_PANEL_WIDTH)))
+        width = (hi_x - lo_x) / n_panels  # (B, 1), <= _GL_PANEL_WIDTH
+        left = lo_x[:, :, None] + np.arange(n_panels)[None, :, None] * width[:, :, None]
+        x = (left + _GL_NODES[None, None, :] * width[:, :, None]).reshape(n_b, -1)
+        w = (np.broadcast_to(_GL_WEIGHTS, (n_b, n_panels, 16)) * width[:, :, None]).reshape(n_b, -1)
+        with np.errstate(under="ignore", over="ignore", invalid="ignore"):
+            rel = np.sum(w * np.exp(_log_ser_integrand(x, a, m) - peak), axis=1)
+            val = rel * np.exp(peak[:, 0])  # eq. (1)
+        out[start : start + block] = np.where(np.isfinite(peak[:, 0]), val, 0.0)
     return np.clip(out, 0.0, 1.0 - 1.0 / m).reshape(esn0.shape)
 
 
@@ -670,7 +693,7 @@ def tone_correlation_matrix(m: int, tone_spacing_hz: float, symbol_time_s: float
 # --------------------------------------------------------------------------------------------
 
 
-def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float = 0.0):
+def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float | ArrayLike = 0.0):
     """Theoretical BER of iqstat's noncoherent receiver for one modulation.
 
     Parameters
@@ -679,10 +702,11 @@ def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float = 0.0)
         Eb/N0, linear, >= 0 (for OOK the average-energy Eb).
     modulation : {"2fsk", "4fsk", "ook"}
         The link's modulation.
-    rho_abs : float
+    rho_abs : float or array_like of shape (4, 4)
         Largest magnitude of the correlation between two tone templates over one symbol, in
         [0, 1] (``abs(tone_correlation(spacing, T))`` for the adjacent pair). FSK only; must be
-        0 for OOK.
+        0 for OOK. For 4fsk a full (4, 4) matrix of |ρ_ij| is also accepted (e.g.
+        ``abs(tone_correlation_matrix(4, spacing, T))``) and gives a tighter bound.
 
     Returns
     -------
@@ -696,19 +720,30 @@ def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float = 0.0)
     - ``2fsk``, rho_abs <= 1e-6: ½·exp(−γ_b/2) (:func:`ber_ncfsk`, exact).
     - ``2fsk``, rho_abs > 1e-6: Stein's formula (:func:`ber_ncbfsk_nonorthogonal`, exact).
     - ``4fsk``, rho_abs <= 1e-6: the orthogonal 4-FSK result (:func:`ber_ncfsk`, exact).
-    - ``4fsk``, rho_abs > 1e-6: the union UPPER BOUND of :func:`ber_ncfsk_union_bound` with every
-      tone pair given correlation rho_abs (Gray labels), capped at ½. It is tight at high Eb/N0
-      and pessimistic at low Eb/N0, and more so when far tones are less correlated than the
-      adjacent pair (then call :func:`ber_ncfsk_union_bound` with the full matrix from
-      :func:`tone_correlation_matrix`). The value therefore jumps up at rho_abs = 1e-6 by the
-      union-bound slack (large below ~6 dB, vanishing at high Eb/N0).
+    - ``4fsk``, rho_abs > 1e-6: the union UPPER BOUND of :func:`ber_ncfsk_union_bound` (Gray
+      labels, capped at ½) with every tone pair given correlation rho_abs, or with the given
+      (4, 4) matrix. The bound is tight at high Eb/N0 and pessimistic at low Eb/N0; a scalar
+      rho_abs is pessimistic again when far tones are less correlated than the adjacent pair
+      (h = ½: |ρ| = 2/π, 0, 2/(3π) for tones 1, 2, 3 apart), so pass the matrix when the tone
+      spacing is known. The value jumps up at rho_abs = 1e-6 by the union-bound slack (large
+      below ~6 dB, vanishing at high Eb/N0). A 4fsk matrix whose off-diagonal entries are all
+      <= 1e-6 gives the exact orthogonal result.
     - ``ook``: envelope detection with the optimum threshold (:func:`ber_ook`, exact).
     """
     modulation = _check_modulation(modulation)
-    r = float(_as_rho_abs(rho_abs))
-    if np.ndim(rho_abs) != 0:
-        raise ParameterError(f"rho_abs={rho_abs!r} must be a single number in [0, 1]")
+    r_arr = _as_rho_abs(rho_abs)
     gb = _as_ebn0(ebn0)
+    if r_arr.ndim != 0:
+        if modulation != "4fsk" or r_arr.shape != (4, 4):
+            raise ParameterError(
+                f"rho_abs has shape {r_arr.shape} for {modulation}; give one number in [0, 1] "
+                "(a (4, 4) matrix is accepted for 4fsk only)"
+            )
+        off_diagonal = r_arr[~np.eye(4, dtype=bool)]
+        if np.all(off_diagonal <= ORTHOGONAL_RHO_ABS):
+            return ber_ncfsk(gb, 4)
+        return ber_ncfsk_union_bound(gb, r_arr)
+    r = float(r_arr)
     if modulation == "2fsk":
         if r <= ORTHOGONAL_RHO_ABS:
             return ber_ncfsk(gb, 2)
@@ -730,7 +765,9 @@ def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float = 0.0)
     )
 
 
-def required_ebn0_db(target_ber: float, modulation: Modulation, rho_abs: float = 0.0) -> float:
+def required_ebn0_db(
+    target_ber: float, modulation: Modulation, rho_abs: float | ArrayLike = 0.0
+) -> float:
     """Eb/N0 (dB) at which :func:`predicted_ber` equals a target BER.
 
     Parameters
@@ -739,7 +776,7 @@ def required_ebn0_db(target_ber: float, modulation: Modulation, rho_abs: float =
         Target bit error probability, in (0, 0.5).
     modulation : {"2fsk", "4fsk", "ook"}
         The link's modulation.
-    rho_abs : float
+    rho_abs : float or array_like of shape (4, 4)
         Tone correlation magnitude, as in :func:`predicted_ber`.
 
     Returns
@@ -810,7 +847,7 @@ def mean_ber_over_bursts(
     ebn0_per_burst: ArrayLike,
     weights: ArrayLike | None,
     modulation: Modulation,
-    rho_abs: float = 0.0,
+    rho_abs: float | ArrayLike = 0.0,
 ) -> float:
     """A capture's predicted BER: the weighted mean of the per-burst predicted BERs.
 
@@ -822,7 +859,7 @@ def mean_ber_over_bursts(
         Non-negative weight per burst, normally its number of bits or symbols; None = equal.
     modulation : {"2fsk", "4fsk", "ook"}
         The link's modulation.
-    rho_abs : float
+    rho_abs : float or array_like of shape (4, 4)
         Tone correlation magnitude, as in :func:`predicted_ber`.
 
     Returns
