@@ -138,6 +138,53 @@ def describe(
 
 @app.command()
 @_cli_errors
+def measure(
+    capture: Annotated[Path, typer.Argument(help="SigMF meta/data/base name, .sigmf archive, or "
+                                            "raw file.", show_default=False)],
+    profile: Annotated[Path | None, typer.Option("--profile", help="Link profile (TOML): what "
+                                                 "was sent.")] = None,
+    modulation: Annotated[str | None, typer.Option("--modulation", help="2fsk, 4fsk or ook "
+                                                   "(overrides the profile).")] = None,
+    symbol_rate: Annotated[float | None, typer.Option(
+        "--symbol-rate", parser=_rate("--symbol-rate"), metavar="RATE",
+        help="Symbol rate, e.g. 4800 or 4.8k (overrides the profile).")] = None,
+    tone_spacing: Annotated[float | None, typer.Option(
+        "--tone-spacing", parser=_rate("--tone-spacing"), metavar="FREQ",
+        help="FSK tone spacing, e.g. 4.8k (overrides the profile).")] = None,
+    required_ber: Annotated[float | None, typer.Option(
+        "--required-ber", help="The link's required BER, e.g. 1e-5 (overrides the profile).")
+    ] = None,
+    datatype: DatatypeOpt = None,
+    sample_rate: RateOpt = None,
+    center_frequency: FreqOpt = None,
+    header_bytes: HeaderOpt = 0,
+    channel: ChannelOpt = 0,
+    recording: RecordingOpt = None,
+    verify: VerifyOpt = False,
+    json_path: Annotated[str | None, typer.Option("--json", metavar="PATH", help="Write the "
+                                                  "report as JSON to PATH ('-' for stdout).")
+                         ] = None,
+) -> None:
+    """Eb/N0 with its confidence interval, predicted and measured BER, and margin."""
+    from iqstat.measure import measure_capture
+    from iqstat.profile import load_profile, override_profile
+    from iqstat.report.jsonio import write_json
+    from iqstat.report.measurement import render_report, report_to_dict
+
+    base = load_profile(profile) if profile is not None else None
+    prof = override_profile(base, modulation=modulation, symbol_rate_hz=symbol_rate,
+                            tone_spacing_hz=tone_spacing, required_ber=required_ber)
+    cap = _open(capture, datatype, sample_rate, center_frequency, header_bytes, channel,
+                recording, verify)
+    report = measure_capture(cap, prof)
+    if json_path is not None:
+        write_json(report_to_dict(report), json_path)
+    if json_path != "-":
+        render_report(report, Console(highlight=False))
+
+
+@app.command()
+@_cli_errors
 def synth(
     scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML).", show_default=False)],
     out: Annotated[Path, typer.Option("--out", help="Folder to write the recording and its truth "

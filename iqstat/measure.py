@@ -1,0 +1,605 @@
+"""The measurement chain of one capture: bursts → link → timing → correlators → fit → theory.
+
+This module wires the stages together and computes the capture's summary; it does no I/O
+beyond reading samples through the :class:`~iqstat.capture.Capture`, and renders nothing.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from iqstat import theory
+from iqstat.bursts import Burst, BurstDetection, detect_bursts
+from iqstat.capture import Capture
+from iqstat.correlate import correlate_symbols, template_gram
+from iqstat.errors import IqstatError, MeasurementError
+from iqstat.estimate import LinkEstimate, estimate_link, refine_link_across_bursts
+from iqstat.facts import CaptureFacts, compute_facts
+from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
+from iqstat.patterns import BitCheck, check_known, check_prbs, clopper_pearson, prbs_bits
+from iqstat.profile import (
+    FrameLayout,
+    LinkProfile,
+    bits_to_symbols,
+    frame_layout,
+    symbols_to_bits,
+)
+from iqstat.sync import FrameAlignment, SymbolTiming, align_frame, recover_timing
+from iqstat.units import db
+
+#: Symbols read beyond each detected edge, so that timing and frame search see whole symbols.
+EDGE_MARGIN_SYMBOLS = 2.0
+#: Fewest symbols for a fit worth reporting.
+MIN_FIT_SYMBOLS = 20
+#: Fraction of full-scale samples above which a capture is flagged as clipped.
+CLIPPING_FLAG_FRACTION = 1e-4
+#: An estimated symbol rate further than this from the profile's is flagged.
+RATE_MISMATCH_FRACTION = 0.01
+#: Goodness-of-fit p-value below which the branch energies are flagged as not AWGN-like.
+GOF_FLAG_PVALUE = 1e-3
+#: Detection loss (available − detected Eb/N0) above which the burst is flagged.
+DETECTION_LOSS_FLAG_DB = 1.5
+#: Spread of per-burst Eb/N0 (max − min) above which the capture is flagged.
+LEVEL_SPREAD_FLAG_DB = 3.0
+
+
+@dataclass(frozen=True)
+class BurstResult:
+    """Everything measured on one burst.
+
+    ``ebn0_db`` is the headline (maximum likelihood, marginalised over the sent symbols);
+    ``ebn0_db_da`` uses the known symbols (header, and payload where known); ``ebn0_db_dd`` is
+    the decision-directed moment estimate, biased high below about 8 dB, for comparison only.
+    """
+
+    index: int
+    start_sample: int
+    stop_sample: int
+    symbols: int
+    link: LinkEstimate | None
+    timing: SymbolTiming | None
+    frame: FrameAlignment | None
+    fit: NoncoherentFit | None
+    fit_da: NoncoherentFit | None
+    fit_dd: NoncoherentFit | None
+    bit_check: BitCheck | None
+    available_ebn0_db: float | None
+    predicted_ber: float | None
+    power_dbfs: float
+    flags: tuple[str, ...]
+    message: str
+
+    @property
+    def ebn0_db(self) -> float | None:
+        return self.fit.ebn0_db if self.fit is not None and self.fit.converged else None
+
+    @property
+    def ebn0(self) -> float | None:
+        v = self.ebn0_db
+        return None if v is None else 10.0 ** (v / 10.0)
+
+    @property
+    def detection_loss_db(self) -> float | None:
+        if self.available_ebn0_db is None or self.ebn0_db is None:
+            return None
+        return self.available_ebn0_db - self.ebn0_db
+
+    @property
+    def cfo_hz(self) -> float | None:
+        return None if self.link is None else self.link.cfo_hz
+
+    def to_dict(self) -> dict:
+        fit = self.fit
+        bc = self.bit_check
+        counted = bc is not None and bc.locked
+        return {
+            "index": self.index,
+            "start_sample": self.start_sample,
+            "stop_sample": self.stop_sample,
+            "symbols": self.symbols,
+            "cfo_hz": self.cfo_hz,
+            "symbol_rate_hz": None if self.link is None else self.link.symbol_rate_hz,
+            "tone_spacing_hz": None if self.link is None else self.link.tone_spacing_hz,
+            "clock_offset_ppm": None if self.timing is None else self.timing.clock_offset_ppm,
+            "timing_offset_samples": None if self.timing is None else self.timing.t0_samples,
+            "power_dbfs": self.power_dbfs,
+            "ebn0_db": self.ebn0_db,
+            "ebn0_db_ci95": None if fit is None or not fit.converged else fit.ebn0_db_ci95,
+            "esn0_db": None if fit is None or not fit.converged else fit.esn0_db,
+            "ebn0_db_da": _fit_ebn0(self.fit_da),
+            "ebn0_db_dd": _fit_ebn0(self.fit_dd),
+            "available_ebn0_db": self.available_ebn0_db,
+            "detection_loss_db": self.detection_loss_db,
+            "predicted_ber": self.predicted_ber,
+            "bit_errors": bc.bit_errors if counted else None,
+            "bits_checked": bc.bits_checked if counted else None,
+            "measured_ber": bc.ber if counted else None,
+            "measured_ber_ci95": bc.ber_ci95 if counted else None,
+            "frame_found": None if self.frame is None else self.frame.found,
+            "frame_start_symbol": None if self.frame is None else self.frame.start_symbol,
+            "header_bit_errors": None if self.frame is None else self.frame.bit_errors,
+            "gof_pvalue": None if fit is None else fit.gof_pvalue,
+            "flags": list(self.flags),
+            "message": self.message,
+            "fit": None if fit is None else fit.to_dict(),
+            "fit_da": None if self.fit_da is None else self.fit_da.to_dict(),
+            "fit_dd": None if self.fit_dd is None else self.fit_dd.to_dict(),
+            "link": None if self.link is None else self.link.to_dict(),
+            "timing": None if self.timing is None else self.timing.to_dict(),
+            "frame": None if self.frame is None else self.frame.to_dict(),
+            "bit_check": None if bc is None else bc.to_dict(),
+        }
+
+
+def _fit_ebn0(fit: NoncoherentFit | None) -> float | None:
+    return fit.ebn0_db if fit is not None and fit.converged else None
+
+
+@dataclass(frozen=True)
+class LinkSummary:
+    """The link's parameters as used, and where each came from."""
+
+    modulation: str
+    symbol_rate_hz: float | None
+    symbol_rate_source: str
+    tone_spacing_hz: float | None
+    tone_spacing_source: str
+    modulation_index: float | None
+    tone_correlation: float | None
+    bit_rate_hz: float | None
+
+    def to_dict(self) -> dict:
+        return dict(self.__dict__)
+
+
+@dataclass(frozen=True)
+class Summary:
+    """The capture's headline figures."""
+
+    bursts: int
+    bursts_measured: int
+    symbols: int
+    ebn0_db: float | None
+    ebn0_db_ci95: tuple[float, float] | None
+    ebn0_db_min: float | None
+    ebn0_db_max: float | None
+    ebn0_db_std: float | None
+    esn0_db: float | None
+    ebn0_db_da: float | None
+    ebn0_db_dd: float | None
+    available_ebn0_db: float | None
+    detection_loss_db: float | None
+    predicted_ber: float | None
+    measured_ber: float | None
+    measured_ber_ci95: tuple[float, float] | None
+    bit_errors: int | None
+    bits_checked: int | None
+    bursts_checked: int
+    required_ber: float | None
+    required_ebn0_db: float | None
+    margin_db: float | None
+    worst_burst_margin_db: float | None
+    flags: tuple[str, ...]
+    message: str
+
+    def to_dict(self) -> dict:
+        d = dict(self.__dict__)
+        d["flags"] = list(self.flags)
+        return d
+
+
+@dataclass(frozen=True)
+class MeasurementReport:
+    """The full result of measuring one capture."""
+
+    facts: CaptureFacts
+    profile: LinkProfile
+    link: LinkSummary
+    detection: BurstDetection
+    bursts: tuple[BurstResult, ...]
+    summary: Summary
+    warnings: tuple[str, ...] = field(default=())
+
+
+def _link_summary(profile: LinkProfile, links: list[LinkEstimate], rho: float | None):
+    rate = spacing = None
+    rate_src = "profile" if profile.symbol_rate_hz is not None else "estimated"
+    sp_src = (
+        "n/a" if profile.modulation == "ook"
+        else "profile" if profile.tone_spacing_hz is not None else "estimated"
+    )
+    if links:
+        rate = links[0].symbol_rate_hz
+        spacing = links[0].tone_spacing_hz
+    else:
+        rate, spacing = profile.symbol_rate_hz, profile.tone_spacing_hz
+        rate_src = "profile" if rate is not None else "unknown"
+        if profile.modulation != "ook":
+            sp_src = "profile" if spacing is not None else "unknown"
+    h = spacing / rate if (spacing is not None and rate) else None
+    return LinkSummary(
+        modulation=profile.modulation,
+        symbol_rate_hz=rate,
+        symbol_rate_source=rate_src,
+        tone_spacing_hz=spacing,
+        tone_spacing_source=sp_src,
+        modulation_index=h,
+        tone_correlation=rho,
+        bit_rate_hz=None if rate is None else rate * profile.bits_per_symbol,
+    )
+
+
+def _read_burst(capture: Capture, burst: Burst, margin: int) -> tuple[int, np.ndarray]:
+    a = max(0, burst.start_sample - margin)
+    b = min(capture.n_samples, burst.stop_sample + margin)
+    return a, capture.read(a, b - a)
+
+
+def _estimate_links(capture, detection, profile, margin) -> list[LinkEstimate | None]:
+    """Per-burst link estimates; blind rates are refined across bursts, then re-estimated."""
+    fs = capture.sample_rate_hz
+    out: list[LinkEstimate | None] = []
+    for burst in detection.bursts:
+        _, x = _read_burst(capture, burst, margin)
+        try:
+            out.append(estimate_link(x, fs, modulation=profile.modulation,
+                                     symbol_rate_hz=profile.symbol_rate_hz,
+                                     tone_spacing_hz=profile.tone_spacing_hz))
+        except MeasurementError:
+            out.append(None)
+    blind = profile.symbol_rate_hz is None or (
+        profile.modulation != "ook" and profile.tone_spacing_hz is None)
+    good = [e for e in out if e is not None]
+    if blind and len(good) > 1:
+        weights = [e.quality.get("n_symbols", 1) or 1 for e in good]
+        rate, spacing = refine_link_across_bursts(good, weights)
+        refined = []
+        for burst, e in zip(detection.bursts, out, strict=True):
+            if e is None:
+                refined.append(None)
+                continue
+            _, x = _read_burst(capture, burst, margin)
+            try:
+                refined.append(estimate_link(
+                    x, fs, modulation=profile.modulation, symbol_rate_hz=rate,
+                    tone_spacing_hz=spacing if profile.modulation != "ook" else None))
+            except MeasurementError:
+                refined.append(None)
+        # Keep the provenance honest: these rates were estimated, not given.
+        out = [None if e is None else _as_estimated(e, profile) for e in refined]
+    return out
+
+
+def _as_estimated(e: LinkEstimate, profile: LinkProfile) -> LinkEstimate:
+    return dataclasses.replace(
+        e,
+        symbol_rate_source="profile" if profile.symbol_rate_hz is not None else "estimated",
+        tone_spacing_source=(
+            "n/a" if profile.modulation == "ook"
+            else "profile" if profile.tone_spacing_hz is not None else "estimated"),
+    )
+
+
+def _header_symbols(layout: FrameLayout, modulation: str) -> np.ndarray:
+    bits = layout.header_bits
+    if len(bits) == 0:
+        return np.zeros(0, dtype=np.int64)
+    if modulation == "4fsk" and len(bits) % 2:
+        raise MeasurementError("the preamble and sync word hold an odd number of bits for 4fsk")
+    return bits_to_symbols(bits, modulation)
+
+
+def _symbols_inside(timing: SymbolTiming, lo: float, hi: float) -> tuple[int, int]:
+    """Indices [k0, k1) of symbols whose interval lies within [lo, hi) (samples of x)."""
+    t0, p = timing.t0_samples, timing.period_samples
+    k0 = max(0, math.ceil((lo - t0) / p - 1e-9))
+    k1 = min(timing.n_symbols, math.floor((hi - t0) / p + 1e-9))
+    return k0, max(k0, k1)
+
+
+def _check_payload(bits: np.ndarray, layout: FrameLayout, profile: LinkProfile):
+    kind = profile.payload_kind
+    if kind == "unknown" or len(bits) == 0:
+        return None
+    if kind in ("pn9", "pn15"):
+        return check_prbs(bits, kind)
+    return check_known(bits, layout.payload_bits)
+
+
+def _known_payload_symbols(check: BitCheck | None, layout, profile, n_bits: int):
+    """Sent payload symbols implied by a locked check (for the data-aided fit)."""
+    if check is None or not check.locked:
+        return None
+    kind = profile.payload_kind
+    if kind in ("pn9", "pn15"):
+        ref = prbs_bits(kind, n_bits, check.phase or 0)
+    else:
+        ref = np.asarray(layout.payload_bits[:n_bits], dtype=np.uint8)
+    if check.inverted:
+        ref = 1 - ref
+    if profile.modulation == "4fsk":
+        ref = ref[: len(ref) - len(ref) % 2]
+    return bits_to_symbols(ref, profile.modulation)
+
+
+def measure_burst(
+    capture: Capture,
+    burst: Burst,
+    link: LinkEstimate | None,
+    profile: LinkProfile,
+    layout: FrameLayout,
+    detection: BurstDetection,
+) -> BurstResult:
+    """Synchronise, correlate, fit and check one burst (see :func:`measure_capture`)."""
+    flags: list[str] = []
+    base = dict(index=burst.index, start_sample=burst.start_sample,
+                stop_sample=burst.stop_sample, power_dbfs=burst.power_dbfs)
+    if link is None:
+        return BurstResult(**base, symbols=0, link=None, timing=None, frame=None, fit=None,
+                           fit_da=None, fit_dd=None, bit_check=None, available_ebn0_db=None,
+                           predicted_ber=None, flags=("link-not-estimated",),
+                           message="carrier and rates could not be estimated on this burst")
+    fs = capture.sample_rate_hz
+    sps = fs / link.symbol_rate_hz
+    margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * sps))
+    x0, x = _read_burst(capture, burst, margin)
+    timing = recover_timing(x, fs, link.symbol_rate_hz, link.tone_freqs_hz)
+    z_all = correlate_symbols(x, fs, link.tone_freqs_hz, timing.t0_samples,
+                              timing.period_samples, timing.n_symbols)
+    gram = template_gram(link.tone_freqs_hz, timing.period_samples, fs)
+    m = profile.modulation
+    # Symbols within the detected burst (a symbol's worth of slack at each detected edge).
+    k0, k1 = _symbols_inside(timing, burst.start_sample - x0 - 0.5 * sps,
+                             burst.stop_sample - x0 + 0.5 * sps)
+    z_in = z_all[k0:k1]
+    if len(z_in) < MIN_FIT_SYMBOLS:
+        return BurstResult(**base, symbols=len(z_in), link=link, timing=timing, frame=None,
+                           fit=None, fit_da=None, fit_dd=None, bit_check=None,
+                           available_ebn0_db=None, predicted_ber=None,
+                           flags=("too-few-symbols",),
+                           message=f"only {len(z_in)} whole symbols: too few to fit")
+    first_fit = fit_nda(z_in, gram, modulation=m)
+    hard = decide_symbols(z_all, first_fit, gram, modulation=m) if first_fit.amplitude else (
+        np.argmax(np.abs(z_all), axis=1))
+    header = _header_symbols(layout, m)
+    frame = None
+    sel = (k0, k1)
+    known = None
+    check = None
+    if len(header):
+        # Search the whole read window: a detected edge can be a symbol or two off, and a
+        # header that starts before it must still be found.
+        frame = align_frame(hard, header)
+        if frame.found:
+            start = frame.start_symbol
+            n_payload_sym = None
+            if layout.payload_length is not None:
+                n_payload_sym = layout.payload_length // profile.bits_per_symbol
+            stop = k1 if n_payload_sym is None else min(timing.n_symbols,
+                                                        start + len(header) + n_payload_sym)
+            sel = (start, stop)
+            hdr = header if not frame.inverted else (len(np.unique(header)) - 1 - header)
+            known = np.full(stop - start, -1, dtype=np.int64)
+            known[: len(hdr)] = hdr[: stop - start]
+            payload_syms = hard[start + len(header): stop]
+            if frame.inverted and m == "2fsk":
+                payload_syms = 1 - payload_syms
+            bits = symbols_to_bits(payload_syms, m)
+            check = _check_payload(bits, layout, profile)
+            ref = _known_payload_symbols(check, layout, profile, len(bits))
+            if ref is not None:
+                if frame.inverted and m == "2fsk":
+                    ref = 1 - ref
+                known[len(header): len(header) + len(ref)] = ref
+        else:
+            flags.append("sync-not-found")
+    elif profile.payload_kind != "unknown":
+        bits = symbols_to_bits(hard[k0:k1], m)
+        check = _check_payload(bits, layout, profile)
+    z = z_all[sel[0]: sel[1]]
+    fit = fit_nda(z, gram, modulation=m)
+    dd = fit_dd(z, gram, modulation=m)
+    da = None
+    if known is not None:
+        mask = known >= 0
+        if mask.sum() >= MIN_FIT_SYMBOLS:
+            da = fit_da(z[mask], known[mask], gram, modulation=m)
+    if check is not None and not check.locked:
+        flags.append("pattern-not-locked")
+    if not fit.converged:
+        flags.append("fit-failed")
+    elif fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
+        flags.append("not-awgn")
+    rho = float(abs(gram[0, 1])) if m != "ook" else 0.0
+    pred = None
+    if fit.converged and fit.ebn0_db is not None:
+        pred = float(theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho if m == "2fsk"
+                                          else 0.0))
+    avail = _available_ebn0_db(x[int(burst.start_sample - x0): int(burst.stop_sample - x0)],
+                               detection, link.symbol_rate_hz * profile.bits_per_symbol)
+    res = BurstResult(**base, symbols=len(z), link=link, timing=timing, frame=frame, fit=fit,
+                      fit_da=da, fit_dd=dd, bit_check=check, available_ebn0_db=avail,
+                      predicted_ber=pred, flags=(), message=fit.message)
+    loss = res.detection_loss_db
+    if loss is not None and loss > DETECTION_LOSS_FLAG_DB:
+        flags.append("detection-loss")
+    return BurstResult(**{**res.__dict__, "flags": tuple(flags)})
+
+
+def _available_ebn0_db(x: np.ndarray, detection: BurstDetection, bit_rate_hz: float):
+    """Eb/N0 from power alone: (burst power − noise power) / (N0 · bit rate) (METHODS §9)."""
+    if len(x) == 0 or not np.isfinite(detection.noise_psd_db_per_hz):
+        return None
+    c = float(np.mean(np.abs(x) ** 2)) - detection.noise_var
+    n0 = 10.0 ** (detection.noise_psd_db_per_hz / 10.0)
+    if c <= 0 or n0 <= 0:
+        return None
+    return float(db(c / (n0 * bit_rate_hz)))
+
+
+def _weighted_ebn0(results: list[BurstResult]):
+    """Symbol-weighted mean of per-burst linear Eb/N0, its 95 % interval and the spread."""
+    ok = [r for r in results if r.ebn0_db is not None]
+    if not ok:
+        return None, None, None, None, None
+    w = np.array([r.symbols for r in ok], dtype=float)
+    g = np.array([r.ebn0 for r in ok])
+    mean = float(np.sum(w * g) / w.sum())
+    # Variance of each burst's estimate from its interval (Wald, symmetric in dB).
+    var = []
+    for r in ok:
+        lo, hi = r.fit.ebn0_db_ci95 if r.fit.ebn0_db_ci95 else (r.ebn0_db, r.ebn0_db)
+        sd_db = (hi - lo) / (2 * 1.959964)
+        var.append((r.ebn0 * math.log(10) / 10 * sd_db) ** 2)
+    var_mean = float(np.sum(w**2 * np.array(var)) / w.sum() ** 2)
+    sd_db = 10 / math.log(10) * math.sqrt(var_mean) / mean
+    mean_db = float(db(mean))
+    ci = (mean_db - 1.959964 * sd_db, mean_db + 1.959964 * sd_db)
+    d = np.array([r.ebn0_db for r in ok])
+    std = float(np.std(d, ddof=1)) if len(d) > 1 else None
+    return mean_db, ci, float(d.min()), float(d.max()), std
+
+
+def _summarise(results, profile, link_sum, facts, detection) -> Summary:
+    flags: list[str] = []
+    m = profile.modulation
+    mean_db, ci, lo, hi, std = _weighted_ebn0(results)
+    ok = [r for r in results if r.ebn0_db is not None]
+    symbols = sum(r.symbols for r in ok)
+    rho = link_sum.tone_correlation or 0.0
+    pred = None
+    if ok:
+        pred = float(theory.mean_ber_over_bursts(
+            np.array([r.ebn0 for r in ok]), np.array([r.symbols for r in ok], dtype=float), m,
+            rho_abs=rho if m == "2fsk" else 0.0))
+    checked = [r for r in results if r.bit_check is not None and r.bit_check.locked]
+    errors = sum(r.bit_check.bit_errors for r in checked) if checked else None
+    n_bits = sum(r.bit_check.bits_checked for r in checked) if checked else None
+    meas = ci_meas = None
+    if n_bits:
+        meas = errors / n_bits
+        ci_meas = clopper_pearson(errors, n_bits)
+    req = marg = worst = None
+    if profile.required_ber is not None:
+        try:
+            req = float(theory.required_ebn0_db(profile.required_ber, m,
+                                                rho_abs=rho if m == "2fsk" else 0.0))
+        except IqstatError:
+            req = None
+        if req is not None and mean_db is not None:
+            marg = mean_db - req
+            worst = lo - req
+            if marg < 0:
+                flags.append("below-requirement")
+            elif worst < 0:
+                flags.append("some-bursts-below-requirement")
+    esn0_db = None if mean_db is None else mean_db + float(db(profile.bits_per_symbol))
+    da = [r.fit_da.ebn0_db for r in ok if r.fit_da is not None and r.fit_da.converged]
+    dd = [r.fit_dd.ebn0_db for r in ok if r.fit_dd is not None and r.fit_dd.converged]
+    av = [r.available_ebn0_db for r in ok if r.available_ebn0_db is not None]
+    avail = _mean_db(av, [r.symbols for r in ok if r.available_ebn0_db is not None])
+    loss = None if (avail is None or mean_db is None) else avail - mean_db
+    if not results:
+        flags.append("no-bursts")
+    elif not ok:
+        flags.append("nothing-measured")
+    if facts.clipped_fraction is not None and facts.clipped_fraction > CLIPPING_FLAG_FRACTION:
+        flags.append("clipping")
+    if not facts.is_complex:
+        flags.append("real-valued-capture")
+    if any("sync-not-found" in r.flags for r in results):
+        flags.append("sync-not-found")
+    if any("not-awgn" in r.flags for r in results):
+        flags.append("not-awgn")
+    if any("detection-loss" in r.flags for r in results):
+        flags.append("detection-loss")
+    if lo is not None and hi - lo > LEVEL_SPREAD_FLAG_DB:
+        flags.append("level-spread")
+    if link_sum.symbol_rate_source == "estimated" and profile.symbol_rate_hz is not None:
+        pass
+    if meas is not None and pred is not None and n_bits:
+        # Measured errors far outside what the fitted Eb/N0 predicts point at something
+        # other than white noise (interference, fading, bit slips).
+        from scipy import stats
+
+        p_lo = stats.binom.cdf(errors, n_bits, pred)
+        p_hi = stats.binom.sf(errors - 1, n_bits, pred)
+        if min(p_lo, p_hi) < 1e-4:
+            flags.append("ber-disagrees-with-ebn0")
+    if not results:
+        message = detection.message
+    elif not ok:
+        message = f"{len(results)} burst(s) found but none could be measured"
+    else:
+        message = f"{len(ok)} of {len(results)} burst(s) measured"
+    return Summary(
+        bursts=len(results), bursts_measured=len(ok), symbols=symbols, ebn0_db=mean_db,
+        ebn0_db_ci95=ci, ebn0_db_min=lo, ebn0_db_max=hi, ebn0_db_std=std, esn0_db=esn0_db,
+        ebn0_db_da=_mean_db(da, None), ebn0_db_dd=_mean_db(dd, None),
+        available_ebn0_db=avail, detection_loss_db=loss, predicted_ber=pred,
+        measured_ber=meas, measured_ber_ci95=ci_meas, bit_errors=errors, bits_checked=n_bits,
+        bursts_checked=len(checked), required_ber=profile.required_ber,
+        required_ebn0_db=req, margin_db=marg, worst_burst_margin_db=worst,
+        flags=tuple(dict.fromkeys(flags)), message=message,
+    )
+
+
+def _mean_db(values_db, weights) -> float | None:
+    if not values_db:
+        return None
+    v = 10 ** (np.asarray(values_db, dtype=float) / 10)
+    w = np.ones_like(v) if weights is None else np.asarray(weights, dtype=float)
+    return float(db(np.sum(w * v) / np.sum(w)))
+
+
+def measure_capture(
+    capture: Capture,
+    profile: LinkProfile,
+    *,
+    facts: CaptureFacts | None = None,
+    detection: BurstDetection | None = None,
+) -> MeasurementReport:
+    """Measure Eb/N0, error rates and margin of every burst of a capture.
+
+    Parameters
+    ----------
+    capture : Capture
+        Complex baseband recording.
+    profile : LinkProfile
+        What was sent (modulation, rates if known, frame, requirement).
+    facts, detection : optional
+        Precomputed capture facts / burst detection (else computed here).
+
+    Returns
+    -------
+    MeasurementReport
+    """
+    if not capture.is_complex:
+        raise MeasurementError(
+            "this recording is real-valued; Eb/N0 measurement needs complex baseband (I/Q) "
+            "samples"
+        )
+    facts = compute_facts(capture) if facts is None else facts
+    detection = detect_bursts(capture) if detection is None else detection
+    layout = frame_layout(profile)
+    fs = capture.sample_rate_hz
+    rate_guess = profile.symbol_rate_hz or fs / 50
+    margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))
+    links = _estimate_links(capture, detection, profile, margin)
+    results = [
+        measure_burst(capture, b, e, profile, layout, detection)
+        for b, e in zip(detection.bursts, links, strict=True)
+    ]
+    good_links = [e for e in links if e is not None]
+    rho = None
+    if good_links and profile.modulation != "ook":
+        rho = float(abs(theory.tone_correlation(good_links[0].tone_spacing_hz,
+                                                1.0 / good_links[0].symbol_rate_hz)))
+    link_sum = _link_summary(profile, good_links, rho)
+    summary = _summarise(results, profile, link_sum, facts, detection)
+    return MeasurementReport(facts=facts, profile=profile, link=link_sum, detection=detection,
+                             bursts=tuple(results), summary=summary)

@@ -1,0 +1,193 @@
+"""Rendering a :class:`~iqstat.measure.MeasurementReport`: JSON document and terminal view.
+
+The JSON layout is documented in docs/report-format.md (format "iqstat-report", version 1).
+Unknown values are ``null``: never omitted, never NaN.
+"""
+
+from __future__ import annotations
+
+import math
+
+from rich.console import Console
+from rich.table import Table
+from rich.text import Text
+
+from iqstat import __version__
+from iqstat.measure import BurstResult, MeasurementReport
+from iqstat.report.jsonio import json_safe
+
+FORMAT = "iqstat-report"
+FORMAT_VERSION = 1
+
+CAUTION = (
+    "Figures are estimates from a model of a noncoherent receiver; a predicted error rate is a "
+    "model, not a compliance measurement. iqstat only reads recordings and never transmits."
+)
+
+#: Plain-language meaning of every flag the measurement can raise.
+FLAG_TEXT = {
+    "no-bursts": "no bursts were found above the noise floor",
+    "nothing-measured": "bursts were found but none could be measured",
+    "clipping": "samples at full scale: the receiver front end was overdriven",
+    "real-valued-capture": "real-valued recording: complex baseband is needed",
+    "sync-not-found": "the profile's preamble/sync word was not found in some bursts",
+    "pattern-not-locked": "the known payload pattern did not lock in some bursts",
+    "not-awgn": "branch energies do not follow the white-noise laws (interference, fading?)",
+    "detection-loss": "correlators capture much less energy than the power suggests",
+    "level-spread": "burst levels differ by more than 3 dB (fading or several transmitters)",
+    "below-requirement": "the mean Eb/N0 is below what the required BER needs",
+    "some-bursts-below-requirement": "the weakest bursts are below the requirement",
+    "ber-disagrees-with-ebn0": "measured errors disagree with the fitted Eb/N0: not plain noise",
+    "fit-failed": "the Eb/N0 fit failed on some bursts",
+    "too-few-symbols": "some bursts hold too few symbols to fit",
+    "link-not-estimated": "carrier or rates could not be estimated on some bursts",
+    "symbol-rate-mismatch": "the symbol rate in the capture differs from the profile's",
+    "tone-spacing-mismatch": "the tone spacing in the capture differs from the profile's",
+}
+
+
+def report_to_dict(report: MeasurementReport) -> dict:
+    """The JSON document of a measurement (see docs/report-format.md)."""
+    f = report.facts
+    s = report.summary
+    d = {
+        "format": FORMAT,
+        "format_version": FORMAT_VERSION,
+        "generator": f"iqstat {__version__}",
+        "caution": CAUTION,
+        "capture": {
+            "name": f.name,
+            "datatype": f.datatype,
+            "sample_rate_hz": f.sample_rate_hz,
+            "samples": f.samples,
+            "duration_s": f.duration_s,
+            "center_frequency_hz": f.center_frequency_hz,
+            "start_datetime": f.start_datetime,
+            "mean_power_dbfs": f.mean_power_dbfs,
+            "peak_power_dbfs": f.peak_power_dbfs,
+            "clipped_fraction": f.clipped_fraction,
+            "dc_offset_dbfs": f.dc_offset_dbfs,
+            "noise_floor_dbfs": report.detection.noise_floor_dbfs,
+            "noise_psd_dbfs_per_hz": report.detection.noise_psd_db_per_hz,
+            "detection_band_hz": report.detection.band_hz,
+        },
+        "profile": report.profile.to_dict(),
+        "link": report.link.to_dict(),
+        "bursts": [b.to_dict() for b in report.bursts],
+        "summary": s.to_dict(),
+    }
+    return json_safe(d)
+
+
+def _db(v, digits=1, unit=" dB") -> str:
+    return "—" if v is None or not math.isfinite(v) else f"{v:.{digits}f}{unit}"
+
+
+def _ber(v) -> str:
+    if v is None:
+        return "—"
+    if v == 0:
+        return "0"
+    return f"{v:.2e}"
+
+
+def _ci(ci, fmt) -> str:
+    if ci is None:
+        return ""
+    return f" [{fmt(ci[0])} … {fmt(ci[1])}]"
+
+
+def _hz(v) -> str:
+    if v is None:
+        return "—"
+    return f"{v / 1e3:.4g} kHz" if abs(v) >= 1e3 else f"{v:.1f} Hz"
+
+
+def render_report(report: MeasurementReport, console: Console, *, max_bursts: int = 40) -> None:
+    """Print the capture facts, link, per-burst table and headline."""
+    f, s, link = report.facts, report.summary, report.link
+    console.print(Text(f"iqstat {__version__} · {f.name}", style="bold"))
+    console.print(
+        f"  {f.samples:,} samples of {f.datatype} at {f.sample_rate_hz / 1e3:g} kS/s "
+        f"({f.duration_s:.3f} s); noise floor {_db(report.detection.noise_floor_dbfs, 1, ' dBFS')}"
+        f", peak {_db(f.peak_power_dbfs, 1, ' dBFS')}",
+        markup=False, highlight=False,
+    )
+    src = {"profile": "given", "estimated": "estimated", "n/a": "", "unknown": "unknown"}
+    parts = [link.modulation]
+    if link.symbol_rate_hz is not None:
+        parts.append(f"{link.symbol_rate_hz:.2f} Bd ({src[link.symbol_rate_source]})")
+    if link.tone_spacing_hz is not None:
+        parts.append(f"tone spacing {link.tone_spacing_hz:.1f} Hz "
+                     f"({src[link.tone_spacing_source]}), h = {link.modulation_index:.3f}")
+    if link.tone_correlation:
+        parts.append(f"|ρ| = {link.tone_correlation:.3f}")
+    console.print("  link: " + ", ".join(parts), markup=False, highlight=False)
+    if report.bursts:
+        console.print(_burst_table(report.bursts, max_bursts))
+    _headline(report, console)
+
+
+def _burst_table(bursts: tuple[BurstResult, ...], max_rows: int) -> Table:
+    t = Table(title="Bursts", title_justify="left", show_lines=False, pad_edge=False)
+    for col, just in [("#", "right"), ("start", "right"), ("symbols", "right"),
+                      ("CFO", "right"), ("clock", "right"), ("Eb/N0", "right"),
+                      ("95 % CI", "right"), ("power-based", "right"), ("BER pred.", "right"),
+                      ("errors/bits", "right"), ("flags", "left")]:
+        t.add_column(col, justify=just, no_wrap=col != "flags")
+    shown = bursts if len(bursts) <= max_rows else bursts[:max_rows]
+    for b in shown:
+        fit = b.fit
+        ci = fit.ebn0_db_ci95 if fit is not None and fit.converged else None
+        bc = b.bit_check
+        errs = f"{bc.bit_errors}/{bc.bits_checked}" if bc is not None and bc.locked else "—"
+        t.add_row(
+            str(b.index), f"{b.start_sample:,}", str(b.symbols), _hz(b.cfo_hz),
+            "—" if b.timing is None else f"{b.timing.clock_offset_ppm:+.1f} ppm",
+            _db(b.ebn0_db), "—" if ci is None else f"{ci[0]:.1f} … {ci[1]:.1f}",
+            _db(b.available_ebn0_db), _ber(b.predicted_ber), errs, ", ".join(b.flags),
+        )
+    if len(bursts) > max_rows:
+        t.caption = f"{len(bursts) - max_rows} more bursts in the JSON report"
+    return t
+
+
+def _headline(report: MeasurementReport, console: Console) -> None:
+    s = report.summary
+    t = Table(show_header=False, title="Capture result", title_justify="left", box=None,
+              pad_edge=False)
+    t.add_column("what", style="bold")
+    t.add_column("value")
+    t.add_row("bursts measured", f"{s.bursts_measured} of {s.bursts} ({s.symbols:,} symbols)")
+    t.add_row("Eb/N0 at the correlators",
+              _db(s.ebn0_db, 2) + _ci(s.ebn0_db_ci95, lambda v: f"{v:.2f}")
+              + (f"   spread {s.ebn0_db_min:.1f} … {s.ebn0_db_max:.1f} dB"
+                 if s.ebn0_db_min is not None and s.bursts_measured > 1 else ""))
+    t.add_row("Es/N0", _db(s.esn0_db, 2))
+    if s.available_ebn0_db is not None:
+        t.add_row("Eb/N0 from power", _db(s.available_ebn0_db, 2)
+                  + f"   (detection loss {_db(s.detection_loss_db, 2)})")
+    if s.ebn0_db_dd is not None:
+        t.add_row("decision-directed Eb/N0", _db(s.ebn0_db_dd, 2)
+                  + "   (for comparison; biased high at low Eb/N0)")
+    t.add_row("predicted BER", _ber(s.predicted_ber))
+    if s.bits_checked:
+        t.add_row("measured BER", f"{_ber(s.measured_ber)}{_ci(s.measured_ber_ci95, _ber)}"
+                  f"   ({s.bit_errors} errors in {s.bits_checked:,} known bits, "
+                  f"{s.bursts_checked} bursts)")
+    else:
+        t.add_row("measured BER", "— (no known bits checked)")
+    if s.required_ber is not None:
+        t.add_row("required", f"BER {s.required_ber:.0e} → Eb/N0 {_db(s.required_ebn0_db, 2)}")
+        style = "green" if s.margin_db is not None and s.margin_db >= 0 else "red"
+        t.add_row("margin", Text(_db(s.margin_db, 2) + (
+            f"   (weakest burst {_db(s.worst_burst_margin_db, 2)})"
+            if s.worst_burst_margin_db is not None and s.bursts_measured > 1 else ""),
+            style=style))
+    console.print(t)
+    if s.flags:
+        console.print(Text("flags:", style="bold yellow"))
+        for fl in s.flags:
+            console.print(f"  {fl}: {FLAG_TEXT.get(fl, '')}", markup=False, highlight=False)
+    console.print(Text(s.message, style="dim"))
+    console.print(Text(CAUTION, style="dim italic"))
