@@ -428,7 +428,7 @@ def truth_document(truth: Truth, scenario: Scenario) -> dict:
         "version": TRUTH_VERSION,
         "convention": CONVENTION,
         "scenario": {
-            "source": scenario.source,
+            "file": Path(scenario.source).name,  # the name only: no machine-specific path
             "name": scenario.name,
             "document": scenario.document,
         },
