@@ -1,0 +1,837 @@
+"""Noise floor and burst detection: where in a capture are the bursts, and what is the noise.
+
+One streaming pass over the samples computes, per frame of ``L`` samples, the mean power in the
+full band and in the occupied signal band (a partial DFT of each frame, rectangular window, so
+that under white noise the in-band frame power is exactly Gamma distributed). The occupied band
+is chosen beforehand from a Hann-windowed spectrum of a spread subsample of frames. Detection
+runs a gamma-law threshold test at several smoothing lengths, joins the results so that weak
+bursts are not split nor strong close bursts merged, and refines every edge to one sample with
+a change-point estimate on band-limited samples read back around the edge. The noise-only gaps
+give the noise variance and the noise PSD.
+
+Memory: two float32 values per frame (8 bytes per ``L`` samples) plus one chunk; the capture is
+never loaded whole.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass
+
+import numpy as np
+import scipy.fft
+from scipy import stats
+from scipy.ndimage import median_filter
+
+from iqstat.capture import Capture
+from iqstat.errors import MeasurementError, ParameterError
+
+# Smoothing lengths of the detector, in frames (~1, 4, 16, 65 ms at the default frame length).
+SMOOTHING_FRAMES = (1, 4, 16, 64)
+# Band survey: blocks of contiguous frames spread over the capture.
+_SURVEY_BLOCK_FRAMES = 16
+_SURVEY_MAX_BLOCKS = 128
+# A survey bin is "occupied" when its excess over the noise reference exceeds this many
+# standard deviations of the estimate (common practice, no source).
+_OCCUPIED_Z = 6.0
+# Minimum relative excess of an occupied bin whatever the statistics say (tolerates a noise
+# reference that is a few per cent off; common practice, no source).
+_OCCUPIED_MIN_EXCESS = 0.05
+# A gap between two detections is kept (the bursts are split) when the noise hypothesis beats
+# the "burst continues" hypothesis by this log-likelihood ratio (1e4 : 1; common practice).
+_SPLIT_LOG_LR = math.log(1e4)
+# Use a matrix product for the in-band DFT bins when they are at most this fraction of the
+# frame's bins, else a full FFT (the product is cheaper for narrow bands).
+_MATMUL_MAX_BIN_FRACTION = 1.0 / 6.0
+# Sample-level edge search: this many frames either side of the frame-level edge.
+_REFINE_HALF_FRAMES = 3
+# At most this many gap frames are read back for the noise PSD.
+_PSD_MAX_FRAMES = 1024
+# Lowest in-band SNR reported, dB (a burst whose in-band excess is not positive).
+_MIN_BAND_SNR_DB = -30.0
+_TINY = 1e-300
+
+
+# --------------------------------------------------------------------------------------------
+# Results
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Burst:
+    """One detected burst.
+
+    Attributes
+    ----------
+    index : int
+        Position of the burst in the capture, 0-based.
+    start_sample, stop_sample : int
+        First sample and one past the last sample of the burst.
+    power_dbfs : float
+        Mean power of the samples inside, full band, dBFS (signal plus noise).
+    band_snr_db : float
+        In-band SNR, (P_band − N_band)/N_band, from the frames inside; floored at −30 dB.
+    peak_dbfs : float
+        Highest one-frame mean power (full band) among frames wholly inside the burst, dBFS
+        (the mean power for bursts shorter than two frames).
+    """
+
+    index: int
+    start_sample: int
+    stop_sample: int
+    power_dbfs: float
+    band_snr_db: float
+    peak_dbfs: float
+
+    @property
+    def n_samples(self) -> int:
+        return self.stop_sample - self.start_sample
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        d["n_samples"] = self.n_samples
+        return d
+
+
+@dataclass(frozen=True)
+class BurstDetection:
+    """Bursts of a capture and the noise measured in the gaps between them.
+
+    Attributes
+    ----------
+    bursts : tuple of Burst
+    noise_floor_dbfs : float
+        Full-band noise power per sample, dBFS (10·log10 of ``noise_var``).
+    noise_var : float
+        σ², full-band noise variance per complex sample (linear, full-scale units).
+    noise_psd_db_per_hz : float
+        Noise PSD in the signal band away from DC, dBFS/Hz (white noise: σ²/fs).
+    band_hz : tuple of float or None
+        Edges of the occupied band used for detection (bin edges), Hz relative to the centre
+        frequency; None when the full band was used.
+    threshold_dbfs : float
+        Start threshold of the one-frame in-band power, dBFS.
+    frame_samples : int
+        Frame length L used for the frame powers.
+    gap_samples : int
+        Samples in the noise-only gaps the noise estimates come from.
+    message : str
+        One line on the outcome.
+    """
+
+    bursts: tuple[Burst, ...]
+    noise_floor_dbfs: float
+    noise_var: float
+    noise_psd_db_per_hz: float
+    band_hz: tuple[float, float] | None
+    threshold_dbfs: float
+    frame_samples: int
+    gap_samples: int
+    message: str
+
+    def to_dict(self) -> dict:
+        return {
+            "bursts": [b.to_dict() for b in self.bursts],
+            "noise_floor_dbfs": self.noise_floor_dbfs,
+            "noise_var": self.noise_var,
+            "noise_psd_db_per_hz": self.noise_psd_db_per_hz,
+            "band_hz": list(self.band_hz) if self.band_hz is not None else None,
+            "threshold_dbfs": self.threshold_dbfs,
+            "frame_samples": self.frame_samples,
+            "gap_samples": self.gap_samples,
+            "message": self.message,
+        }
+
+
+@dataclass(frozen=True)
+class FramePowers:
+    """Per-frame mean powers of a capture (the detector's input).
+
+    Attributes
+    ----------
+    full : ndarray of float32, shape (n_frames,)
+        Mean |x|² per frame, full band.
+    band : ndarray of float32, shape (n_frames,)
+        Mean in-band power per sample per frame: Σ_{k∈band}|X_k|²/L² (equals ``full`` when the
+        full band is used).
+    band_dof : float
+        Gamma shape of one ``band`` value under white Gaussian noise (number of DFT bins in the
+        band; L for the full band of a complex capture, L/2 for a real one).
+    band_hz : tuple of float or None
+        Band edges used (bin edges), Hz; None for the full band.
+    frame_samples : int
+    """
+
+    full: np.ndarray
+    band: np.ndarray
+    band_dof: float
+    band_hz: tuple[float, float] | None
+    frame_samples: int
+
+
+# --------------------------------------------------------------------------------------------
+# Gamma-law helpers (pure)
+# --------------------------------------------------------------------------------------------
+def noise_floor_from_frames(frame_power, frame_len: float, quantile: float = 0.1) -> float:
+    """Noise power from a low quantile of frame powers, scaled by its Gamma-law quantile.
+
+    Parameters
+    ----------
+    frame_power : array_like of float, shape (n_frames,)
+        Mean power of each frame (linear).
+    frame_len : float
+        Number of independent complex Gaussian samples averaged per frame (the Gamma shape;
+        the number of DFT bins for an in-band power; may be non-integer).
+    quantile : float
+        Quantile used, 0 < quantile < 1. A low quantile stays on the noise when bursts fill
+        up to about (1 − quantile) of the frames; the median does not.
+
+    Returns
+    -------
+    float
+        Estimated noise power per sample (same units as ``frame_power``).
+
+    Notes
+    -----
+    The power of one complex Gaussian sample of variance σ² is exponential with mean σ²; the
+    mean of L such samples is Gamma(L, σ²/L) [1]_. The q-quantile of the frame powers is thus
+    σ²·G⁻¹(q; L)/L and σ̂² = Q̂(q)·L / G⁻¹(q; L).
+
+    References
+    ----------
+    .. [1] S. M. Kay, Fundamentals of Statistical Signal Processing, Vol. II: Detection
+       Theory, Prentice Hall, 1998, §2.2 (chi-squared laws) [mem].
+    """
+    p = np.asarray(frame_power, dtype=np.float64).ravel()
+    if p.size == 0:
+        raise ParameterError("frame_power is empty; give at least one frame power")
+    if not np.all(np.isfinite(p)) or np.any(p < 0):
+        raise ParameterError("frame_power must be finite and non-negative")
+    if not (np.isfinite(frame_len) and frame_len > 0):
+        raise ParameterError(f"frame_len {frame_len!r} must be a positive number of samples")
+    if not 0.0 < quantile < 1.0:
+        raise ParameterError(f"quantile {quantile!r} must be between 0 and 1 (e.g. 0.1)")
+    q_hat = float(np.quantile(p, quantile))
+    # Q(q) = σ²·G⁻¹(q; L)/L (Notes)
+    return q_hat / float(stats.gamma.ppf(quantile, frame_len, scale=1.0 / frame_len))
+
+
+def threshold_from_floor(floor: float, n_avg: float, pfa: float) -> float:
+    """Detection threshold on an n_avg-sample mean power for a false-alarm probability.
+
+    Parameters
+    ----------
+    floor : float
+        Noise power per sample σ² (linear).
+    n_avg : float
+        Independent complex samples (Gamma shape) in the averaged power.
+    pfa : float
+        Probability that noise alone exceeds the threshold, 0 < pfa < 1.
+
+    Returns
+    -------
+    float
+        Threshold t with P(mean power > t | noise) = pfa: t = σ²·G⁻¹(1 − pfa; n)/n.
+    """
+    if not (np.isfinite(floor) and floor >= 0):
+        raise ParameterError(f"floor {floor!r} must be a finite non-negative power")
+    if not (np.isfinite(n_avg) and n_avg > 0):
+        raise ParameterError(f"n_avg {n_avg!r} must be a positive number of samples")
+    if not 0.0 < pfa < 1.0:
+        raise ParameterError(f"pfa {pfa!r} must be between 0 and 1 (e.g. 1e-6)")
+    return float(floor) * float(stats.gamma.isf(pfa, n_avg, scale=1.0 / n_avg))
+
+
+# --------------------------------------------------------------------------------------------
+# Band survey and frame powers
+# --------------------------------------------------------------------------------------------
+def _default_frame_samples(sample_rate_hz: float) -> int:
+    """A power of two near 1 ms of samples, 64..8192."""
+    return int(2 ** np.clip(round(math.log2(max(sample_rate_hz / 1000.0, 1.0))), 6, 13))
+
+
+def _bin_freqs(frame_samples: int, sample_rate_hz: float) -> np.ndarray:
+    return np.fft.fftfreq(frame_samples, 1.0 / sample_rate_hz)
+
+
+def _bins_for_band(band_hz, frame_samples: int, sample_rate_hz: float) -> np.ndarray:
+    """DFT bin indices (numpy order) whose centres lie in [f_lo, f_hi]; at least one bin."""
+    f_lo, f_hi = band_hz
+    f = _bin_freqs(frame_samples, sample_rate_hz)
+    bins = np.flatnonzero((f >= f_lo) & (f <= f_hi))
+    if bins.size == 0:
+        bins = np.array([int(np.argmin(np.abs(f - 0.5 * (f_lo + f_hi))))])
+    return bins
+
+
+def _band_edges(bins: np.ndarray, frame_samples: int, sample_rate_hz: float):
+    f = _bin_freqs(frame_samples, sample_rate_hz)[bins]
+    half = 0.5 * sample_rate_hz / frame_samples
+    return (float(f.min() - half), float(f.max() + half))
+
+
+def _survey_band(capture: Capture, frame_samples: int) -> np.ndarray | None:
+    """Choose the occupied DFT bins from a Hann spectrum of spread blocks of frames."""
+    L = frame_samples
+    n_frames = capture.n_samples // L
+    bf = min(_SURVEY_BLOCK_FRAMES, n_frames)
+    n_blk = min(_SURVEY_MAX_BLOCKS, n_frames // bf)
+    if n_blk < 4:
+        return None
+    starts = np.round(np.linspace(0, n_frames - bf, n_blk)).astype(np.int64)
+    w = np.hanning(L + 2)[1:-1].astype(np.float32)  # no zero end points
+    spec = np.empty((n_blk, L))
+    for i, s in enumerate(starts):
+        x = capture.read(int(s) * L, bf * L).reshape(bf, L)
+        X = np.fft.fft(x * w, axis=1)
+        spec[i] = np.mean(X.real**2 + X.imag**2, axis=0)
+    spec = np.fft.fftshift(spec, axes=1)
+    q = 0.1
+    # Hann-windowed bins of white noise are complex Gaussian, so a block mean over bf frames is
+    # Gamma(bf): the same low-quantile estimator as for frame powers.
+    g_q = stats.gamma.ppf(q, bf, scale=1.0 / bf)
+    own = np.quantile(spec, q, axis=0) / g_q
+    # Asymptotic relative std of a sample quantile: sqrt(q(1−q)/n)/(f(x_q)·x_q).
+    s_own = math.sqrt(q * (1 - q) / n_blk) / (stats.gamma.pdf(g_q, bf, scale=1.0 / bf) * g_q)
+    width = max(5, (L // 8) | 1)
+    ref = median_filter(own, size=width, mode="wrap")
+    mean = spec.mean(axis=0)
+    s_mean = 1.0 / math.sqrt(n_blk * bf)
+    blk_max = spec.max(axis=0)
+
+    thr_own = max(_OCCUPIED_Z * math.hypot(s_mean, s_own), _OCCUPIED_MIN_EXCESS)
+    thr_ref = max(_OCCUPIED_Z * math.hypot(s_mean, s_own / math.sqrt(width)), _OCCUPIED_MIN_EXCESS)
+    g_max = stats.gamma.isf(1e-3 / (n_blk * L), bf, scale=1.0 / bf) * (1 + _OCCUPIED_Z * s_own)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        intermittent = (mean / own - 1 > thr_own) | (blk_max / own > g_max)
+        stationary = mean / ref - 1 > thr_ref
+    k = np.arange(L) - L // 2  # shifted bin numbers
+    dc = np.abs(k) <= 1  # a stationary line at DC is an LO spur, not a signal
+    occupied = intermittent | (stationary & ~dc)
+    idx = np.flatnonzero(occupied)
+    if idx.size == 0:
+        return None
+    # Clusters of occupied bins (gaps up to L/16 bins); keep the one with most excess power.
+    breaks = np.flatnonzero(np.diff(idx) > max(1, L // 16)) + 1
+    groups = np.split(idx, breaks)
+    excess = np.maximum(mean - ref, 0.0)
+    best = max(groups, key=lambda g: excess[g[0] : g[-1] + 1].sum())
+    lo, hi = max(best[0] - 1, 0), min(best[-1] + 1, L - 1)
+    return np.sort(np.fft.fftshift(np.arange(L))[lo : hi + 1])
+
+
+def measure_frame_powers(
+    capture: Capture,
+    *,
+    frame_samples: int,
+    band_hz: tuple[float, float] | None = None,
+    chunk_samples: int = 1 << 20,
+) -> FramePowers:
+    """Per-frame full-band and in-band mean powers in one streaming pass.
+
+    Parameters
+    ----------
+    capture : Capture
+    frame_samples : int
+        Frame length L [samples]; the last partial frame is not measured.
+    band_hz : (float, float), optional
+        Band [f_lo, f_hi] in Hz relative to the centre frequency; the DFT bins of the frame
+        whose centres fall inside are used. None: full band.
+    chunk_samples : int
+        Samples read per chunk (memory use is about 8 bytes × chunk_samples).
+
+    Returns
+    -------
+    FramePowers
+
+    Notes
+    -----
+    With a rectangular window the L-point DFT of white complex Gaussian noise has independent
+    bins with E|X_k|² = Lσ², so Σ_{k∈B}|X_k|²/L² ~ Gamma(|B|, σ²/L) [1]_: the in-band frame
+    power is Gamma with shape |B| and mean σ²|B|/L (the noise in the band).
+
+    References
+    ----------
+    .. [1] S. M. Kay, Fundamentals of Statistical Signal Processing, Vol. II: Detection
+       Theory, Prentice Hall, 1998, §2.2 [mem].
+    """
+    L = int(frame_samples)
+    fs = capture.sample_rate_hz
+    n_frames = capture.n_samples // L
+    p_full = np.empty(n_frames, dtype=np.float32)
+    if band_hz is None:
+        bins, p_band, edges = None, p_full, None
+        dof = float(L if capture.is_complex else L / 2)
+    else:
+        bins = _bins_for_band(band_hz, L, fs)
+        p_band = np.empty(n_frames, dtype=np.float32)
+        edges = _band_edges(bins, L, fs)
+        dof = float(bins.size)
+    use_mm = bins is not None and bins.size <= _MATMUL_MAX_BIN_FRACTION * L
+    if use_mm:
+        # Real form of the partial DFT, so that a float32 matrix product (fast, and cheap on a
+        # busy core) gives [Re X_k, Im X_k] from the interleaved [re, im] samples.
+        w = np.exp(-2j * np.pi * np.arange(L)[:, None] * bins[None, :] / L)
+        dft = np.empty((2 * L, 2 * bins.size), dtype=np.float32)
+        dft[0::2, 0::2], dft[1::2, 0::2] = w.real, -w.imag
+        dft[0::2, 1::2], dft[1::2, 1::2] = w.imag, w.real
+
+    fi = 0
+
+    def process(frames: np.ndarray) -> None:
+        nonlocal fi
+        m = frames.shape[0]
+        v = frames.view(np.float32)
+        p_full[fi : fi + m] = np.einsum("ij,ij->i", v, v) / L
+        if bins is not None:
+            if use_mm:
+                vb = v @ dft
+            else:
+                vb = np.fft.fft(frames, axis=1)[:, bins].view(np.float32)
+            p_band[fi : fi + m] = np.einsum("ij,ij->i", vb, vb) / (L * L)
+        fi += m
+
+    carry = np.empty(L, dtype=np.complex64)
+    n_carry = 0
+    for _, x in capture.iter_chunks(chunk_samples, 0, n_frames * L):
+        pos = 0
+        if n_carry:
+            take = min(L - n_carry, x.size)
+            carry[n_carry : n_carry + take] = x[:take]
+            n_carry += take
+            pos = take
+            if n_carry < L:
+                continue
+            process(carry[None, :])
+            n_carry = 0
+        nf = (x.size - pos) // L
+        if nf:
+            process(x[pos : pos + nf * L].reshape(nf, L))
+        rest = x.size - pos - nf * L
+        if rest:
+            carry[:rest] = x[pos + nf * L :]
+            n_carry = rest
+    return FramePowers(p_full, p_band, dof, edges, L)
+
+
+# --------------------------------------------------------------------------------------------
+# Detection on frame powers
+# --------------------------------------------------------------------------------------------
+def _runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Start and stop (exclusive) indices of the runs of True in a boolean array."""
+    d = np.diff(np.concatenate(([0], mask.view(np.int8), [0])))
+    return np.flatnonzero(d == 1), np.flatnonzero(d == -1)
+
+
+def _scale_regions(p: np.ndarray, dof: float, floor: float, pfa: float, m: int) -> np.ndarray:
+    """Frame intervals (k, 2) where the m-frame moving mean passes the hysteresis test."""
+    cs = np.concatenate(([0.0], np.cumsum(p, dtype=np.float64)))
+    stat = (cs[m:] - cs[:-m]) / m  # window i covers frames [i, i + m)
+    t_start = threshold_from_floor(floor, m * dof, pfa)
+    t_stop = threshold_from_floor(floor, m * dof, math.sqrt(pfa))
+    r0, r1 = _runs(stat > t_stop)
+    if r0.size == 0:
+        return np.empty((0, 2), dtype=np.int64)
+    above = np.concatenate(([0], np.cumsum(stat > t_start)))
+    keep = above[r1] - above[r0] > 0
+    return np.stack([r0[keep], r1[keep] - 1 + m], axis=1).astype(np.int64)
+
+
+@dataclass(frozen=True)
+class _Group:
+    start: int  # frames, first piece
+    stop: int  # frames, last piece (exclusive)
+    start_lo: int  # window for the start edge, frames
+    start_hi: int
+    stop_lo: int  # window for the stop edge, frames
+    stop_hi: int
+
+
+def _split_gap(p: np.ndarray, dof: float, floor: float, a, b) -> bool:
+    """Whether the frames between pieces a and b are decisively noise rather than burst."""
+    gap = p[a[1] : b[0]]
+    if gap.size == 0 or floor <= 0:
+        return False
+    s = min(p[a[0] : a[1]].mean(), p[b[0] : b[1]].mean()) - floor
+    if s <= 0:
+        return False
+    n, x = floor, float(gap.mean())
+    # log p(gap | noise N) − log p(gap | burst N + S) for a Gamma(G, ·/G) mean, G = n_gap·dof
+    llr = gap.size * dof * (math.log((n + s) / n) - x / n + x / (n + s))
+    return llr > _SPLIT_LOG_LR
+
+
+def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[_Group]:
+    """Join the detections of all smoothing lengths into bursts with edge search windows."""
+    n_frames = p.size
+    scales = [m for m in SMOOTHING_FRAMES if m <= n_frames]
+    per_scale = [(m, _scale_regions(p, dof, floor, pfa, m)) for m in scales]
+    allint = [(int(a), int(b), m) for m, r in per_scale for a, b in r]
+    if not allint:
+        return []
+    # Clusters: connected components of the union of all intervals.
+    order = sorted(allint)
+    clusters, cur, reach = [], [order[0]], order[0][1]
+    for iv in order[1:]:
+        if iv[0] <= reach:
+            cur.append(iv)
+            reach = max(reach, iv[1])
+        else:
+            clusters.append(cur)
+            cur, reach = [iv], iv[1]
+    clusters.append(cur)
+
+    groups: list[_Group] = []
+    for cl in clusters:
+        # Pieces: finest-scale intervals first, coarser ones only where nothing finer was found.
+        pieces: list[tuple[int, int, int]] = []
+        for m in scales:
+            for a, b, mm in cl:
+                if mm == m and all(b <= pa or a >= pb for pa, pb, _ in pieces):
+                    pieces.append((a, b, m))
+        pieces.sort()
+        # merged entries: [start, stop, scale of the first piece, scale of the last piece]
+        merged = [[pieces[0][0], pieces[0][1], pieces[0][2], pieces[0][2]]]
+        for a, b, m in pieces[1:]:
+            last = merged[-1]
+            if a <= last[1] or not _split_gap(p, dof, floor, last, (a, b)):
+                if b > last[1]:
+                    last[1], last[3] = b, m
+            else:
+                merged.append([a, b, m, m])
+        # A piece found at smoothing length m may start up to m frames before the true edge.
+        for i, (a, b, m_first, m_last) in enumerate(merged):
+            left = merged[i - 1][1] if i else 0
+            right = merged[i + 1][0] if i + 1 < len(merged) else n_frames
+            over = [iv for iv in cl if iv[1] > a and iv[0] < b]
+            lo = max(left, min(iv[0] for iv in over) - 1)
+            hi = min(right, max(iv[1] for iv in over) + 1)
+            mid = (a + b + 1) // 2
+            groups.append(
+                _Group(
+                    start=a,
+                    stop=b,
+                    start_lo=lo,
+                    start_hi=max(min(a + m_first + 1, mid), lo + 1),
+                    stop_lo=min(max(b - m_last - 1, mid), hi - 1),
+                    stop_hi=hi,
+                )
+            )
+    return groups
+
+
+# --------------------------------------------------------------------------------------------
+# Edge refinement and burst figures (read back a few samples)
+# --------------------------------------------------------------------------------------------
+def _band_power_samples(
+    capture: Capture, lo: int, hi: int, band_hz: tuple[float, float] | None
+) -> np.ndarray:
+    """|y|² of samples [lo, hi) band-limited to band_hz (brick-wall FFT mask, padded)."""
+    fs = capture.sample_rate_hz
+    if band_hz is None:
+        x = capture.read(lo, hi - lo)
+        return (x.real.astype(np.float64) ** 2) + x.imag.astype(np.float64) ** 2
+    width = band_hz[1] - band_hz[0]
+    pad = int(math.ceil(8.0 * fs / width))
+    a, b = max(0, lo - pad), min(capture.n_samples, hi + pad)
+    x = capture.read(a, b - a)
+    nfft = scipy.fft.next_fast_len(x.size + pad)
+    X = scipy.fft.fft(x, nfft)
+    f = scipy.fft.fftfreq(nfft, 1.0 / fs)
+    X[(f < band_hz[0]) | (f > band_hz[1])] = 0
+    y = scipy.fft.ifft(X)[lo - a : hi - a]
+    return y.real**2 + y.imag**2
+
+
+def _change_point(p: np.ndarray, noise: float, burst: float, rising: bool) -> int | None:
+    """ML position of a step between two known mean powers, or None when they do not differ.
+
+    Each sample adds the log-likelihood ratio r = p·(1/N − 1/B) − ln(B/N) of exponential
+    powers of mean B (burst) against N (noise); the step maximises Σ r after it (rising edge)
+    or before it (falling edge), a CUSUM with known levels (Page, Biometrika 41, 1954 [mem]).
+    Signal-plus-noise power is not exponential, but r stays linear in p, so only the
+    variance, not the location, of the estimate depends on that approximation.
+    """
+    if not (burst > 1.01 * noise > 0) or p.size < 2:
+        return None
+    r = p * (1.0 / noise - 1.0 / burst) - math.log(burst / noise)
+    c = np.concatenate(([0.0], np.cumsum(r)))
+    # rising: maximise c[n] − c[τ] → minimise c[τ]; falling: maximise c[τ]
+    return int(np.argmin(c)) if rising else int(np.argmax(c))
+
+
+def _refine(
+    capture, g: _Group, L: int, band_hz, p: np.ndarray, floor: float, dof: float
+) -> tuple[int, int]:
+    """Edges of a group to one sample: frame-level CUSUM, then sample level around it."""
+    n = capture.n_samples
+    n_frames = p.size
+    level = float(np.mean(p[g.start : g.stop]))
+    start, stop = g.start * L, min(g.stop * L, n)
+    edges = []
+    for lo, hi, rising, default in (
+        (g.start_lo, g.start_hi, True, start),
+        (g.stop_lo, g.stop_hi, False, stop),
+    ):
+        # Frame level: the same CUSUM on frame powers (Gamma(dof) ≈ dof exponential samples).
+        t = _change_point(p[lo:hi] * dof, floor * dof, level * dof, rising)
+        if t is None:
+            edges.append(default)
+            continue
+        e = lo + t
+        a = max(lo, e - _REFINE_HALF_FRAMES) * L
+        b = min(hi, e + _REFINE_HALF_FRAMES)
+        # A window reaching the last frame also takes the partial frame after it.
+        b = n if b >= n_frames else b * L
+        t = _change_point(_band_power_samples(capture, a, b, band_hz), floor, level, rising)
+        edges.append(a + t if t is not None else e * L)
+    start, stop = edges
+    if stop <= start:
+        start, stop = g.start * L, min(g.stop * L, n)
+    return start, stop
+
+
+def _mean_power(capture: Capture, fp: FramePowers, s0: int, s1: int) -> float:
+    """Mean |x|² over samples [s0, s1): whole frames from the frame powers, ends read back."""
+    L = fp.frame_samples
+    f0, f1 = -(-s0 // L), min(s1 // L, fp.full.size)
+    if f1 - f0 < 1:
+        x = capture.read(s0, s1 - s0)
+        return float(np.mean(np.abs(x.astype(np.complex128)) ** 2)) if x.size else 0.0
+    total = float(np.sum(fp.full[f0:f1], dtype=np.float64)) * L
+    for a, b in ((s0, f0 * L), (f1 * L, s1)):
+        if b > a:
+            total += float(np.sum(np.abs(capture.read(a, b - a).astype(np.complex128)) ** 2))
+    return total / (s1 - s0)
+
+
+def _noise_psd(capture: Capture, gap_frames: np.ndarray, L: int, band_hz) -> float:
+    """Median over band bins (DC excluded) of a Hann-window PSD of gap frames, FS²/Hz."""
+    fs = capture.sample_rate_hz
+    if gap_frames.size == 0:
+        return float("nan")
+    pick = gap_frames[
+        np.round(np.linspace(0, gap_frames.size - 1, min(_PSD_MAX_FRAMES, gap_frames.size))).astype(
+            np.int64
+        )
+    ]
+    pick = np.unique(pick)
+    w = np.hanning(L + 2)[1:-1]
+    x = np.stack([capture.read(int(i) * L, L) for i in pick])
+    X = np.fft.fft(x * w, axis=1)
+    psd = np.mean(X.real**2 + X.imag**2, axis=0) / (fs * np.sum(w**2))
+    f = _bin_freqs(L, fs)
+    not_dc = np.abs(f) > 1.5 * fs / L
+    if band_hz is None:
+        sel = not_dc & (np.abs(f) <= 0.4 * fs)
+    else:
+        sel = not_dc & (f >= band_hz[0]) & (f <= band_hz[1])
+        if sel.sum() < 3:
+            half = 0.5 * (band_hz[1] - band_hz[0]) + 3 * fs / L
+            mid = 0.5 * (band_hz[0] + band_hz[1])
+            sel = not_dc & (np.abs(f - mid) <= half)
+    n = pick.size
+    # The median over bins of per-bin means concentrates at the Gamma(n, 1/n) median.
+    return float(np.median(psd[sel]) / stats.gamma.median(n, scale=1.0 / n))
+
+
+def _db(x: float) -> float:
+    return 10.0 * math.log10(x) if x > 0 else float("-inf")
+
+
+# --------------------------------------------------------------------------------------------
+# Public entry point
+# --------------------------------------------------------------------------------------------
+def _check_band(band_hz, fs: float) -> tuple[float, float]:
+    try:
+        f_lo, f_hi = (float(v) for v in band_hz)
+    except (TypeError, ValueError):
+        raise ParameterError(
+            f"band_hz {band_hz!r} must be two frequencies (f_lo, f_hi) in Hz"
+        ) from None
+    if not (np.isfinite(f_lo) and np.isfinite(f_hi) and f_lo < f_hi):
+        raise ParameterError(f"band_hz {band_hz!r} must be finite with f_lo < f_hi")
+    if f_hi <= -fs / 2 or f_lo >= fs / 2:
+        raise ParameterError(
+            f"band_hz {band_hz!r} lies outside the captured band ±{fs / 2:g} Hz; "
+            "give frequencies relative to the centre frequency"
+        )
+    return f_lo, f_hi
+
+
+def _check_nonneg(name: str, value) -> float:
+    v = float(value)
+    if not (np.isfinite(v) and v >= 0):
+        raise ParameterError(f"{name} {value!r} must be a non-negative duration in seconds")
+    return v
+
+
+def detect_bursts(
+    capture: Capture,
+    *,
+    min_burst_s: float | None = None,
+    merge_gap_s: float | None = None,
+    pfa: float = 1e-6,
+    frame_samples: int | None = None,
+    band_hz: tuple[float, float] | None = None,
+    chunk_samples: int = 1 << 20,
+) -> BurstDetection:
+    """Find the bursts of a capture and measure the noise in the gaps.
+
+    Parameters
+    ----------
+    capture : Capture
+    min_burst_s : float, optional
+        Shortest burst kept [s]; default two frames (2·L/fs).
+    merge_gap_s : float, optional
+        Bursts separated by less than this [s] are merged; default one frame (L/fs).
+    pfa : float
+        False-alarm probability of one start-threshold test on noise (one frame position at
+        one smoothing length), 0 < pfa ≤ 0.01. On noise alone the expected number of false
+        bursts is below n_frames × 4 × pfa.
+    frame_samples : int, optional
+        Frame length L [samples]; default the power of two nearest 1 ms of samples, clipped to
+        64..8192 (256 at 250 kS/s).
+    band_hz : (float, float), optional
+        Signal band [Hz, relative to the centre frequency] to detect in; default chosen from a
+        spectrum survey of the capture (full band when nothing stands out of the noise).
+    chunk_samples : int
+        Samples per read in the streaming pass.
+
+    Returns
+    -------
+    BurstDetection
+        Bursts sorted by start, noise figures from the noise-only gaps. A capture without
+        bursts is a valid result (empty ``bursts``, message "no bursts above the floor of …").
+
+    Notes
+    -----
+    1. Band: the occupied DFT bins of a Hann spectrum of up to 128 blocks of 16 frames spread
+       over the capture (bins whose mean or block maximum stands clearly above a low-quantile
+       noise reference); the cluster with most excess power, widened by one bin.
+    2. One pass: per-frame full-band and in-band powers (:func:`measure_frame_powers`); the
+       in-band frame power is Gamma(|B|) under white noise.
+    3. Noise floor N: :func:`noise_floor_from_frames` on 4-frame means (robust to bursts
+       filling most of the capture), then re-estimated twice as the mean in-band power of the
+       frames outside every detection (the noise-only gaps).
+    4. Moving means over 1, 4, 16 and 64 frames, each tested with hysteresis: start at
+       :func:`threshold_from_floor` (pfa), continue down to the threshold for √pfa.
+       Detections of all lengths are joined; the finest one is kept where it exists, and two
+       detections are split only when the gap between them is decisively noise (likelihood
+       ratio 1e4 against the burst level of the weaker neighbour); so weak bursts are not
+       split and strong close bursts not merged.
+    5. Each edge is refined to one sample by a change-point estimate on band-limited samples
+       read back inside the window the detection allows.
+    6. noise_var is the mean full-band power of the gap frames; the noise PSD the median over
+       the band's bins (DC excluded) of a Hann-window periodogram of up to 1024 gap frames.
+    """
+    if not isinstance(capture, Capture):
+        raise ParameterError(f"capture must be an iqstat Capture, got {type(capture).__name__}")
+    fs = capture.sample_rate_hz
+    if not (np.isfinite(pfa) and 0.0 < pfa <= 0.01):
+        raise ParameterError(f"pfa {pfa!r} must be in (0, 0.01]; e.g. 1e-6")
+    if frame_samples is None:
+        L = _default_frame_samples(fs)
+    else:
+        if int(frame_samples) != frame_samples or int(frame_samples) < 16:
+            raise ParameterError(
+                f"frame_samples {frame_samples!r} must be an integer >= 16 (e.g. 256)"
+            )
+        L = int(frame_samples)
+    if int(chunk_samples) != chunk_samples or int(chunk_samples) < 1:
+        raise ParameterError(f"chunk_samples {chunk_samples!r} must be a positive integer")
+    min_burst = 2 * L if min_burst_s is None else _check_nonneg("min_burst_s", min_burst_s) * fs
+    merge_gap = L if merge_gap_s is None else _check_nonneg("merge_gap_s", merge_gap_s) * fs
+    n_frames = capture.n_samples // L
+    if n_frames < 8:
+        raise MeasurementError(
+            f"capture has {capture.n_samples} samples, too few for burst detection with "
+            f"frame_samples={L} (needs 8 frames); use a smaller frame_samples or a longer capture"
+        )
+
+    if band_hz is not None:
+        bins = _bins_for_band(_check_band(band_hz, fs), L, fs)
+    else:
+        bins = _survey_band(capture, L)
+    band_edges = None if bins is None else _band_edges(bins, L, fs)
+    fp = measure_frame_powers(
+        capture, frame_samples=L, band_hz=band_edges, chunk_samples=int(chunk_samples)
+    )
+    p = fp.band.astype(np.float64)
+    dof = fp.band_dof
+
+    n4 = n_frames // 4
+    floor = noise_floor_from_frames(p[: n4 * 4].reshape(n4, 4).mean(axis=1), 4 * dof)
+    for _ in range(4):
+        groups = _detect_groups(p, dof, floor, pfa)
+        gap = np.ones(n_frames, dtype=bool)
+        for g in groups:
+            gap[max(g.start_lo - 1, 0) : g.stop_hi + 1] = False
+        if gap.sum() < max(8, 0.05 * n_frames):
+            break  # (almost) no gaps: keep the quantile floor
+        new_floor = float(p[gap].mean())
+        if abs(new_floor - floor) <= 1e-4 * floor:
+            break
+        floor = new_floor
+
+    spans = [_refine(capture, g, L, band_edges, p, floor, dof) for g in groups]
+    spans.sort()
+    joined: list[list[int]] = []
+    for s0, s1 in spans:
+        if joined and s0 - joined[-1][1] < merge_gap:
+            joined[-1][1] = max(joined[-1][1], s1)
+        else:
+            joined.append([s0, s1])
+    joined = [sp for sp in joined if sp[1] - sp[0] >= max(min_burst, 1)]
+
+    thr = threshold_from_floor(floor, dof, pfa)
+    if joined:
+        # Final noise estimate: every frame at least one frame away from a refined burst.
+        final_gap = np.ones(n_frames, dtype=bool)
+        for s0, s1 in joined:
+            final_gap[max(s0 // L - 1, 0) : s1 // L + 2] = False
+        if final_gap.sum() >= max(8, 0.05 * n_frames):
+            gap = final_gap
+            floor = float(p[gap].mean())
+    gap_frames = np.flatnonzero(gap)
+    noise_var = (
+        float(np.mean(fp.full[gap_frames], dtype=np.float64))
+        if gap_frames.size
+        else (noise_floor_from_frames(fp.full, L if capture.is_complex else L / 2))
+    )
+    bursts = []
+    for i, (s0, s1) in enumerate(joined):
+        f0, f1 = -(-s0 // L), min(s1 // L, n_frames)
+        fr = slice(f0, f1) if f1 > f0 else slice(s0 // L, min(-(-s1 // L), n_frames))
+        pb = float(np.mean(p[fr])) if fr.stop > fr.start else floor
+        snr = (pb - floor) / floor if floor > 0 else float("inf")
+        power = _mean_power(capture, fp, s0, s1)
+        peak = float(np.max(fp.full[f0:f1])) if f1 - f0 >= 2 else power
+        bursts.append(
+            Burst(
+                index=i,
+                start_sample=int(s0),
+                stop_sample=int(s1),
+                power_dbfs=_db(power),
+                band_snr_db=max(_db(snr), _MIN_BAND_SNR_DB) if snr > 0 else _MIN_BAND_SNR_DB,
+                peak_dbfs=_db(peak),
+            )
+        )
+    psd = _noise_psd(capture, gap_frames, L, band_edges)
+    floor_dbfs = _db(noise_var)
+    if bursts:
+        message = (
+            f"{len(bursts)} burst(s) found; noise floor {floor_dbfs:.1f} dBFS, "
+            f"in-band threshold {_db(thr):.1f} dBFS"
+        )
+    else:
+        message = f"no bursts above the floor of {floor_dbfs:.1f} dBFS"
+    return BurstDetection(
+        bursts=tuple(bursts),
+        noise_floor_dbfs=floor_dbfs,
+        noise_var=noise_var,
+        noise_psd_db_per_hz=_db(psd) if np.isfinite(psd) else float("nan"),
+        band_hz=band_edges,
+        threshold_dbfs=_db(thr),
+        frame_samples=L,
+        gap_samples=int(gap_frames.size * L),
+        message=message,
+    )
