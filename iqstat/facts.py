@@ -139,13 +139,14 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
     total_power *= sc * sc
     peak *= sc * sc
     dc *= sc
+    psd_acc *= sc * sc
     mean_power = total_power / n
     dc /= n
     clipped = n_clip / n if capture.datatype.is_integer else None
     floor = None
     if frame_powers:
         fp = np.concatenate(frame_powers)
-        floor = float(np.quantile(fp, FLOOR_QUANTILE)) / gamma_floor_factor(
+        floor = sc * sc * float(np.quantile(fp, FLOOR_QUANTILE)) / gamma_floor_factor(
             FLOOR_FRAME, FLOOR_QUANTILE
         )
     freqs = np.fft.fftshift(np.fft.fftfreq(WELCH_FFT, 1.0 / fs))
@@ -155,7 +156,9 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
     if psd_frames:
         # Density scaling: Σ|X|² / (fs·Σw²) so that ∫ psd df = mean power.
         psd = np.fft.fftshift(psd_acc / psd_frames) / (fs * float((window**2).sum()))
-        psd_floor = float(np.quantile(psd, 0.2))
+        # Noise level of the spectrum: the median bin (the signal of a narrowband link holds
+        # far fewer than half the bins of the capture band).
+        psd_floor = float(np.median(psd))
         occ_bw, occ_center = _occupied_band(freqs, psd, psd_floor, fs, psd_frames)
     noise_psd = floor / fs if floor else None
     return CaptureFacts(

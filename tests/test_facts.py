@@ -94,3 +94,20 @@ def test_chunk_size_does_not_change_the_figures(rng):
     assert abs(a.mean_power_dbfs - b.mean_power_dbfs) < 1e-9
     assert a.peak_power_dbfs == b.peak_power_dbfs
     np.testing.assert_allclose(a.spectrum_dbfs_per_hz, b.spectrum_dbfs_per_hz, atol=1e-4)  # float32 sums
+
+
+def test_integer_and_float_recordings_give_the_same_figures(tmp_path, rng):
+    """The ci16 fast path (scaled after the sums) must agree with plain float data."""
+    n = 400_000
+    x = _noise(rng, n, 1e-3) + 0.01 * np.exp(2j * np.pi * 0.1 * np.arange(n))
+    comps = np.empty(2 * n)
+    comps[0::2], comps[1::2] = x.real, x.imag
+    q = np.clip(np.rint(comps * 32768), -32768, 32767).astype("<i2")
+    q.tofile(tmp_path / "a.cs16")
+    a = compute_facts(open_capture(tmp_path / "a.cs16", datatype="ci16_le", sample_rate_hz=FS))
+    b = compute_facts(Capture.from_array((q[0::2] + 1j * q[1::2]) / 32768, FS))
+    for key in ("mean_power_dbfs", "peak_power_dbfs", "noise_floor_dbfs",
+                "noise_psd_dbfs_per_hz", "occupied_bandwidth_hz", "dc_offset_dbfs"):
+        assert abs(getattr(a, key) - getattr(b, key)) < 1e-3, key
+    np.testing.assert_allclose(a.spectrum_dbfs_per_hz, b.spectrum_dbfs_per_hz, atol=1e-3)
+    assert abs(a.noise_floor_dbfs - (-30.0)) < 0.2
