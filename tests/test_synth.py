@@ -613,3 +613,143 @@ def test_bad_scenario_raises_profile_error(tables, match):
                 d[t][k] = v
     with pytest.raises(ProfileError, match=match):
         scenario_from_dict(d, source="bad.toml", name="bad")
+
+
+# ----------------------------------------------------------------------------- impairments
+
+
+@pytest.mark.parametrize("gain_db,phase_deg", [(0.5, 0.0), (0.0, 3.0), (-1.0, -5.0)])
+def test_iq_imbalance_image_rejection(gain_db, phase_deg):
+    # Image rejection ratio of a receiver with Q-branch gain g and quadrature error φ:
+    # IRR = (1 + 2g·cos φ + g²)/(1 − 2g·cos φ + g²) (widely published image-rejection formula,
+    # e.g. Razavi, RF Microelectronics, 2nd ed., §4.2 [mem]). A tone on an exact FFT bin
+    # has no leakage, so the image bin holds exactly the image.
+    from iqstat.synth.impairments import apply_iq_imbalance
+
+    n, k = 4096, 300
+    x = np.exp(2j * np.pi * k * np.arange(n) / n)
+    spec = np.abs(np.fft.fft(apply_iq_imbalance(x, gain_db, phase_deg))) ** 2
+    g, phi = 10 ** (gain_db / 20), math.radians(phase_deg)
+    irr = (1 + 2 * g * math.cos(phi) + g * g) / (1 - 2 * g * math.cos(phi) + g * g)
+    assert spec[k] / spec[n - k] == pytest.approx(irr, rel=1e-9)
+
+
+def test_rician_gain_moments_and_doppler():
+    # Greenstein, Michelson & Erceg 1999 (METHODS §7): for a Rician amplitude, the power
+    # P = |h|² has Var(P)/E[P]² = (1 + 2K)/(1 + K)². For the N-oscillator sum-of-sinusoids
+    # scattered part E|g|⁴ = 2 − 1/N [derived: sum of N unit phasors with random phases], which
+    # lowers that by b⁴/N, b² = 1/(K+1). Clarke's model: E[g(t)g*(t+τ)] = J0(2π f_d τ)
+    # (Zheng & Xiao 2003 [mem]). Ensemble over independent realisations; tolerances are 4
+    # standard errors estimated from the same samples.
+    from scipy.special import j0
+
+    from iqstat.synth.impairments import N_FADING_OSCILLATORS, rician_gain
+
+    k_db, fd, fs, lag = 4.77, 20.0, 1000.0, 10
+    kf = 10 ** (k_db / 10)
+    rng = np.random.default_rng(31)
+    h = np.array([rician_gain(lag + 1, sample_rate_hz=fs, k_factor=kf, doppler_hz=fd, rng=rng)
+                  for _ in range(6000)])  # fmt: skip
+    p = np.abs(h[:, 0]) ** 2
+    n = p.size
+    assert abs(p.mean() - 1) < 4 * p.std() / math.sqrt(n)
+    b4 = 1 / (kf + 1) ** 2
+    gamma_ref = (1 + 2 * kf) / (1 + kf) ** 2 - b4 / N_FADING_OSCILLATORS
+    gamma_hat = p.var() / p.mean() ** 2
+    se = ((p - p.mean()) ** 2).std() / math.sqrt(n) / p.mean() ** 2
+    assert abs(gamma_hat - gamma_ref) < 4 * se
+    a = math.sqrt(kf / (kf + 1))
+    g = (h - a) * math.sqrt(kf + 1)  # the scattered part, unit power
+    r = g[:, 0] * np.conj(g[:, lag])
+    ref = j0(2 * np.pi * fd * lag / fs)
+    assert abs(r.real.mean() - ref) < 4 * r.real.std() / math.sqrt(n)
+
+
+def test_scenario_clipping():
+    # Clipping bounds every component at the clip level (ADC saturation, common practice)
+    # and the truth counts the clipped components.
+    from iqstat.synth import synthesize
+
+    syn = synthesize(make_scenario(capture={"noise_dbfs": -20.0, "lead_in_s": 0.2},
+                                   impairments={"clip_dbfs": -20.0}))  # fmt: skip
+    x, truth = syn.samples, syn.truth
+    level = 10 ** (-20 / 20)
+    assert max(np.abs(x.real).max(), np.abs(x.imag).max()) <= level + 1e-15
+    n_at = np.count_nonzero(np.abs(x.real) == level) + np.count_nonzero(np.abs(x.imag) == level)
+    assert truth.n_clipped == n_at
+    # noise-only lead-in: σ per component = 0.1/√2, so a component clips with probability
+    # q = 2Φ(−√2) ≈ 15.7 % (normal tail, scipy.stats.norm); binomial spread √(q(1−q)/n).
+    gap = x[: truth.bursts[0].start_sample - 1]
+    n_gap = 2 * gap.size
+    frac = (np.count_nonzero(np.abs(gap.real) == level)
+            + np.count_nonzero(np.abs(gap.imag) == level)) / n_gap  # fmt: skip
+    q = 2 * stats.norm.sf(math.sqrt(2))
+    assert abs(frac - q) < 4 * math.sqrt(q * (1 - q) / n_gap)
+
+
+def test_scenario_dc_offset_and_tone_interferer():
+    # DC offset and a tone interferer measured in the noise-only lead-in.
+    from iqstat.synth import synthesize
+
+    sc = make_scenario(
+        capture={"lead_in_s": 0.4, "noise_dbfs": -30.0},
+        impairments={"dc_offset": [0.01, -0.02],
+                     "interferer": {"kind": "tone", "offset_hz": 31250.0, "inr_db": 6.0}},
+    )  # fmt: skip
+    syn = synthesize(sc)
+    x, truth = syn.samples, syn.truth
+    assert truth.noise_var == pytest.approx(1e-3, rel=1e-12)
+    gap = x[: truth.bursts[0].start_sample - 1]
+    # 31.25 kHz at 250 kS/s is a whole cycle per 8 samples: over a multiple of 8 samples the
+    # DC and the tone do not leak into each other's average.
+    gap = gap[: gap.size // 8 * 8]
+    n = np.arange(gap.size)
+    tone_power = 10**0.6 * 1e-3
+    # mean of x·e^{-j2πfn/fs} = a·e^{jφ} + complex noise of variance σ²/N: |.| has sd √(σ²/2N)
+    c = np.mean(gap * np.exp(-2j * np.pi * 31250.0 * n / 250e3))
+    sd_amp = math.sqrt(1e-3 / (2 * gap.size))
+    assert abs(abs(c) - math.sqrt(tone_power)) < 4 * sd_amp
+    dc = np.mean(gap)
+    sd_dc = math.sqrt(5e-4 / gap.size)  # σ²/2 per component
+    assert abs(dc.real - 0.01) < 4 * sd_dc
+    assert abs(dc.imag + 0.02) < 4 * sd_dc
+
+
+def test_scenario_narrowband_interferer_power_and_band():
+    # Interference-to-noise ratio in the noise-only lead-in: mean |x|² = σ²(1 + INR); the
+    # interferer's power sits within its band (Welch PSD, scipy.signal).
+    from scipy import signal
+
+    from iqstat.synth import synthesize
+
+    sc = make_scenario(
+        capture={"lead_in_s": 0.5},
+        impairments={"interferer": {"kind": "narrowband", "offset_hz": -40000.0,
+                                    "inr_db": 10.0, "bandwidth_hz": 8000.0}},
+    )  # fmt: skip
+    syn = synthesize(sc)
+    x, truth = syn.samples, syn.truth
+    gap = x[: truth.bursts[0].start_sample - 1]
+    s2 = truth.noise_var
+    p = np.mean(np.abs(gap) ** 2)
+    # filtered noise is correlated over ~fs/B samples: allow for it in the spread
+    n_eff = gap.size * 8000.0 / 250e3
+    assert abs(p / (s2 * 11) - 1) < 4 / math.sqrt(n_eff)
+    f, psd = signal.welch(gap, fs=250e3, nperseg=4096, return_onesided=False,
+                          scaling="density")  # fmt: skip
+    df = f[1] - f[0]
+    excess = np.clip(psd - s2 / 250e3, 0, None)
+    in_band = np.abs(f + 40000.0) <= 5000.0
+    assert excess[in_band].sum() / excess.sum() > 0.97
+    assert excess.sum() * df == pytest.approx(10 * s2, rel=0.1)
+
+
+def test_peak_level_sits_below_full_scale():
+    # Level rule (project choice, no source): the expected peak component of signal + noise
+    # sits at peak_dbfs (default −3 dBFS), so clipping at ±1 is rare and the recording uses
+    # the integer range.
+    from iqstat.synth import synthesize
+
+    syn = synthesize(make_scenario(bursts={"ebn0_db": 25.0}))
+    peak = max(np.abs(syn.samples.real).max(), np.abs(syn.samples.imag).max())
+    assert 10 ** (-6 / 20) < peak < 1.0
