@@ -39,6 +39,8 @@ MIN_FIT_SYMBOLS = 20
 CLIPPING_FLAG_FRACTION = 1e-4
 #: An estimated symbol rate further than this from the profile's is flagged.
 RATE_MISMATCH_FRACTION = 0.01
+#: An estimated tone spacing further than this from the profile's is flagged.
+SPACING_MISMATCH_FRACTION = 0.05
 #: Goodness-of-fit p-value below which the branch energies are flagged as not AWGN-like.
 GOF_FLAG_PVALUE = 1e-3
 #: Detection loss (available − detected Eb/N0) above which the burst is flagged.
@@ -519,8 +521,6 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
         flags.append("detection-loss")
     if lo is not None and hi - lo > LEVEL_SPREAD_FLAG_DB:
         flags.append("level-spread")
-    if link_sum.symbol_rate_source == "estimated" and profile.symbol_rate_hz is not None:
-        pass
     if meas is not None and pred is not None and n_bits:
         # Measured errors far outside what the fitted Eb/N0 predicts point at something
         # other than white noise (interference, fading, bit slips).
@@ -554,6 +554,29 @@ def _mean_db(values_db, weights) -> float | None:
     v = 10 ** (np.asarray(values_db, dtype=float) / 10)
     w = np.ones_like(v) if weights is None else np.asarray(weights, dtype=float)
     return float(db(np.sum(w * v) / np.sum(w)))
+
+
+def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]:
+    """Blind estimate on the longest burst, compared with the rates the profile gives."""
+    if not detection.bursts or (profile.symbol_rate_hz is None
+                                and profile.tone_spacing_hz is None):
+        return ()
+    longest = max(detection.bursts, key=lambda b: b.n_samples)
+    _, x = _read_burst(capture, longest, margin)
+    try:
+        blind = estimate_link(x, capture.sample_rate_hz, modulation=profile.modulation)
+    except IqstatError:
+        return ()
+    flags = []
+    if profile.symbol_rate_hz is not None and (
+        abs(blind.symbol_rate_hz / profile.symbol_rate_hz - 1) > RATE_MISMATCH_FRACTION
+    ):
+        flags.append("symbol-rate-mismatch")
+    if profile.tone_spacing_hz is not None and blind.tone_spacing_hz is not None and (
+        abs(blind.tone_spacing_hz / profile.tone_spacing_hz - 1) > SPACING_MISMATCH_FRACTION
+    ):
+        flags.append("tone-spacing-mismatch")
+    return tuple(flags)
 
 
 def measure_capture(
@@ -594,6 +617,7 @@ def measure_capture(
         measure_burst(capture, b, e, profile, layout, detection)
         for b, e in zip(detection.bursts, links, strict=True)
     ]
+    mismatch = _check_profile_rates(capture, detection, profile, margin)
     good_links = [e for e in links if e is not None]
     rho = None
     if good_links and profile.modulation != "ook":
@@ -601,5 +625,8 @@ def measure_capture(
                                                 1.0 / good_links[0].symbol_rate_hz)))
     link_sum = _link_summary(profile, good_links, rho)
     summary = _summarise(results, profile, link_sum, facts, detection)
+    if mismatch:
+        summary = dataclasses.replace(summary, flags=tuple(dict.fromkeys(summary.flags
+                                                                         + mismatch)))
     return MeasurementReport(facts=facts, profile=profile, link=link_sum, detection=detection,
                              bursts=tuple(results), summary=summary)
