@@ -384,9 +384,10 @@ def measure_frame_powers(
         if bins is not None:
             if use_mm:
                 vb = v @ dft
+                p_band[fi : fi + m] = np.einsum("ij,ij->i", vb, vb) / (L * L)
             else:
-                vb = np.fft.fft(frames, axis=1)[:, bins].view(np.float32)
-            p_band[fi : fi + m] = np.einsum("ij,ij->i", vb, vb) / (L * L)
+                xb = np.fft.fft(frames, axis=1)[:, bins]
+                p_band[fi : fi + m] = np.sum(xb.real**2 + xb.imag**2, axis=1) / (L * L)
         fi += m
 
     carry = np.empty(L, dtype=np.complex64)
