@@ -65,9 +65,9 @@ _Z975 = 1.959963984540054  # scipy.stats.norm.ppf(0.975)
 # likelihood-ratio test of A = 0, a parameter on the boundary (50:50 mixture of chi2_0 and
 # chi2_1; Self & Liang, J. Amer. Statist. Assoc. 82(398):605-610, 1987).
 _CHI2_1_Q90 = 2.705543454095404
-_LOG_GAMMA_FLOOR = math.log(1e-9)  # γ below this is the boundary A = 0
+_LOG_GAMMA_FLOOR = math.log(1e-4)  # γ below this (−40 dB) is taken as the boundary A = 0
 _NEWTON_TOL = 1e-9  # Newton decrement (log-likelihood units) at which we stop
-_MAX_NEWTON = 80
+_MAX_NEWTON = 100
 
 
 # --------------------------------------------------------------------------------------------
@@ -144,7 +144,7 @@ class NoncoherentFit:
     gof_statistic, gof_pvalue : float or None
         Kolmogorov–Smirnov statistic and p-value of the probability-integral transforms.
     gof_test : str
-        ``"ks-pit"`` (see :func:`check_energy_laws`).
+        ``"ks-pit-branchwise"`` (see :func:`check_energy_laws`), ``"none"`` if not run.
     gof_n_values : int
         Energies that entered the test.
     """
@@ -737,25 +737,33 @@ def check_energy_laws(
     Returns
     -------
     (statistic, pvalue, n_values)
+        The largest per-branch KS statistic, the Bonferroni-combined p-value and the number of
+        energies tested.
 
     Notes
     -----
     Each energy is mapped through its fitted CDF (probability-integral transform); under the
-    model the results are uniform on [0, 1] and a KS test against the uniform law follows
-    (scipy.stats.kstest). One branch is drawn at random per symbol (fixed seed) so that the
-    tested values are independent: the branches of one symbol are dependent (the branch that
-    holds the signal excludes the others, and non-orthogonal templates correlate the noise).
-    The parameters are estimated from the same data, which makes the p-value approximate and
-    conservative (too large): a small p-value is a reliable sign of non-AWGN impairments
-    (impulsive noise, interferers, leakage from a frequency offset), a large one is no proof.
+    model the results are uniform on [0, 1]. Branch by branch, the transforms of all symbols
+    are KS-tested against the uniform law (scipy.stats.kstest): within one branch the values
+    are independent across symbols, whereas the branches of one symbol are dependent (the
+    branch holding the signal excludes the others; non-orthogonal templates correlate the
+    noise), so pooling them would void the KS null distribution. The M branch p-values are
+    combined by Bonferroni, p = min(1, M·min_j p_j), which keeps the level and is sensitive to
+    an impairment in a single branch (an interferer near one tone). The parameters are
+    estimated from the same data, which makes the p-value approximate and conservative (too
+    large): a small p-value is a reliable sign of non-AWGN impairments (impulsive noise,
+    interferers, leakage from a frequency offset); a large one is no proof of AWGN. Above
+    ``max_values`` energies a fixed-seed subsample of symbols is tested.
     """
     zz = _check_outputs(z, modulation)
     n, m = zz.shape
-    rng = np.random.default_rng(_GOF_SEED)
+    if max_values < m:
+        raise ParameterError(f"max_values {max_values!r} must be at least {m} (one per branch)")
     idx = np.arange(n)
-    if n > max_values:
-        idx = np.sort(rng.choice(n, size=max_values, replace=False))
-    branch = rng.integers(0, m, size=len(idx))
+    n_keep = max_values // m
+    if n > n_keep:
+        rng = np.random.default_rng(_GOF_SEED)
+        idx = np.sort(rng.choice(n, size=n_keep, replace=False))
     sub = zz[idx]
     energy = sub.real**2 + sub.imag**2
     sym = None if symbols is None else np.asarray(symbols)[idx]
@@ -768,9 +776,10 @@ def check_energy_laws(
         priors=priors,
         symbols=sym,
     )
-    pit = cdf[np.arange(len(idx)), branch]
-    res = stats.kstest(pit, "uniform")
-    return float(res.statistic), float(res.pvalue), len(pit)
+    tests = [stats.kstest(cdf[:, j], "uniform") for j in range(m)]
+    statistic = max(float(t.statistic) for t in tests)
+    pvalue = min(1.0, m * min(float(t.pvalue) for t in tests))  # Bonferroni over branches
+    return statistic, pvalue, int(cdf.size)
 
 
 # --------------------------------------------------------------------------------------------
@@ -828,7 +837,7 @@ def _build(
         ci_method="wald-log-observed-info" if ci is not None else "none",
         gof_statistic=None if gof is None else _finite_or_none(gof[0]),
         gof_pvalue=None if gof is None else _finite_or_none(gof[1]),
-        gof_test="ks-pit" if gof is not None else "none",
+        gof_test="ks-pit-branchwise" if gof is not None else "none",
         gof_n_values=0 if gof is None else int(gof[2]),
     )
 
@@ -876,6 +885,7 @@ def _ml_result(
     gram: np.ndarray,
     priors_fixed: np.ndarray,
     symbols: np.ndarray | None,
+    run_gof: bool,
 ) -> NoncoherentFit:
     """Health checks, interval, detection test and GOF around an ML optimum."""
     n, m = len(mix.q), mix.n_dims
@@ -920,17 +930,17 @@ def _ml_result(
     if opt.boundary:
         esn0 = None
         var_log_gamma = None
-    elif converged:
+    else:
         bad = _plausibility(_db(esn0))
         if bad is not None:
             converged, message = False, bad
     if converged:
         message = f"converged in {opt.iterations} Newton iterations"
     gof = None
-    if not opt.boundary:
+    if run_gof:  # at the boundary this tests the noise-only model (A = 0)
         gof = check_energy_laws(
             z,
-            amplitude=a,
+            amplitude=0.0 if opt.boundary else a,
             noise_var=n0,
             gram=gram,
             modulation=modulation,
@@ -996,6 +1006,7 @@ def fit_nda(
     modulation: Modulation,
     priors: Sequence[float] | None = None,
     estimate_p_on: bool = False,
+    gof: bool = True,
 ) -> NoncoherentFit:
     """Non-data-aided maximum-likelihood Es/N0 from noncoherent correlator outputs.
 
@@ -1012,6 +1023,8 @@ def fit_nda(
         (0.5, 0.5).
     estimate_p_on : bool
         OOK only: estimate p_on jointly (third parameter, logit p_on) instead of fixing it.
+    gof : bool
+        Run the goodness-of-fit test (:func:`check_energy_laws`); False skips it (Monte Carlo).
 
     Returns
     -------
@@ -1107,6 +1120,7 @@ def fit_nda(
         gram=r_gram,
         priors_fixed=pi,
         symbols=None,
+        run_gof=gof,
     )
 
 
@@ -1141,6 +1155,7 @@ def fit_da(
     gram: np.ndarray | None = None,
     *,
     modulation: Modulation,
+    gof: bool = True,
 ) -> NoncoherentFit:
     """Data-aided maximum-likelihood Es/N0 with the symbols known.
 
@@ -1153,6 +1168,8 @@ def fit_da(
     gram : ndarray, optional
         Template Gram matrix (see :func:`fit_nda`).
     modulation : {"2fsk", "4fsk", "ook"}
+    gof : bool
+        Run the goodness-of-fit test (conditional on the known symbols).
 
     Returns
     -------
@@ -1229,6 +1246,7 @@ def fit_da(
         gram=r_gram,
         priors_fixed=pi,
         symbols=sym,
+        run_gof=gof,
     )
 
 
@@ -1237,6 +1255,7 @@ def fit_dd(
     gram: np.ndarray | None = None,
     *,
     modulation: Modulation,
+    gof: bool = True,
 ) -> NoncoherentFit:
     """Decision-directed moment estimate of Es/N0 — for comparison only, never a headline.
 
@@ -1246,6 +1265,8 @@ def fit_dd(
     gram : ndarray, optional
         Template Gram matrix (see :func:`fit_nda`).
     modulation : {"2fsk", "4fsk", "ook"}
+    gof : bool
+        Run the goodness-of-fit test with the DD parameters.
 
     Returns
     -------
@@ -1299,9 +1320,11 @@ def fit_dd(
     esn0 = weight * a2 / n0
     bad = _plausibility(_db(esn0))
     a = math.sqrt(a2)
-    gof = check_energy_laws(
-        zz, amplitude=a, noise_var=n0, gram=r_gram, modulation=modulation, priors=pi
-    )
+    gof_result = None
+    if gof:
+        gof_result = check_energy_laws(
+            zz, amplitude=a, noise_var=n0, gram=r_gram, modulation=modulation, priors=pi
+        )
     return _build(
         method="dd-moment",
         modulation=modulation,
@@ -1317,7 +1340,7 @@ def fit_dd(
         log_likelihood=None,
         detection_statistic=None,
         upper95_db=None,
-        gof=gof,
+        gof=gof_result,
     )
 
 
