@@ -541,7 +541,11 @@ def _refine_rate_line(e: np.ndarray, fs: float, rate0_hz: float) -> tuple[float,
     around = q[lo : hi + 1]
     med = float(np.median(around))
     prom = 10 * math.log10(b0 / med) if med > 0 and b0 > 0 else -math.inf
-    mean_level = float(np.mean(around[around < 10 * med])) if med > 0 else 0.0
+    # noise level for the CRB: the feature's spectrum is coloured, so take it next to the line
+    # (±10 % of the rate, without the line's own ±4 bins)
+    kc = int(round(rate / dq))
+    near = np.r_[max(1, int(0.9 * kc)) : kc - 4, kc + 5 : min(q.size, int(1.1 * kc) + 1)]
+    mean_level = float(np.mean(q[near])) if near.size else 0.0
     snr = b0 / mean_level if mean_level > 0 else math.inf
     std = df * math.sqrt(6.0 / ((2 * math.pi) ** 2 * snr)) if snr > 0 else math.inf
     return float(rate), prom, std
@@ -581,9 +585,11 @@ def _estimate_rate(
             found = _line_in_feature(b.feature(freqs_hz, window), b.fs, lo, hi)
             if found is not None and (best is None or found[1] > best[1]):
                 best = found
-        if best is None:
+        if best is None or best[1] < LINE_THRESHOLD_DB:
+            height = "" if best is None else f" (best {best[1]:.1f} dB < {LINE_THRESHOLD_DB:g} dB)"
             raise MeasurementError(
-                "no symbol-rate line found in this burst; give symbol_rate_hz from the profile"
+                f"no symbol-rate line stands out in this burst{height}; give symbol_rate_hz "
+                "from the link profile"
             )
         rate0 = best[0]
         # A window fixed by 1/Δf also shows the harmonics of the rate: prefer a sub-multiple
