@@ -651,13 +651,18 @@ def _fit_lines(
         freqs.append(fk / p)
         powers.append(pw[k])
         proms.append(prom)
-    if min(proms) < LINE_THRESHOLD_DB:
+    # Use the lines that stand out (GFSK weakens the outer 4fsk lines): one is enough with a
+    # known spacing, two are needed to measure it.
+    ok = np.asarray(proms) >= LINE_THRESHOLD_DB
+    if ok.sum() < (1 if spacing_known else 2):
         return None
-    f = np.asarray(freqs)
-    w = np.asarray(powers) / np.sum(powers)
+    f = np.asarray(freqs)[ok]
+    w = np.asarray(powers)[ok] / np.sum(np.asarray(powers)[ok])
+    weakest = float(np.min(np.asarray(proms)[ok]))
     if b.m == 1:
-        return _ToneFit(float(f[0]), None, p, min(proms), "carrier-line")
-    idx = np.arange(b.m) - (b.m - 1) / 2.0
+        return _ToneFit(float(f[0]), None, p, weakest, "carrier-line")
+    idx = (np.arange(b.m) - (b.m - 1) / 2.0)[ok]
+    offsets = offsets[ok]
     if spacing_known:
         cfo, spacing = float(np.sum(w * (f - offsets))), spacing_hz
     else:
@@ -667,7 +672,7 @@ def _fit_lines(
         spacing = float(np.sum(w * (idx - mi) * (f - mf)) / np.sum(w * (idx - mi) ** 2))
         cfo = float(mf - spacing * mi)
     method = "tone-lines" if p == 1 else f"power-{p}-lines"
-    return _ToneFit(cfo, spacing, p, min(proms), method)
+    return _ToneFit(cfo, spacing, p, weakest, method)
 
 
 def _grid_maximise(fun, lo: float, hi: float, n: int = 33, rounds: int = 3) -> float:

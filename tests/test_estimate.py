@@ -282,6 +282,41 @@ def test_h_half_carrier_is_not_a_spectral_peak():
     x, _ = make_burst("2fsk", 0.5, 20.0, seed=13, cfo_hz=1700.0, pad=0)
     est = estimate_carrier(x, FS, modulation="2fsk", tone_spacing_hz=0.5 * RS, symbol_rate_hz=RS)
     assert abs(est - 1700.0) <= 50.0
+    spec = np.abs(np.fft.fft(x))
+    freqs = np.fft.fftfreq(x.size, 1 / FS)
+    peak = freqs[np.argmax(spec)]
+    # the naive reading (peak = one tone, ±Δf/2 from the carrier) misses by far more
+    assert min(abs(peak - 1200.0 - 1700.0), abs(peak + 1200.0 - 1700.0)) > 100.0
+
+
+def _gfsk_burst(modulation, h, seed, cfo_hz):
+    rng = np.random.default_rng(seed)
+    s = modulate(
+        rng.integers(0, ALPHABET[modulation], 500),
+        modulation=modulation,
+        sample_rate_hz=FS,
+        symbol_rate_hz=RS,
+        tone_spacing_hz=h * RS,
+        bt=0.5,
+        cfo_hz=cfo_hz,
+        timing_offset_samples=2.5,
+    )
+    noise_var = (FS / (RS * BITS[modulation])) / 10.0  # |s| = 1, Eb/N0 = 10 dB
+    noise = rng.standard_normal(s.size) + 1j * rng.standard_normal(s.size)
+    return (s + noise * math.sqrt(noise_var / 2)).astype(np.complex64)
+
+
+@pytest.mark.parametrize(("modulation", "h"), [("2fsk", 1.0), ("4fsk", 1.0), ("2fsk", 0.5)])
+def test_gaussian_filtered_fsk(modulation, h):
+    # GFSK (BT = 0.5) keeps the per-symbol phase advance of CPFSK, hence the lines; the outer
+    # 4fsk lines weaken. Same requirements as above (CFO, 1 % spacing, rate within 4 σ).
+    for seed in range(3):
+        x = _gfsk_burst(modulation, h, 7000 + seed, 800.0)
+        est = estimate_link(x, FS, modulation=modulation, symbol_rate_hz=RS, tone_spacing_hz=h * RS)
+        assert est.cfo_hz == pytest.approx(800.0, abs=max(50.0, 0.01 * RS))
+        blind = estimate_link(x, FS, modulation=modulation)
+        assert blind.tone_spacing_hz == pytest.approx(h * RS, rel=0.01)
+        assert abs(blind.symbol_rate_hz - RS) <= 4 * blind.quality["rate_std_hz"]
 
 
 # ---------------------------------------------------------------------------------------------
