@@ -22,10 +22,11 @@ Methods (what is measured, and why)
   phase jumps). The carrier offset maximises the mean of E[n] = max_i |y_i[n]|², y_i the sliding
   one-symbol correlators on the trial tones: a residual offset δf scales the matched energy by
   sinc²(δf·T) whichever tone is sent, so the maximum does not move with the data balance.
-* **Symbol rate.** CPFSK has a constant envelope: the feature E[n] above shows a line at Rs
-  (METHODS §4). Blind, windows from fs/1000 to fs/4 are scanned and the one with the most
-  prominent line is kept; the line frequency is then refined on a zoomed DFT (never rounded to
-  whole samples per symbol). OOK: the same feature with the carrier as the only branch.
+* **Symbol rate.** CPFSK has a constant envelope: a sliding-correlator feature shows a line at
+  Rs (METHODS §4); here the largest minus the second largest branch magnitude (FSK, window one
+  symbol or 1/Δf if longer) or the branch energy (OOK). Blind, windows from fs/1000 to fs/4
+  are scanned and the one with the most prominent line is kept; the line frequency is then
+  refined on a zoomed DFT (never rounded to whole samples per symbol).
 * **Blind tone spacing.** Coarse: weighted 1-D k-means of the instantaneous frequency of the
   band-limited burst (clusters at the tones). Fine: the line positions (slope over tone index).
 """
@@ -835,8 +836,9 @@ def estimate_symbol_rate(
 
     Notes
     -----
-    E[n] = max_i |y_i[n]|², y_i[n] = Σ_{m=n}^{n+L−1} x[m]·e^{−j2πf_i m/fs} (METHODS §4) dips at
-    every symbol boundary, so it carries a line at Rs. Blind, window lengths L = fs/R on a
+    With y_i[n] = Σ_{m=n}^{n+L−1} x[m]·e^{−j2πf_i m/fs}, the feature (FSK: largest minus second
+    largest |y_i|; OOK: |y|²; METHODS §4 uses max_i |y_i|²) dips where the window straddles a
+    symbol change, so it carries a line at Rs. Blind, window lengths L = fs/R on a
     geometric grid of R are scanned and the most prominent line in R/1.3 … 1.3·R is kept; then
     |DFT|² of E (window fs/R̂) is maximised on a zoomed grid with a parabolic last step.
     """
