@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Literal
 
 import numpy as np
@@ -289,6 +289,47 @@ def _whitened_energy(z: np.ndarray, gram: np.ndarray, identity: bool) -> np.ndar
     rinv = np.linalg.inv(gram)
     q = np.real(np.einsum("ki,ij,kj->k", z.conj(), rinv, z, optimize=True))
     return np.maximum(q, 0.0)
+
+
+def _scaled(z: np.ndarray) -> tuple[np.ndarray, float]:
+    """z divided by its largest component magnitude (1 if all zero): no overflow in |z|²."""
+    scale = float(max(np.max(np.abs(z.real), initial=0.0), np.max(np.abs(z.imag), initial=0.0)))
+    return (z / scale, scale) if scale > 0 else (z, 0.0)
+
+
+def _unscaled(fit: NoncoherentFit, scale: float) -> NoncoherentFit:
+    """Undo :func:`_scaled`: A·s, N0·s², log-density − 2·N·M·log s (Jacobian of z/s)."""
+    if scale == 1.0:
+        return fit
+    ll = fit.log_likelihood
+    if ll is not None:
+        ll = ll - 2.0 * fit.n_symbols * N_BRANCHES[fit.modulation] * math.log(scale)
+    return replace(
+        fit,
+        amplitude=None if fit.amplitude is None else fit.amplitude * scale,
+        noise_var=None if fit.noise_var is None else _finite_or_none(fit.noise_var * scale**2),
+        log_likelihood=_finite_or_none(ll),
+    )
+
+
+def _no_energy(method: str, modulation: str, n: int, priors: np.ndarray) -> NoncoherentFit:
+    return _build(
+        method=method,
+        modulation=modulation,
+        n_symbols=n,
+        esn0=None,
+        log_gamma_var=None,
+        amplitude=None,
+        noise_var=None,
+        priors=priors,
+        converged=False,
+        message="z is zero in every symbol and branch: no signal and no noise to measure",
+        iterations=0,
+        log_likelihood=None,
+        detection_statistic=None,
+        upper95_db=None,
+        gof=None,
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -1067,6 +1108,9 @@ def fit_nda(
     n, m = zz.shape
     if n < MIN_SYMBOLS:
         return _too_few("nda-ml", modulation, n, pi)
+    zz, scale = _scaled(zz)
+    if scale == 0.0:
+        return _no_energy("nda-ml", modulation, n, pi)
     r_gram, identity = _check_gram(gram if modulation != "ook" else _ook_gram(gram), m)
     q = _whitened_energy(zz, r_gram, identity)
     if modulation == "ook":
@@ -1109,18 +1153,21 @@ def fit_nda(
         opt.boundary,
         opt.message,
     )
-    return _ml_result(
-        method="nda-ml",
-        modulation=modulation,
-        mix=mix,
-        opt=opt,
-        energy_weight=energy_weight,
-        log_norm=_log_normaliser(n, m, r_gram),
-        z=zz,
-        gram=r_gram,
-        priors_fixed=pi,
-        symbols=None,
-        run_gof=gof,
+    return _unscaled(
+        _ml_result(
+            method="nda-ml",
+            modulation=modulation,
+            mix=mix,
+            opt=opt,
+            energy_weight=energy_weight,
+            log_norm=_log_normaliser(n, m, r_gram),
+            z=zz,
+            gram=r_gram,
+            priors_fixed=pi,
+            symbols=None,
+            run_gof=gof,
+        ),
+        scale,
     )
 
 
@@ -1191,6 +1238,9 @@ def fit_da(
     pi = _check_priors(None, modulation)
     if n < MIN_SYMBOLS:
         return _too_few("da-ml", modulation, n, pi)
+    zz, scale = _scaled(zz)
+    if scale == 0.0:
+        return _no_energy("da-ml", modulation, n, pi)
     r_gram, identity = _check_gram(gram if modulation != "ook" else _ook_gram(gram), m)
     q = _whitened_energy(zz, r_gram, identity)
     mag = np.abs(zz)
@@ -1235,18 +1285,21 @@ def fit_da(
         a2 = n0
     mix = _Mixture("tones", r, np.zeros(1), q, m, math.nan, False)
     opt = _maximise(mix, np.array([0.5 * math.log(a2), math.log(n0)]))
-    return _ml_result(
-        method="da-ml",
-        modulation=modulation,
-        mix=mix,
-        opt=opt,
-        energy_weight=energy_weight,
-        log_norm=_log_normaliser(n, m, r_gram),
-        z=zz,
-        gram=r_gram,
-        priors_fixed=pi,
-        symbols=sym,
-        run_gof=gof,
+    return _unscaled(
+        _ml_result(
+            method="da-ml",
+            modulation=modulation,
+            mix=mix,
+            opt=opt,
+            energy_weight=energy_weight,
+            log_norm=_log_normaliser(n, m, r_gram),
+            z=zz,
+            gram=r_gram,
+            priors_fixed=pi,
+            symbols=sym,
+            run_gof=gof,
+        ),
+        scale,
     )
 
 
@@ -1288,6 +1341,9 @@ def fit_dd(
     pi = _check_priors(None, modulation)
     if n < MIN_SYMBOLS:
         return _too_few("dd-moment", modulation, n, pi)
+    zz, scale = _scaled(zz)
+    if scale == 0.0:
+        return _no_energy("dd-moment", modulation, n, pi)
     r_gram, identity = _check_gram(gram if modulation != "ook" else _ook_gram(gram), m)
     rounds = 0
     if modulation == "ook":
@@ -1300,22 +1356,25 @@ def fit_dd(
         a2, n0, _ = _dd_fsk(zz, q)
         weight = 1.0
     if not (a2 > 0 and n0 > 0):
-        return _build(
-            method="dd-moment",
-            modulation=modulation,
-            n_symbols=n,
-            esn0=None,
-            log_gamma_var=None,
-            amplitude=None,
-            noise_var=_finite_or_none(n0) if n0 > 0 else None,
-            priors=pi,
-            converged=False,
-            message="decision-directed split found no signal (non-positive signal energy)",
-            iterations=rounds,
-            log_likelihood=None,
-            detection_statistic=None,
-            upper95_db=None,
-            gof=None,
+        return _unscaled(
+            _build(
+                method="dd-moment",
+                modulation=modulation,
+                n_symbols=n,
+                esn0=None,
+                log_gamma_var=None,
+                amplitude=None,
+                noise_var=_finite_or_none(n0) if n0 > 0 else None,
+                priors=pi,
+                converged=False,
+                message="decision-directed split found no signal (non-positive signal energy)",
+                iterations=rounds,
+                log_likelihood=None,
+                detection_statistic=None,
+                upper95_db=None,
+                gof=None,
+            ),
+            scale,
         )
     esn0 = weight * a2 / n0
     bad = _plausibility(_db(esn0))
@@ -1325,22 +1384,25 @@ def fit_dd(
         gof_result = check_energy_laws(
             zz, amplitude=a, noise_var=n0, gram=r_gram, modulation=modulation, priors=pi
         )
-    return _build(
-        method="dd-moment",
-        modulation=modulation,
-        n_symbols=n,
-        esn0=esn0,
-        log_gamma_var=None,
-        amplitude=a,
-        noise_var=n0,
-        priors=pi,
-        converged=bad is None,
-        message=bad or "decision-directed moments (biased high below about 8 dB Es/N0)",
-        iterations=rounds,
-        log_likelihood=None,
-        detection_statistic=None,
-        upper95_db=None,
-        gof=gof_result,
+    return _unscaled(
+        _build(
+            method="dd-moment",
+            modulation=modulation,
+            n_symbols=n,
+            esn0=esn0,
+            log_gamma_var=None,
+            amplitude=a,
+            noise_var=n0,
+            priors=pi,
+            converged=bad is None,
+            message=bad or "decision-directed moments (biased high below about 8 dB Es/N0)",
+            iterations=rounds,
+            log_likelihood=None,
+            detection_statistic=None,
+            upper95_db=None,
+            gof=gof_result,
+        ),
+        scale,
     )
 
 
@@ -1391,7 +1453,7 @@ def symbol_posteriors(
         _check_gram(gram, zz.shape[1])
     a, n0 = _fit_parameters(fit)
     pi = _check_priors(fit.priors, modulation)
-    log_lam = _log_i0(2.0 * a * np.abs(zz) / n0) - a * a / n0  # log Λ, eq. 3
+    log_lam = _log_i0((2.0 * a / n0) * np.abs(zz)) - (a / n0) * a  # log Λ, eq. 3
     if modulation == "ook":
         log_lam = np.concatenate([np.zeros_like(log_lam), log_lam], axis=1)  # off: Λ = 1
     return special.softmax(log_lam + np.log(pi), axis=1)

@@ -634,3 +634,32 @@ def test_to_dict_is_json_safe_and_complete():
     f4 = fit_nda(draw_fsk(rng, 1000, 4, 7.0)[0], modulation="4fsk")
     assert f4.ebn0_db == pytest.approx(f4.esn0_db - 10 * math.log10(2))
     assert fit_dd(z, modulation="2fsk").log_likelihood is None
+
+
+def test_scale_invariance_and_zero_input():
+    # Es/N0 is a ratio: scaling z by s scales A by s, N0 by s², and the density by s^(−2·N·M)
+    rng = np.random.default_rng(940)
+    z, _ = draw_fsk(rng, 500, 2, 9.0)
+    base = fit_nda(z, modulation="2fsk")
+    for s in (1e-150, 1e150):
+        f = fit_nda(z * s, modulation="2fsk")
+        assert f.esn0_db == pytest.approx(base.esn0_db, abs=1e-9)
+        assert f.amplitude == pytest.approx(base.amplitude * s, rel=1e-9)
+        shift = -2 * 500 * 2 * math.log(s)
+        assert f.log_likelihood == pytest.approx(base.log_likelihood + shift, rel=1e-12)
+        np.testing.assert_array_equal(
+            decide_symbols(z * s, f, modulation="2fsk"), decide_symbols(z, base, modulation="2fsk")
+        )
+    for fit in (
+        fit_nda(np.zeros((50, 2)), modulation="2fsk"),
+        fit_dd(np.zeros((50, 1)), modulation="ook"),
+    ):
+        assert not fit.converged and fit.esn0 is None and "zero" in fit.message
+
+
+def test_private_log_i0_agrees_with_theory():
+    # fit keeps its own log I0 (it reuses i0e(u) for I1/I0 in the hot loop); the project's
+    # theory module has the same formula with one more series term
+    theory = pytest.importorskip("iqstat.theory")
+    x = np.concatenate([np.geomspace(1e-9, 1e-2, 20), np.linspace(0.02, 800, 200)])
+    np.testing.assert_allclose(_log_i0(x), theory.log_i0(x), rtol=1e-13, atol=1e-300)
