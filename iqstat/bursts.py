@@ -20,7 +20,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 import scipy.fft
-from scipy import stats
+from scipy import special, stats
 from scipy.ndimage import median_filter
 
 from iqstat.capture import Capture
@@ -46,7 +46,6 @@ _MATMUL_MAX_BIN_FRACTION = 1.0 / 6.0
 # Sample-level edge search: this many frames either side of the frame-level edge.
 _REFINE_HALF_FRAMES = 3
 # At most this many gap frames are read back for the noise PSD.
-_PSD_MAX_FRAMES = 1024
 # Lowest in-band SNR reported, dB (a burst whose in-band excess is not positive).
 _MIN_BAND_SNR_DB = -30.0
 _TINY = 1e-300
@@ -170,6 +169,70 @@ class FramePowers:
 # --------------------------------------------------------------------------------------------
 # Gamma-law helpers (pure)
 # --------------------------------------------------------------------------------------------
+#: Fewest noise-only frames for a noise estimate from the gaps.
+MIN_GAP_FRAMES = 8
+#: Degrees of freedom the smoothed powers of :func:`noise_floor_lowest_cluster` aim for.
+FLOOR_SMOOTH_DOF = 50.0
+#: Noise quantile where :func:`noise_floor_lowest_cluster` truncates.
+FLOOR_TRUNCATION_QUANTILE = 0.9
+
+
+def noise_floor_lowest_cluster(frame_power, dof: float) -> float:
+    """Noise power as the lowest cluster of frame powers, robust to bursts filling most frames.
+
+    Parameters
+    ----------
+    frame_power : array_like of float, shape (n_frames,)
+        Mean (in-band) power per frame, linear.
+    dof : float
+        Gamma shape of one frame's power under white noise (independent complex samples or
+        DFT bins averaged).
+
+    Returns
+    -------
+    float
+        Noise power per frame (same units).
+
+    Notes
+    -----
+    A low quantile scaled by its Gamma quantile assumes that the quantile is one of the noise
+    frames' own; when gaps are only a few per cent of the frames, the 1 % quantile overall is
+    the 20 % quantile of the noise frames and the estimate is far too high. Instead, frames are
+    smoothed by a moving mean of m frames (m·dof ≥ 50, so noise and a burst a few dB in-band
+    above it separate), and the noise level N is the fixed point of the truncated-Gamma mean
+
+        N = mean(p_m | p_m < t) / (P(G+1, t·G/N) / P(G, t·G/N)),   t = N·Q(0.9; G)/G,
+
+    with G = m·dof and P the regularised lower incomplete gamma function: the mean of a
+    Gamma(G, N/G) variable below t is N·P(G+1, tG/N)/P(G, tG/N). The iteration starts below
+    the noise (the smallest smoothed power) and rises to it; burst frames above t do not enter.
+    """
+    pw = np.asarray(frame_power, dtype=np.float64).ravel()
+    if pw.size == 0:
+        raise ParameterError("frame_power is empty; give at least one frame power")
+    m = int(min(max(1, math.ceil(FLOOR_SMOOTH_DOF / dof)), max(1, pw.size // 8)))
+    cs = np.concatenate(([0.0], np.cumsum(pw)))
+    pm = (cs[m:] - cs[:-m]) / m
+    g = m * dof
+    q = float(stats.gamma.ppf(FLOOR_TRUNCATION_QUANTILE, g)) / g
+    n = float(pm.min())
+    if n <= 0:
+        return noise_floor_from_frames(pw, dof)
+    for _ in range(100):
+        t = n * q
+        below = pm[pm < t]
+        if below.size == 0:
+            break
+        x = t * g / n
+        factor = float(special.gammainc(g + 1, x) / special.gammainc(g, x))
+        new = float(below.mean()) / factor
+        if abs(new - n) <= 1e-6 * n:
+            n = new
+            break
+        n = new
+    return n
+
+
 def noise_floor_from_frames(frame_power, frame_len: float, quantile: float = 0.1) -> float:
     """Noise power from a low quantile of frame powers, scaled by its Gamma-law quantile.
 
@@ -460,6 +523,43 @@ def _split_gap(p: np.ndarray, dof: float, floor: float, a, b) -> bool:
     return llr > _SPLIT_LOG_LR
 
 
+def reach_of(cluster) -> int:
+    """One past the last frame of a cluster of (start, stop, m) intervals."""
+    return max(iv[1] for iv in cluster)
+
+
+def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int]]:
+    """Pieces ``[start, stop, m_first, m_last]`` of the frames [a, b), coarse to fine."""
+    if not scales_desc:
+        return []
+    m = scales_desc[0]
+    inside = [(x, y) for x, y in by_scale[m] if y > a and x < b]
+    if not inside:
+        return _split_by_scale(p, dof, floor, by_scale, scales_desc[1:], a, b)
+    groups = [[inside[0][0], inside[0][1], m, m]]
+    for x, y in inside[1:]:
+        last = groups[-1]
+        if x <= last[1] or not _split_gap(p, dof, floor, last, (x, y)):
+            last[1] = max(last[1], y)
+        else:
+            groups.append([x, y, m, m])
+    out = []
+    for g in groups:
+        finer = _split_by_scale(p, dof, floor, by_scale, scales_desc[1:], g[0], g[1])
+        if len(finer) > 1:
+            out.extend(finer)
+        elif len(finer) == 1:
+            # One burst at the finer length too: its edges are the sharper ones, unless it
+            # saw only part of the burst (then the coarser extent stands).
+            f = finer[0]
+            out.append([min(f[0], g[0]) if f[0] > g[0] + m else f[0],
+                        max(f[1], g[1]) if f[1] < g[1] - m else f[1],
+                        f[2] if f[0] <= g[0] + m else m, f[3] if f[1] >= g[1] - m else m])
+        else:
+            out.append(g)
+    return out
+
+
 def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[_Group]:
     """Join the detections of all smoothing lengths into bursts with edge search windows."""
     n_frames = p.size
@@ -482,22 +582,12 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
 
     groups: list[_Group] = []
     for cl in clusters:
-        # Pieces: finest-scale intervals first, coarser ones only where nothing finer was found.
-        pieces: list[tuple[int, int, int]] = []
-        for m in scales:
-            for a, b, mm in cl:
-                if mm == m and all(b <= pa or a >= pb for pa, pb, _ in pieces):
-                    pieces.append((a, b, m))
-        pieces.sort()
-        # merged entries: [start, stop, scale of the first piece, scale of the last piece]
-        merged = [[pieces[0][0], pieces[0][1], pieces[0][2], pieces[0][2]]]
-        for a, b, m in pieces[1:]:
-            last = merged[-1]
-            if a <= last[1] or not _split_gap(p, dof, floor, last, (a, b)):
-                if b > last[1]:
-                    last[1], last[3] = b, m
-            else:
-                merged.append([a, b, m, m])
+        # From the coarsest smoothing length down: a burst is split only where a finer length
+        # shows a gap that is decisively noise; within a burst, the finest length that still
+        # sees it whole gives its edges. (Taking the finest fragments everywhere would let a
+        # weak burst's dips mask the true gaps, and bursts would merge.)
+        by_scale = {m: sorted((a, b) for a, b, mm in cl if mm == m) for m in scales}
+        merged = _split_by_scale(p, dof, floor, by_scale, scales[::-1], cl[0][0], reach_of(cl))
         # A piece found at smoothing length m may start up to m frames before the true edge.
         for i, (a, b, m_first, m_last) in enumerate(merged):
             left = merged[i - 1][1] if i else 0
@@ -604,34 +694,16 @@ def _mean_power(capture: Capture, fp: FramePowers, s0: int, s1: int) -> float:
     return total / (s1 - s0)
 
 
-def _noise_psd(capture: Capture, gap_frames: np.ndarray, L: int, band_hz) -> float:
-    """Median over band bins (DC excluded) of a Hann-window PSD of gap frames, FS²/Hz."""
-    fs = capture.sample_rate_hz
+def _noise_psd(p_band: np.ndarray, gap_frames: np.ndarray, dof: float, L: int, fs: float):
+    """Noise PSD [FS²/Hz] in the detection band from the in-band power of every gap frame.
+
+    The in-band frame power of white noise has mean σ²·|B|/L (see measure_frame_powers), so
+    N0 = mean(p_band[gaps])·L/(|B|·fs) for a complex capture (|B| = dof bins). Using every
+    gap frame and every band bin keeps the estimate's relative spread at 1/√(n_gap·|B|).
+    """
     if gap_frames.size == 0:
         return float("nan")
-    pick = gap_frames[
-        np.round(np.linspace(0, gap_frames.size - 1, min(_PSD_MAX_FRAMES, gap_frames.size))).astype(
-            np.int64
-        )
-    ]
-    pick = np.unique(pick)
-    w = np.hanning(L + 2)[1:-1]
-    x = np.stack([capture.read(int(i) * L, L) for i in pick])
-    X = np.fft.fft(x * w, axis=1)
-    psd = np.mean(X.real**2 + X.imag**2, axis=0) / (fs * np.sum(w**2))
-    f = _bin_freqs(L, fs)
-    not_dc = np.abs(f) > 1.5 * fs / L
-    if band_hz is None:
-        sel = not_dc & (np.abs(f) <= 0.4 * fs)
-    else:
-        sel = not_dc & (f >= band_hz[0]) & (f <= band_hz[1])
-        if sel.sum() < 3:
-            half = 0.5 * (band_hz[1] - band_hz[0]) + 3 * fs / L
-            mid = 0.5 * (band_hz[0] + band_hz[1])
-            sel = not_dc & (np.abs(f - mid) <= half)
-    n = pick.size
-    # The median over bins of per-bin means concentrates at the Gamma(n, 1/n) median.
-    return float(np.median(psd[sel]) / stats.gamma.median(n, scale=1.0 / n))
+    return float(np.mean(p_band[gap_frames], dtype=np.float64)) * L / (dof * fs)
 
 
 def _db(x: float) -> float:
@@ -759,14 +831,13 @@ def detect_bursts(
     p = fp.band.astype(np.float64)
     dof = fp.band_dof
 
-    n4 = n_frames // 4
-    floor = noise_floor_from_frames(p[: n4 * 4].reshape(n4, 4).mean(axis=1), 4 * dof)
+    floor = noise_floor_lowest_cluster(p, dof)
     for _ in range(4):
         groups = _detect_groups(p, dof, floor, pfa)
         gap = np.ones(n_frames, dtype=bool)
         for g in groups:
             gap[max(g.start_lo - 1, 0) : g.stop_hi + 1] = False
-        if gap.sum() < max(8, 0.05 * n_frames):
+        if gap.sum() < MIN_GAP_FRAMES:
             break  # (almost) no gaps: keep the quantile floor
         new_floor = float(p[gap].mean())
         if abs(new_floor - floor) <= 1e-4 * floor:
@@ -789,14 +860,14 @@ def detect_bursts(
         final_gap = np.ones(n_frames, dtype=bool)
         for s0, s1 in joined:
             final_gap[max(s0 // L - 1, 0) : s1 // L + 2] = False
-        if final_gap.sum() >= max(8, 0.05 * n_frames):
+        if final_gap.sum() >= MIN_GAP_FRAMES:
             gap = final_gap
             floor = float(p[gap].mean())
     gap_frames = np.flatnonzero(gap)
     noise_var = (
         float(np.mean(fp.full[gap_frames], dtype=np.float64))
         if gap_frames.size
-        else (noise_floor_from_frames(fp.full, L if capture.is_complex else L / 2))
+        else (noise_floor_lowest_cluster(fp.full, L if capture.is_complex else L / 2))
     )
     bursts = []
     for i, (s0, s1) in enumerate(joined):
@@ -816,7 +887,7 @@ def detect_bursts(
                 peak_dbfs=_db(peak),
             )
         )
-    psd = _noise_psd(capture, gap_frames, L, band_edges)
+    psd = _noise_psd(p, gap_frames, dof if capture.is_complex else 2 * dof, L, fs)
     floor_dbfs = _db(noise_var)
     if bursts:
         message = (

@@ -1,0 +1,180 @@
+"""End-to-end: synthesised captures with known truth through the whole measurement chain.
+
+References: the synthetic truth (iqstat synth, truth convention Eb/N0 = P·(fs/Rb)/σ²);
+tolerances from each burst's own 95 % interval (the estimator's spread, METHODS §3) and from the
+binomial law for error counts; error probabilities from theory (METHODS §1, Proakis & Salehi 5th
+ed. §4.5 [from memory]).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+from typer.testing import CliRunner
+
+from iqstat.capture import Capture
+from iqstat.cli import app
+from iqstat.measure import measure_capture
+from iqstat.profile import profile_from_dict
+from iqstat.report.measurement import report_to_dict
+from iqstat.synth import scenario_from_dict, synthesize
+
+RS = 4800.0
+FS = 250e3
+
+
+def _doc(modulation="2fsk", ebn0=12.0, count=4, spacing=4800.0, payload_bits=400, **imp):
+    link = {"modulation": modulation, "symbol_rate": RS}
+    if modulation != "ook":
+        link["tone_spacing"] = spacing
+    d = {
+        "link": link,
+        "frame": {"preamble": "aaaaaaaa", "sync_word": "2dd4", "payload": "pn9",
+                  "payload_bits": payload_bits},
+        "requirement": {"ber": 1e-4},
+        "capture": {"sample_rate": FS, "datatype": "cf32_le", "seed": 11},
+        "bursts": {"count": count, "ebn0_db": ebn0, "cfo_hz": {"uniform": [-3000.0, 3000.0]},
+                   "gap_s": 0.01},
+        "impairments": {"clock_offset_ppm": 20.0, **imp},
+    }
+    return d
+
+
+def _run(doc, seed=1):
+    sc = scenario_from_dict(doc)
+    syn = synthesize(sc, seed=seed)
+    profile = profile_from_dict({k: doc[k] for k in ("link", "frame", "requirement")})
+    cap = Capture.from_array(syn.samples, FS)
+    return measure_capture(cap, profile), syn.truth
+
+
+def _match(report, truth):
+    """Pair each true burst with the measured burst overlapping it most."""
+    pairs = []
+    for t in truth.bursts:
+        best = max(report.bursts, default=None, key=lambda b: min(b.stop_sample, t.stop_sample)
+                   - max(b.start_sample, t.start_sample))
+        pairs.append((t, best))
+    return pairs
+
+
+@pytest.mark.parametrize(
+    ("modulation", "spacing", "ebn0"),
+    [("2fsk", 4800.0, 12.0), ("4fsk", 4800.0, 10.0), ("2fsk", 2400.0, 12.0), ("ook", None, 14.0)],
+)
+def test_per_burst_ebn0_and_cfo_against_truth(modulation, spacing, ebn0):
+    report, truth = _run(_doc(modulation, ebn0, spacing=spacing or 4800.0))
+    assert len(report.bursts) == len(truth.bursts)
+    for t, b in _match(report, truth):
+        assert b is not None and b.ebn0_db is not None, b and b.message
+        lo, hi = b.fit.ebn0_db_ci95
+        half = (hi - lo) / 2
+        # Within 3 half-widths of the 95 % interval (≈ 3σ·1.96 … generous for modelling error
+        # such as pulse shaping) — and never more than 1 dB off.
+        assert abs(b.ebn0_db - t.ebn0_db) < min(1.0, 3 * half + 0.2), (b.ebn0_db, t.ebn0_db)
+        # Issue requirement: CFO within max(50 Hz, 1 % of the symbol rate).
+        assert abs(b.cfo_hz - t.cfo_hz) < max(50.0, 0.01 * RS)
+        assert b.frame is not None and b.frame.found
+    d = report_to_dict(report)
+    json.dumps(d, allow_nan=False)
+
+
+def test_measured_ber_is_consistent_with_theory_at_low_ebn0():
+    report, truth = _run(_doc("2fsk", 6.0, count=6, payload_bits=800))
+    s = report.summary
+    assert s.bits_checked and s.bits_checked >= 4000
+    from iqstat.theory import predicted_ber
+
+    p = float(predicted_ber(10 ** (6.0 / 10), "2fsk"))  # at the TRUE Eb/N0
+    # Binomial two-sided test at the 1e-3 level (errors are independent for AWGN).
+    assert stats.binomtest(s.bit_errors, s.bits_checked, p).pvalue > 1e-3
+    assert abs(s.ebn0_db - 6.0) < 0.5
+
+
+def test_all_noise_capture_is_a_valid_result():
+    rng = np.random.default_rng(5)
+    x = (rng.standard_normal(200_000) + 1j * rng.standard_normal(200_000)) * 0.05
+    profile = profile_from_dict({"link": {"modulation": "2fsk", "symbol_rate": RS,
+                                          "tone_spacing": RS}})
+    report = measure_capture(Capture.from_array(x, FS), profile)
+    assert report.bursts == ()
+    assert "no-bursts" in report.summary.flags
+    assert report.summary.ebn0_db is None
+    assert "no bursts above the floor of" in report.summary.message
+    json.dumps(report_to_dict(report), allow_nan=False)
+
+
+def test_wrong_sync_word_is_flagged_but_ebn0_still_measured():
+    doc = _doc("2fsk", 12.0, count=2)
+    sc = scenario_from_dict(doc)
+    syn = synthesize(sc, seed=2)
+    wrong = {k: doc[k] for k in ("link", "frame", "requirement")}
+    wrong["frame"] = {**wrong["frame"], "sync_word": "b38f"}
+    report = measure_capture(Capture.from_array(syn.samples, FS), profile_from_dict(wrong))
+    assert "sync-not-found" in report.summary.flags
+    assert report.summary.ebn0_db is not None
+    assert abs(report.summary.ebn0_db - 12.0) < 1.0
+
+
+def test_json_report_has_the_documented_keys(tmp_path):
+    """docs/report-format.md: the keys the issue names, never omitted, never NaN."""
+    from iqstat.formats.sigmf_writer import write_recording
+
+    doc = _doc("2fsk", 10.0, count=2)
+    syn = synthesize(scenario_from_dict(doc), seed=3)
+    meta, _ = write_recording(tmp_path / "site", syn.samples, datatype="ci16_le",
+                              sample_rate_hz=FS)
+    (tmp_path / "link.toml").write_text(
+        '[link]\nmodulation = "2fsk"\nsymbol_rate = 4800\ntone_spacing = 4800\n'
+        '[frame]\npreamble = "aaaaaaaa"\nsync_word = "2dd4"\npayload = "pn9"\n'
+        'payload_bits = 400\n[requirement]\nber = 1e-4\n')
+    out = tmp_path / "r.json"
+    r = CliRunner().invoke(app, ["measure", str(meta), "--profile", str(tmp_path / "link.toml"),
+                                 "--json", str(out)])
+    assert r.exit_code == 0, r.stderr
+    assert "margin" in r.stdout
+    d = json.loads(out.read_text())
+    assert d["format"] == "iqstat-report" and d["format_version"] == 1
+    for k in ("sample_rate_hz", "samples"):
+        assert k in d["capture"]
+    for k in ("modulation", "symbol_rate_hz", "tone_spacing_hz"):
+        assert k in d["link"]
+    for b in d["bursts"]:
+        for k in ("start_sample", "stop_sample", "symbols", "cfo_hz", "ebn0_db", "bit_errors",
+                  "bits_checked"):
+            assert k in b
+    for k in ("bursts", "symbols", "ebn0_db", "ebn0_db_ci95", "esn0_db", "predicted_ber",
+              "measured_ber", "measured_ber_ci95", "bit_errors", "bits_checked",
+              "required_ebn0_db", "margin_db", "flags"):
+        assert k in d["summary"], k
+    lo, hi = d["summary"]["ebn0_db_ci95"]
+    assert lo < d["summary"]["ebn0_db"] < hi
+    assert math.isclose(d["summary"]["margin_db"],
+                        d["summary"]["ebn0_db"] - d["summary"]["required_ebn0_db"])
+    assert "NaN" not in out.read_text()
+
+
+def test_measure_cli_bad_inputs(tmp_path):
+    runner = CliRunner()
+    (tmp_path / "p.toml").write_text('[link]\nmodulaton = "2fsk"\n')
+    x = np.zeros(1000, dtype="<i2")
+    x.tofile(tmp_path / "r.sigmf-data")
+    (tmp_path / "r.sigmf-meta").write_text(json.dumps({
+        "global": {"core:datatype": "ri16_le", "core:version": "1.2.0",
+                   "core:sample_rate": 250000.0},
+        "captures": [], "annotations": []}))
+    for args, match in [
+        (["measure", str(tmp_path / "r.sigmf-meta"), "--profile", str(tmp_path / "p.toml")],
+         "did you mean"),
+        (["measure", str(tmp_path / "r.sigmf-meta"), "--modulation", "2fsk"], "complex"),
+        (["measure", str(tmp_path / "r.sigmf-meta")], "--modulation"),
+        (["measure", str(tmp_path / "r.sigmf-meta"), "--modulation", "fsk2"], "did you mean"),
+    ]:
+        r = runner.invoke(app, args)
+        assert r.exit_code == 2, (args, r.stdout, r.stderr)
+        lines = [ln for ln in r.stderr.splitlines() if ln.strip()]
+        assert len(lines) == 1 and match in lines[0], r.stderr
