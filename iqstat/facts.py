@@ -15,7 +15,7 @@ from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture
 from iqstat.units import db
 
 WELCH_FFT = 1024
-WELCH_MAX_FRAMES = 8192  # frames averaged at most (≈ 8 M samples), spread over the whole capture
+WELCH_MAX_FRAMES = 1024  # frames averaged at most (≈ 1 M samples), spread over the capture
 FLOOR_FRAME = 256  # samples per short-time power frame of the noise-floor estimate
 FLOOR_QUANTILE = 0.1
 NEAR_FULL_SCALE = 0.99  # a component at or beyond 99 % of full scale counts as clipped

@@ -689,7 +689,8 @@ def _chi2_2_cdf(y: np.ndarray, lam: float) -> np.ndarray:
     """CDF of the (non)central chi-square with 2 degrees of freedom at y."""
     if lam <= 0.0:
         return -np.expm1(-0.5 * y)
-    return stats.ncx2.cdf(y, 2, lam)
+    # The ufunc under scipy.stats.ncx2.cdf, without the distribution wrapper's overhead.
+    return special.chndtr(y, 2.0, lam)
 
 
 def branch_energy_cdf(
@@ -761,6 +762,27 @@ def branch_energy_cdf(
     return np.clip(out, 0.0, 1.0)
 
 
+def _ks_uniform(u: np.ndarray) -> tuple[float, float]:
+    """Two-sided one-sample KS test of u against U(0, 1): (D, p-value).
+
+    D is computed exactly; the p-value uses Stephens' modified statistic
+    (√n + 0.12 + 0.11/√n)·D with the Kolmogorov limit law, accurate to a few per cent of p for
+    n ≥ 5 [1]_, and free of the per-call overhead of scipy.stats.kstest (this runs once per
+    branch per burst).
+
+    References
+    ----------
+    .. [1] M. A. Stephens, "Use of the Kolmogorov–Smirnov, Cramér–von Mises and related
+       statistics without extensive tables," J. R. Stat. Soc. B 32(1):115–122, 1970 [mem].
+    """
+    x = np.sort(u)
+    n = x.size
+    i = np.arange(1, n + 1)
+    d = float(max(np.max(i / n - x), np.max(x - (i - 1) / n)))
+    rn = math.sqrt(n)
+    return d, float(special.kolmogorov((rn + 0.12 + 0.11 / rn) * d))
+
+
 def check_energy_laws(
     z: np.ndarray,
     *,
@@ -825,9 +847,9 @@ def check_energy_laws(
         priors=priors,
         symbols=sym,
     )
-    tests = [stats.kstest(cdf[:, j], "uniform") for j in range(m)]
-    statistic = max(float(t.statistic) for t in tests)
-    pvalue = min(1.0, m * min(float(t.pvalue) for t in tests))  # Bonferroni over branches
+    tests = [_ks_uniform(cdf[:, j]) for j in range(m)]
+    statistic = max(t[0] for t in tests)
+    pvalue = min(1.0, m * min(t[1] for t in tests))  # Bonferroni over branches
     return statistic, pvalue, int(cdf.size)
 
 
