@@ -48,22 +48,38 @@ DatatypeOpt = Annotated[
 ]
 RateOpt = Annotated[
     float | None,
-    typer.Option("--sample-rate", parser=_rate("--sample-rate"), metavar="RATE",
-                 help="Sample rate of a raw file (or of SigMF metadata lacking it): 250k, 2.4M."),
+    typer.Option(
+        "--sample-rate",
+        parser=_rate("--sample-rate"),
+        metavar="RATE",
+        help="Sample rate of a raw file (or of SigMF metadata lacking it): 250k, 2.4M.",
+    ),
 ]
 FreqOpt = Annotated[
     float | None,
-    typer.Option("--center-frequency", parser=_rate("--center-frequency"), metavar="FREQ",
-                 help="Centre frequency of a raw file, e.g. 869.5MHz."),
+    typer.Option(
+        "--center-frequency",
+        parser=_rate("--center-frequency"),
+        metavar="FREQ",
+        help="Centre frequency of a raw file, e.g. 869.5MHz.",
+    ),
 ]
-HeaderOpt = Annotated[int, typer.Option("--header-bytes", min=0, help="Bytes to skip at the start "
-                                        "of a raw file.")]
-ChannelOpt = Annotated[int, typer.Option("--channel", min=0, help="Channel of a multi-channel "
-                                         "recording (0-based).")]
-RecordingOpt = Annotated[str | None, typer.Option("--recording", help="Recording to read from a "
-                                                  ".sigmf archive holding several.")]
-VerifyOpt = Annotated[bool, typer.Option("--verify", help="Check the data against core:sha512 "
-                                         "first (reads the file once more).")]
+HeaderOpt = Annotated[
+    int, typer.Option("--header-bytes", min=0, help="Bytes to skip at the start of a raw file.")
+]
+ChannelOpt = Annotated[
+    int, typer.Option("--channel", min=0, help="Channel of a multi-channel recording (0-based).")
+]
+RecordingOpt = Annotated[
+    str | None,
+    typer.Option("--recording", help="Recording to read from a .sigmf archive holding several."),
+]
+VerifyOpt = Annotated[
+    bool,
+    typer.Option(
+        "--verify", help="Check the data against core:sha512 first (reads the file once more)."
+    ),
+]
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
@@ -108,8 +124,12 @@ def _open(path, datatype, sample_rate, center_frequency, header_bytes, channel, 
 @app.command()
 @_cli_errors
 def describe(
-    capture: Annotated[Path, typer.Argument(help="SigMF meta/data/base name, .sigmf archive, or "
-                                            "raw file.", show_default=False)],
+    capture: Annotated[
+        Path,
+        typer.Argument(
+            help="SigMF meta/data/base name, .sigmf archive, or raw file.", show_default=False
+        ),
+    ],
     datatype: DatatypeOpt = None,
     sample_rate: RateOpt = None,
     center_frequency: FreqOpt = None,
@@ -117,42 +137,69 @@ def describe(
     channel: ChannelOpt = 0,
     recording: RecordingOpt = None,
     verify: VerifyOpt = False,
-    json_out: Annotated[bool, typer.Option("--json", help="Print the facts as JSON on stdout.")] = False,
+    json_out: Annotated[
+        bool, typer.Option("--json", help="Print the facts as JSON on stdout.")
+    ] = False,
 ) -> None:
     """Facts of a capture from one streaming pass: levels, clipping, DC, spectrum, noise floor."""
     from iqstat.facts import compute_facts
     from iqstat.report.describe import render_facts
     from iqstat.report.jsonio import write_json
 
-    cap = _open(capture, datatype, sample_rate, center_frequency, header_bytes, channel,
-                recording, verify)
+    cap = _open(
+        capture, datatype, sample_rate, center_frequency, header_bytes, channel, recording, verify
+    )
     facts = compute_facts(cap)
     if json_out:
         write_json({"format": "iqstat-facts", "format_version": 1, **facts.to_dict()}, "-")
     else:
         render_facts(facts, Console(highlight=False))
         if not facts.is_complex:
-            _err.print("iqstat: warning: this recording is real-valued; Eb/N0 measurement needs "
-                       "complex baseband (I/Q) samples", markup=False)
+            _err.print(
+                "iqstat: warning: this recording is real-valued; Eb/N0 measurement needs "
+                "complex baseband (I/Q) samples",
+                markup=False,
+            )
 
 
 @app.command()
 @_cli_errors
 def measure(
-    capture: Annotated[Path, typer.Argument(help="SigMF meta/data/base name, .sigmf archive, or "
-                                            "raw file.", show_default=False)],
-    profile: Annotated[Path | None, typer.Option("--profile", help="Link profile (TOML): what "
-                                                 "was sent.")] = None,
-    modulation: Annotated[str | None, typer.Option("--modulation", help="2fsk, 4fsk or ook "
-                                                   "(overrides the profile).")] = None,
-    symbol_rate: Annotated[float | None, typer.Option(
-        "--symbol-rate", parser=_rate("--symbol-rate"), metavar="RATE",
-        help="Symbol rate, e.g. 4800 or 4.8k (overrides the profile).")] = None,
-    tone_spacing: Annotated[float | None, typer.Option(
-        "--tone-spacing", parser=_rate("--tone-spacing"), metavar="FREQ",
-        help="FSK tone spacing, e.g. 4.8k (overrides the profile).")] = None,
-    required_ber: Annotated[float | None, typer.Option(
-        "--required-ber", help="The link's required BER, e.g. 1e-5 (overrides the profile).")
+    capture: Annotated[
+        Path,
+        typer.Argument(
+            help="SigMF meta/data/base name, .sigmf archive, or raw file.", show_default=False
+        ),
+    ],
+    profile: Annotated[
+        Path | None, typer.Option("--profile", help="Link profile (TOML): what was sent.")
+    ] = None,
+    modulation: Annotated[
+        str | None, typer.Option("--modulation", help="2fsk, 4fsk or ook (overrides the profile).")
+    ] = None,
+    symbol_rate: Annotated[
+        float | None,
+        typer.Option(
+            "--symbol-rate",
+            parser=_rate("--symbol-rate"),
+            metavar="RATE",
+            help="Symbol rate, e.g. 4800 or 4.8k (overrides the profile).",
+        ),
+    ] = None,
+    tone_spacing: Annotated[
+        float | None,
+        typer.Option(
+            "--tone-spacing",
+            parser=_rate("--tone-spacing"),
+            metavar="FREQ",
+            help="FSK tone spacing, e.g. 4.8k (overrides the profile).",
+        ),
+    ] = None,
+    required_ber: Annotated[
+        float | None,
+        typer.Option(
+            "--required-ber", help="The link's required BER, e.g. 1e-5 (overrides the profile)."
+        ),
     ] = None,
     datatype: DatatypeOpt = None,
     sample_rate: RateOpt = None,
@@ -161,9 +208,12 @@ def measure(
     channel: ChannelOpt = 0,
     recording: RecordingOpt = None,
     verify: VerifyOpt = False,
-    json_path: Annotated[str | None, typer.Option("--json", metavar="PATH", help="Write the "
-                                                  "report as JSON to PATH ('-' for stdout).")
-                         ] = None,
+    json_path: Annotated[
+        str | None,
+        typer.Option(
+            "--json", metavar="PATH", help="Write the report as JSON to PATH ('-' for stdout)."
+        ),
+    ] = None,
 ) -> None:
     """Eb/N0 with its confidence interval, predicted and measured BER, and margin."""
     from iqstat.measure import measure_capture
@@ -172,10 +222,16 @@ def measure(
     from iqstat.report.measurement import render_report, report_to_dict
 
     base = load_profile(profile) if profile is not None else None
-    prof = override_profile(base, modulation=modulation, symbol_rate_hz=symbol_rate,
-                            tone_spacing_hz=tone_spacing, required_ber=required_ber)
-    cap = _open(capture, datatype, sample_rate, center_frequency, header_bytes, channel,
-                recording, verify)
+    prof = override_profile(
+        base,
+        modulation=modulation,
+        symbol_rate_hz=symbol_rate,
+        tone_spacing_hz=tone_spacing,
+        required_ber=required_ber,
+    )
+    cap = _open(
+        capture, datatype, sample_rate, center_frequency, header_bytes, channel, recording, verify
+    )
     report = measure_capture(cap, prof)
     if json_path is not None:
         write_json(report_to_dict(report), json_path)
@@ -187,10 +243,12 @@ def measure(
 @_cli_errors
 def synth(
     scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML).", show_default=False)],
-    out: Annotated[Path, typer.Option("--out", help="Folder to write the recording and its truth "
-                                      "file into.")],
-    seed: Annotated[int | None, typer.Option("--seed", help="Random seed (default: the "
-                                             "scenario's own).")] = None,
+    out: Annotated[
+        Path, typer.Option("--out", help="Folder to write the recording and its truth file into.")
+    ],
+    seed: Annotated[
+        int | None, typer.Option("--seed", help="Random seed (default: the scenario's own).")
+    ] = None,
     overwrite: Annotated[bool, typer.Option("--overwrite", help="Replace existing files.")] = False,
 ) -> None:
     """Write a synthetic SigMF recording with known truth (for testing receivers and iqstat).
@@ -216,8 +274,12 @@ def _version(value: bool) -> None:
 
 @app.callback()
 def _root(
-    version: Annotated[bool, typer.Option("--version", callback=_version, is_eager=True,
-                                          help="Show the version and exit.")] = False,
+    version: Annotated[
+        bool,
+        typer.Option(
+            "--version", callback=_version, is_eager=True, help="Show the version and exit."
+        ),
+    ] = False,
 ) -> None:
     """Eb/N0, error rate and margin of noncoherent FSK/OOK links from IQ captures."""
 
@@ -245,8 +307,11 @@ def main(argv: list[str] | None = None) -> None:
         if click_exc is not None:
             _err.print(f"iqstat: error: {click_exc}", markup=False)
             sys.exit(2)
-        _err.print(f"iqstat: internal error: {type(exc).__name__}: {exc} (please report it; "
-                   "IQSTAT_DEBUG=1 shows the traceback)", markup=False)
+        _err.print(
+            f"iqstat: internal error: {type(exc).__name__}: {exc} (please report it; "
+            "IQSTAT_DEBUG=1 shows the traceback)",
+            markup=False,
+        )
         sys.exit(1)
     sys.exit(code if isinstance(code, int) else 0)
 

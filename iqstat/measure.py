@@ -216,8 +216,11 @@ def _link_summary(profile: LinkProfile, links: list[LinkEstimate], rho: float | 
     rate = spacing = None
     rate_src = "profile" if profile.symbol_rate_hz is not None else "estimated"
     sp_src = (
-        "n/a" if profile.modulation == "ook"
-        else "profile" if profile.tone_spacing_hz is not None else "estimated"
+        "n/a"
+        if profile.modulation == "ook"
+        else "profile"
+        if profile.tone_spacing_hz is not None
+        else "estimated"
     )
     if links:
         rate = links[0].symbol_rate_hz
@@ -261,13 +264,20 @@ def _estimate_links(capture, detection, profile, margin) -> list[LinkEstimate | 
     for burst in detection.bursts:
         _, x = _read_burst(capture, burst, margin)
         try:
-            out.append(estimate_link(x, fs, modulation=profile.modulation,
-                                     symbol_rate_hz=profile.symbol_rate_hz,
-                                     tone_spacing_hz=profile.tone_spacing_hz))
+            out.append(
+                estimate_link(
+                    x,
+                    fs,
+                    modulation=profile.modulation,
+                    symbol_rate_hz=profile.symbol_rate_hz,
+                    tone_spacing_hz=profile.tone_spacing_hz,
+                )
+            )
         except MeasurementError:
             out.append(None)
     blind = profile.symbol_rate_hz is None or (
-        profile.modulation != "ook" and profile.tone_spacing_hz is None)
+        profile.modulation != "ook" and profile.tone_spacing_hz is None
+    )
     good = [e for e in out if e is not None]
     if blind and len(good) > 1:
         weights = [e.quality.get("n_symbols", 1) or 1 for e in good]
@@ -279,9 +289,15 @@ def _estimate_links(capture, detection, profile, margin) -> list[LinkEstimate | 
                 continue
             _, x = _read_burst(capture, burst, margin)
             try:
-                refined.append(estimate_link(
-                    x, fs, modulation=profile.modulation, symbol_rate_hz=rate,
-                    tone_spacing_hz=spacing if profile.modulation != "ook" else None))
+                refined.append(
+                    estimate_link(
+                        x,
+                        fs,
+                        modulation=profile.modulation,
+                        symbol_rate_hz=rate,
+                        tone_spacing_hz=spacing if profile.modulation != "ook" else None,
+                    )
+                )
             except MeasurementError:
                 refined.append(None)
         # Keep the provenance honest: these rates were estimated, not given.
@@ -294,8 +310,12 @@ def _as_estimated(e: LinkEstimate, profile: LinkProfile) -> LinkEstimate:
         e,
         symbol_rate_source="profile" if profile.symbol_rate_hz is not None else "estimated",
         tone_spacing_source=(
-            "n/a" if profile.modulation == "ook"
-            else "profile" if profile.tone_spacing_hz is not None else "estimated"),
+            "n/a"
+            if profile.modulation == "ook"
+            else "profile"
+            if profile.tone_spacing_hz is not None
+            else "estimated"
+        ),
     )
 
 
@@ -351,37 +371,67 @@ def measure_burst(
 ) -> BurstResult:
     """Synchronise, correlate, fit and check one burst (see :func:`measure_capture`)."""
     flags: list[str] = []
-    base = dict(index=burst.index, start_sample=burst.start_sample,
-                stop_sample=burst.stop_sample, power_dbfs=burst.power_dbfs)
+    base = dict(
+        index=burst.index,
+        start_sample=burst.start_sample,
+        stop_sample=burst.stop_sample,
+        power_dbfs=burst.power_dbfs,
+    )
     if link is None:
-        return BurstResult(**base, symbols=0, link=None, timing=None, frame=None, fit=None,
-                           fit_da=None, fit_dd=None, bit_check=None, available_ebn0_db=None,
-                           predicted_ber=None, flags=("link-not-estimated",),
-                           message="carrier and rates could not be estimated on this burst")
+        return BurstResult(
+            **base,
+            symbols=0,
+            link=None,
+            timing=None,
+            frame=None,
+            fit=None,
+            fit_da=None,
+            fit_dd=None,
+            bit_check=None,
+            available_ebn0_db=None,
+            predicted_ber=None,
+            flags=("link-not-estimated",),
+            message="carrier and rates could not be estimated on this burst",
+        )
     fs = capture.sample_rate_hz
     sps = fs / link.symbol_rate_hz
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * sps))
     x0, x = _read_burst(capture, burst, margin)
     timing = recover_timing(x, fs, link.symbol_rate_hz, link.tone_freqs_hz)
-    z_all = correlate_symbols(x, fs, link.tone_freqs_hz, timing.t0_samples,
-                              timing.period_samples, timing.n_symbols)
+    z_all = correlate_symbols(
+        x, fs, link.tone_freqs_hz, timing.t0_samples, timing.period_samples, timing.n_symbols
+    )
     gram = template_gram(link.tone_freqs_hz, timing.period_samples, fs)
     m = profile.modulation
     # Symbols within the detected burst (a symbol's worth of slack at each detected edge).
-    k0, k1 = _symbols_inside(timing, burst.start_sample - x0 - 0.5 * sps,
-                             burst.stop_sample - x0 + 0.5 * sps)
+    k0, k1 = _symbols_inside(
+        timing, burst.start_sample - x0 - 0.5 * sps, burst.stop_sample - x0 + 0.5 * sps
+    )
     z_in = z_all[k0:k1]
     if len(z_in) < MIN_FIT_SYMBOLS:
-        return BurstResult(**base, symbols=len(z_in), link=link, timing=timing, frame=None,
-                           fit=None, fit_da=None, fit_dd=None, bit_check=None,
-                           available_ebn0_db=None, predicted_ber=None,
-                           flags=("too-few-symbols",),
-                           message=f"only {len(z_in)} whole symbols: too few to fit")
+        return BurstResult(
+            **base,
+            symbols=len(z_in),
+            link=link,
+            timing=timing,
+            frame=None,
+            fit=None,
+            fit_da=None,
+            fit_dd=None,
+            bit_check=None,
+            available_ebn0_db=None,
+            predicted_ber=None,
+            flags=("too-few-symbols",),
+            message=f"only {len(z_in)} whole symbols: too few to fit",
+        )
     if m == "ook":
         # The decision threshold depends on the fitted amplitude and noise.
         first_fit = fit_nda(z_in, gram, modulation=m, gof=False)
-        hard = (decide_symbols(z_all, first_fit, gram, modulation=m) if first_fit.amplitude
-                else np.zeros(len(z_all), dtype=np.int64))
+        hard = (
+            decide_symbols(z_all, first_fit, gram, modulation=m)
+            if first_fit.amplitude
+            else np.zeros(len(z_all), dtype=np.int64)
+        )
     else:
         hard = np.argmax(np.abs(z_all), axis=1)  # largest-energy decision
     header = _header_symbols(layout, m)
@@ -394,34 +444,36 @@ def measure_burst(
         # header that starts before it must still be found.
         n_tones = 2 if m == "ook" else z_all.shape[1]
         soft = np.abs(z_all) ** 2 if m != "ook" else None
-        frame = align_frame(hard, header, soft=soft, n_tones=n_tones,
-                            detect_inverted=m != "ook")
+        frame = align_frame(hard, header, soft=soft, n_tones=n_tones, detect_inverted=m != "ook")
         if frame.found:
             start = frame.start_symbol
             n_payload_sym = None
             if layout.payload_length is not None:
                 n_payload_sym = layout.payload_length // profile.bits_per_symbol
-            stop = k1 if n_payload_sym is None else min(timing.n_symbols,
-                                                        start + len(header) + n_payload_sym)
+            stop = (
+                k1
+                if n_payload_sym is None
+                else min(timing.n_symbols, start + len(header) + n_payload_sym)
+            )
             sel = (start, stop)
             # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions,
             # apply it to the known symbols.
             flip = (lambda t: n_tones - 1 - t) if frame.inverted else (lambda t: t)
             known = np.full(stop - start, -1, dtype=np.int64)
             known[: len(header)] = flip(header)[: stop - start]
-            payload_syms = flip(hard[start + len(header): stop])
+            payload_syms = flip(hard[start + len(header) : stop])
             bits = symbols_to_bits(payload_syms, m)
             check = _check_payload(bits, layout, profile)
             ref = _known_payload_symbols(check, layout, profile, len(bits))
             if ref is not None:
                 n_ref = min(len(ref), len(known) - len(header))
-                known[len(header): len(header) + n_ref] = flip(ref[:n_ref])
+                known[len(header) : len(header) + n_ref] = flip(ref[:n_ref])
         else:
             flags.append("sync-not-found")
     elif profile.payload_kind != "unknown":
         bits = symbols_to_bits(hard[k0:k1], m)
         check = _check_payload(bits, layout, profile)
-    z = z_all[sel[0]: sel[1]]
+    z = z_all[sel[0] : sel[1]]
     fit = fit_nda(z, gram, modulation=m)
     dd = fit_dd(z, gram, modulation=m, gof=False)
     da = None
@@ -438,21 +490,39 @@ def measure_burst(
     rho = float(abs(gram[0, 1])) if m != "ook" else 0.0
     pred = None
     if fit.converged and fit.ebn0_db is not None:
-        pred = float(theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho if m == "2fsk"
-                                          else 0.0))
-    avail = _available_ebn0_db(x[int(burst.start_sample - x0): int(burst.stop_sample - x0)],
-                               detection, link, link.symbol_rate_hz * profile.bits_per_symbol)
-    res = BurstResult(**base, symbols=len(z), link=link, timing=timing, frame=frame, fit=fit,
-                      fit_da=da, fit_dd=dd, bit_check=check, available_ebn0_db=avail,
-                      predicted_ber=pred, flags=(), message=fit.message)
+        pred = float(
+            theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho if m == "2fsk" else 0.0)
+        )
+    avail = _available_ebn0_db(
+        x[int(burst.start_sample - x0) : int(burst.stop_sample - x0)],
+        detection,
+        link,
+        link.symbol_rate_hz * profile.bits_per_symbol,
+    )
+    res = BurstResult(
+        **base,
+        symbols=len(z),
+        link=link,
+        timing=timing,
+        frame=frame,
+        fit=fit,
+        fit_da=da,
+        fit_dd=dd,
+        bit_check=check,
+        available_ebn0_db=avail,
+        predicted_ber=pred,
+        flags=(),
+        message=fit.message,
+    )
     loss = res.detection_loss_db
     if loss is not None and loss > DETECTION_LOSS_FLAG_DB:
         flags.append("detection-loss")
     return BurstResult(**{**res.__dict__, "flags": tuple(flags)})
 
 
-def _available_ebn0_db(x: np.ndarray, detection: BurstDetection, link: LinkEstimate,
-                       bit_rate_hz: float) -> float | None:
+def _available_ebn0_db(
+    x: np.ndarray, detection: BurstDetection, link: LinkEstimate, bit_rate_hz: float
+) -> float | None:
     """Eb/N0 from power alone: (burst power − noise power) / (N0 · bit rate) (METHODS §9).
 
     Measured in the signal's band (outer tones ± AVAILABLE_BAND_SYMBOLS symbol rates), not the
@@ -509,9 +579,14 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
     rho = link_sum.tone_correlation or 0.0
     pred = None
     if ok:
-        pred = float(theory.mean_ber_over_bursts(
-            np.array([r.ebn0 for r in ok]), np.array([r.symbols for r in ok], dtype=float), m,
-            rho_abs=rho if m == "2fsk" else 0.0))
+        pred = float(
+            theory.mean_ber_over_bursts(
+                np.array([r.ebn0 for r in ok]),
+                np.array([r.symbols for r in ok], dtype=float),
+                m,
+                rho_abs=rho if m == "2fsk" else 0.0,
+            )
+        )
     checked = [r for r in results if r.bit_check is not None and r.bit_check.locked]
     errors = sum(r.bit_check.bit_errors for r in checked) if checked else None
     n_bits = sum(r.bit_check.bits_checked for r in checked) if checked else None
@@ -522,8 +597,11 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
     req = marg = worst = None
     if profile.required_ber is not None:
         try:
-            req = float(theory.required_ebn0_db(profile.required_ber, m,
-                                                rho_abs=rho if m == "2fsk" else 0.0))
+            req = float(
+                theory.required_ebn0_db(
+                    profile.required_ber, m, rho_abs=rho if m == "2fsk" else 0.0
+                )
+            )
         except IqstatError:
             req = None
         if req is not None and mean_db is not None:
@@ -571,14 +649,31 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
     else:
         message = f"{len(ok)} of {len(results)} burst(s) measured"
     return Summary(
-        bursts=len(results), bursts_measured=len(ok), symbols=symbols, ebn0_db=mean_db,
-        ebn0_db_ci95=ci, ebn0_db_min=lo, ebn0_db_max=hi, ebn0_db_std=std, esn0_db=esn0_db,
-        ebn0_db_da=_mean_db(da, None), ebn0_db_dd=_mean_db(dd, None),
-        available_ebn0_db=avail, detection_loss_db=loss, predicted_ber=pred,
-        measured_ber=meas, measured_ber_ci95=ci_meas, bit_errors=errors, bits_checked=n_bits,
-        bursts_checked=len(checked), required_ber=profile.required_ber,
-        required_ebn0_db=req, margin_db=marg, worst_burst_margin_db=worst,
-        flags=tuple(dict.fromkeys(flags)), message=message,
+        bursts=len(results),
+        bursts_measured=len(ok),
+        symbols=symbols,
+        ebn0_db=mean_db,
+        ebn0_db_ci95=ci,
+        ebn0_db_min=lo,
+        ebn0_db_max=hi,
+        ebn0_db_std=std,
+        esn0_db=esn0_db,
+        ebn0_db_da=_mean_db(da, None),
+        ebn0_db_dd=_mean_db(dd, None),
+        available_ebn0_db=avail,
+        detection_loss_db=loss,
+        predicted_ber=pred,
+        measured_ber=meas,
+        measured_ber_ci95=ci_meas,
+        bit_errors=errors,
+        bits_checked=n_bits,
+        bursts_checked=len(checked),
+        required_ber=profile.required_ber,
+        required_ebn0_db=req,
+        margin_db=marg,
+        worst_burst_margin_db=worst,
+        flags=tuple(dict.fromkeys(flags)),
+        message=message,
     )
 
 
@@ -592,8 +687,7 @@ def _mean_db(values_db, weights) -> float | None:
 
 def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]:
     """Blind estimate on the longest burst, compared with the rates the profile gives."""
-    if not detection.bursts or (profile.symbol_rate_hz is None
-                                and profile.tone_spacing_hz is None):
+    if not detection.bursts or (profile.symbol_rate_hz is None and profile.tone_spacing_hz is None):
         return ()
     longest = max(detection.bursts, key=lambda b: b.n_samples)
     _, x = _read_burst(capture, longest, margin)
@@ -606,8 +700,10 @@ def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]
         abs(blind.symbol_rate_hz / profile.symbol_rate_hz - 1) > RATE_MISMATCH_FRACTION
     ):
         flags.append("symbol-rate-mismatch")
-    if profile.tone_spacing_hz is not None and blind.tone_spacing_hz is not None and (
-        abs(blind.tone_spacing_hz / profile.tone_spacing_hz - 1) > SPACING_MISMATCH_FRACTION
+    if (
+        profile.tone_spacing_hz is not None
+        and blind.tone_spacing_hz is not None
+        and (abs(blind.tone_spacing_hz / profile.tone_spacing_hz - 1) > SPACING_MISMATCH_FRACTION)
     ):
         flags.append("tone-spacing-mismatch")
     return tuple(flags)
@@ -637,8 +733,7 @@ def measure_capture(
     """
     if not capture.is_complex:
         raise MeasurementError(
-            "this recording is real-valued; Eb/N0 measurement needs complex baseband (I/Q) "
-            "samples"
+            "this recording is real-valued; Eb/N0 measurement needs complex baseband (I/Q) samples"
         )
     facts = compute_facts(capture) if facts is None else facts
     if detection is None:
@@ -661,12 +756,22 @@ def measure_capture(
     good_links = [e for e in links if e is not None]
     rho = None
     if good_links and profile.modulation != "ook":
-        rho = float(abs(theory.tone_correlation(good_links[0].tone_spacing_hz,
-                                                1.0 / good_links[0].symbol_rate_hz)))
+        rho = float(
+            abs(
+                theory.tone_correlation(
+                    good_links[0].tone_spacing_hz, 1.0 / good_links[0].symbol_rate_hz
+                )
+            )
+        )
     link_sum = _link_summary(profile, good_links, rho)
     summary = _summarise(results, profile, link_sum, facts, detection)
     if mismatch:
-        summary = dataclasses.replace(summary, flags=tuple(dict.fromkeys(summary.flags
-                                                                         + mismatch)))
-    return MeasurementReport(facts=facts, profile=profile, link=link_sum, detection=detection,
-                             bursts=tuple(results), summary=summary)
+        summary = dataclasses.replace(summary, flags=tuple(dict.fromkeys(summary.flags + mismatch)))
+    return MeasurementReport(
+        facts=facts,
+        profile=profile,
+        link=link_sum,
+        detection=detection,
+        bursts=tuple(results),
+        summary=summary,
+    )

@@ -53,7 +53,9 @@ def db(x):
 
 def undb(x_db):
     """Decibels to a linear power ratio, 10**(x/10)."""
-    return 10.0 ** (np.asarray(x_db, dtype=float) / 10.0) if np.ndim(x_db) else 10.0 ** (x_db / 10.0)
+    if np.ndim(x_db):
+        return 10.0 ** (np.asarray(x_db, dtype=float) / 10.0)
+    return 10.0 ** (x_db / 10.0)
 
 
 def esn0_to_ebn0(esn0, bits_per_symbol: float):

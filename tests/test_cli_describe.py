@@ -20,8 +20,11 @@ runner = CliRunner()
 
 
 def _meta(tmp_path, name="rec", **global_fields):
-    g = {"core:datatype": "ci16_le", "core:version": sigmf.__specification__,
-         "core:sample_rate": 250000.0}
+    g = {
+        "core:datatype": "ci16_le",
+        "core:version": sigmf.__specification__,
+        "core:sample_rate": 250000.0,
+    }
     g.update(global_fields)
     g = {k: v for k, v in g.items() if v is not None}
     meta = {"global": g, "captures": [{"core:sample_start": 0}], "annotations": []}
@@ -134,8 +137,20 @@ def test_raw_without_parameters_says_what_to_give(tmp_path):
 def test_rates_with_units(tmp_path):
     p = tmp_path / "site7.cu8"
     p.write_bytes(b"\x80" * 2000)
-    r = runner.invoke(app, ["describe", str(p), "--datatype", "cu8", "--sample-rate", "2.4M",
-                            "--center-frequency", "869.5MHz", "--json"])
+    r = runner.invoke(
+        app,
+        [
+            "describe",
+            str(p),
+            "--datatype",
+            "cu8",
+            "--sample-rate",
+            "2.4M",
+            "--center-frequency",
+            "869.5MHz",
+            "--json",
+        ],
+    )
     d = json.loads(r.stdout)
     assert d["sample_rate_hz"] == 2.4e6 and d["center_frequency_hz"] == 869.5e6
 
@@ -175,8 +190,18 @@ def test_nan_inf_counted_not_crashed(tmp_path):
     x[21] = np.inf
     x[4001] = -np.inf
     x.tofile(tmp_path / "f.cf32")
-    r = runner.invoke(app, ["describe", str(tmp_path / "f.cf32"), "--datatype", "cf32_le",
-                            "--sample-rate", "250k", "--json"])
+    r = runner.invoke(
+        app,
+        [
+            "describe",
+            str(tmp_path / "f.cf32"),
+            "--datatype",
+            "cf32_le",
+            "--sample-rate",
+            "250k",
+            "--json",
+        ],
+    )
     assert r.exit_code == 0, r.stderr
     assert json.loads(r.stdout)["nonfinite_samples"] == 3
 

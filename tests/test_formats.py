@@ -56,7 +56,7 @@ def _write_with_sigmf(
 
 @pytest.mark.parametrize("dt_name", ALL_DATATYPES)
 def test_every_datatype_matches_the_sigmf_reader(tmp_path, rng, dt_name):
-    """SigMF spec v1.2.6 'Dataset Format': all 28 datatypes, read as the sigmf library reads them."""
+    """SigMF spec v1.2.6 'Dataset Format': all 28 datatypes, as the sigmf library reads them."""
     stored = _stored(dt_name, 3000, rng)
     meta = _write_with_sigmf(tmp_path, "rec", dt_name, stored)
     ref = sigmf.fromfile(str(meta), skip_checksum=False, autoscale=True).read_samples()

@@ -33,12 +33,20 @@ def _doc(modulation="2fsk", ebn0=12.0, count=4, spacing=4800.0, payload_bits=400
         link["tone_spacing"] = spacing
     d = {
         "link": link,
-        "frame": {"preamble": "aaaaaaaa", "sync_word": "2dd4", "payload": "pn9",
-                  "payload_bits": payload_bits},
+        "frame": {
+            "preamble": "aaaaaaaa",
+            "sync_word": "2dd4",
+            "payload": "pn9",
+            "payload_bits": payload_bits,
+        },
         "requirement": {"ber": 1e-4},
         "capture": {"sample_rate": FS, "datatype": "cf32_le", "seed": 11},
-        "bursts": {"count": count, "ebn0_db": ebn0, "cfo_hz": {"uniform": [-3000.0, 3000.0]},
-                   "gap_s": 0.01},
+        "bursts": {
+            "count": count,
+            "ebn0_db": ebn0,
+            "cfo_hz": {"uniform": [-3000.0, 3000.0]},
+            "gap_s": 0.01,
+        },
         "impairments": {"clock_offset_ppm": 20.0, **imp},
     }
     return d
@@ -56,8 +64,11 @@ def _match(report, truth):
     """Pair each true burst with the measured burst overlapping it most."""
     pairs = []
     for t in truth.bursts:
-        best = max(report.bursts, default=None, key=lambda b: min(b.stop_sample, t.stop_sample)
-                   - max(b.start_sample, t.start_sample))
+        best = max(
+            report.bursts,
+            default=None,
+            key=lambda b: min(b.stop_sample, t.stop_sample) - max(b.start_sample, t.start_sample),
+        )
         pairs.append((t, best))
     return pairs
 
@@ -98,8 +109,9 @@ def test_measured_ber_is_consistent_with_theory_at_low_ebn0():
 def test_all_noise_capture_is_a_valid_result():
     rng = np.random.default_rng(5)
     x = (rng.standard_normal(200_000) + 1j * rng.standard_normal(200_000)) * 0.05
-    profile = profile_from_dict({"link": {"modulation": "2fsk", "symbol_rate": RS,
-                                          "tone_spacing": RS}})
+    profile = profile_from_dict(
+        {"link": {"modulation": "2fsk", "symbol_rate": RS, "tone_spacing": RS}}
+    )
     report = measure_capture(Capture.from_array(x, FS), profile)
     assert report.bursts == ()
     assert "no-bursts" in report.summary.flags
@@ -126,15 +138,16 @@ def test_json_report_has_the_documented_keys(tmp_path):
 
     doc = _doc("2fsk", 10.0, count=2)
     syn = synthesize(scenario_from_dict(doc), seed=3)
-    meta, _ = write_recording(tmp_path / "site", syn.samples, datatype="ci16_le",
-                              sample_rate_hz=FS)
+    meta, _ = write_recording(tmp_path / "site", syn.samples, datatype="ci16_le", sample_rate_hz=FS)
     (tmp_path / "link.toml").write_text(
         '[link]\nmodulation = "2fsk"\nsymbol_rate = 4800\ntone_spacing = 4800\n'
         '[frame]\npreamble = "aaaaaaaa"\nsync_word = "2dd4"\npayload = "pn9"\n'
-        'payload_bits = 400\n[requirement]\nber = 1e-4\n')
+        "payload_bits = 400\n[requirement]\nber = 1e-4\n"
+    )
     out = tmp_path / "r.json"
-    r = CliRunner().invoke(app, ["measure", str(meta), "--profile", str(tmp_path / "link.toml"),
-                                 "--json", str(out)])
+    r = CliRunner().invoke(
+        app, ["measure", str(meta), "--profile", str(tmp_path / "link.toml"), "--json", str(out)]
+    )
     assert r.exit_code == 0, r.stderr
     assert "margin" in r.stdout
     d = json.loads(out.read_text())
@@ -144,17 +157,37 @@ def test_json_report_has_the_documented_keys(tmp_path):
     for k in ("modulation", "symbol_rate_hz", "tone_spacing_hz"):
         assert k in d["link"]
     for b in d["bursts"]:
-        for k in ("start_sample", "stop_sample", "symbols", "cfo_hz", "ebn0_db", "bit_errors",
-                  "bits_checked"):
+        for k in (
+            "start_sample",
+            "stop_sample",
+            "symbols",
+            "cfo_hz",
+            "ebn0_db",
+            "bit_errors",
+            "bits_checked",
+        ):
             assert k in b
-    for k in ("bursts", "symbols", "ebn0_db", "ebn0_db_ci95", "esn0_db", "predicted_ber",
-              "measured_ber", "measured_ber_ci95", "bit_errors", "bits_checked",
-              "required_ebn0_db", "margin_db", "flags"):
+    for k in (
+        "bursts",
+        "symbols",
+        "ebn0_db",
+        "ebn0_db_ci95",
+        "esn0_db",
+        "predicted_ber",
+        "measured_ber",
+        "measured_ber_ci95",
+        "bit_errors",
+        "bits_checked",
+        "required_ebn0_db",
+        "margin_db",
+        "flags",
+    ):
         assert k in d["summary"], k
     lo, hi = d["summary"]["ebn0_db_ci95"]
     assert lo < d["summary"]["ebn0_db"] < hi
-    assert math.isclose(d["summary"]["margin_db"],
-                        d["summary"]["ebn0_db"] - d["summary"]["required_ebn0_db"])
+    assert math.isclose(
+        d["summary"]["margin_db"], d["summary"]["ebn0_db"] - d["summary"]["required_ebn0_db"]
+    )
     assert "NaN" not in out.read_text()
 
 
@@ -163,13 +196,24 @@ def test_measure_cli_bad_inputs(tmp_path):
     (tmp_path / "p.toml").write_text('[link]\nmodulaton = "2fsk"\n')
     x = np.zeros(1000, dtype="<i2")
     x.tofile(tmp_path / "r.sigmf-data")
-    (tmp_path / "r.sigmf-meta").write_text(json.dumps({
-        "global": {"core:datatype": "ri16_le", "core:version": "1.2.0",
-                   "core:sample_rate": 250000.0},
-        "captures": [], "annotations": []}))
+    (tmp_path / "r.sigmf-meta").write_text(
+        json.dumps(
+            {
+                "global": {
+                    "core:datatype": "ri16_le",
+                    "core:version": "1.2.0",
+                    "core:sample_rate": 250000.0,
+                },
+                "captures": [],
+                "annotations": [],
+            }
+        )
+    )
     for args, match in [
-        (["measure", str(tmp_path / "r.sigmf-meta"), "--profile", str(tmp_path / "p.toml")],
-         "did you mean"),
+        (
+            ["measure", str(tmp_path / "r.sigmf-meta"), "--profile", str(tmp_path / "p.toml")],
+            "did you mean",
+        ),
         (["measure", str(tmp_path / "r.sigmf-meta"), "--modulation", "2fsk"], "complex"),
         (["measure", str(tmp_path / "r.sigmf-meta")], "--modulation"),
         (["measure", str(tmp_path / "r.sigmf-meta"), "--modulation", "fsk2"], "did you mean"),

@@ -97,9 +97,11 @@ def _read_text(p: Path) -> str:
     try:
         return p.read_text(encoding="utf-8")
     except UnicodeDecodeError as exc:
-        raise CaptureError(f"metadata {p} is not UTF-8 text ({exc.reason} at byte {exc.start})")
+        raise CaptureError(
+            f"metadata {p} is not UTF-8 text ({exc.reason} at byte {exc.start})"
+        ) from None
     except OSError as exc:
-        raise CaptureError(f"cannot read {p}: {exc.strerror}")
+        raise CaptureError(f"cannot read {p}: {exc.strerror}") from None
 
 
 def parse_metadata(text: str, label: str) -> dict:
@@ -108,8 +110,9 @@ def parse_metadata(text: str, label: str) -> dict:
         meta = json.loads(text)
     except json.JSONDecodeError as exc:
         raise CaptureError(
-            f"metadata {label} is not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}"
-        )
+            f"metadata {label} is not valid JSON: {exc.msg} at line {exc.lineno}, "
+            f"column {exc.colno}"
+        ) from None
     if not isinstance(meta, dict) or not isinstance(meta.get("global"), dict):
         raise CaptureError(
             f"metadata {label} is JSON but not SigMF: it needs a 'global' object "
@@ -129,7 +132,9 @@ def parse_metadata(text: str, label: str) -> dict:
         except jsonschema.exceptions.ValidationError as exc:
             where = "/".join(str(p) for p in exc.absolute_path) or "top level"
             first = str(exc.message).splitlines()[0][:160]
-            raise CaptureError(f"metadata {label} fails SigMF validation at {where}: {first}")
+            raise CaptureError(
+                f"metadata {label} fails SigMF validation at {where}: {first}"
+            ) from None
     return meta
 
 
@@ -162,13 +167,14 @@ def _archive_member(path: Path, recording: str | None) -> tuple[str, str, _DataS
     try:
         tar = tarfile.open(path, mode="r:")
     except (tarfile.TarError, OSError) as exc:
-        raise CaptureError(f"{path} is not a readable SigMF archive (tar): {exc}")
+        raise CaptureError(f"{path} is not a readable SigMF archive (tar): {exc}") from None
     with tar:
         members = tar.getmembers()
         bad = [m.name for m in members if not _safe_member_name(m.name)]
         if bad:
             raise CaptureError(
-                f"archive {path} has unsafe member path {bad[0]!r} (absolute or with '..'); refusing it"
+                f"archive {path} has unsafe member path {bad[0]!r} (absolute or with '..'); "
+                "refusing it"
             )
         metas = {
             PurePosixPath(m.name).name[: -len(META_EXT)]: m
@@ -186,14 +192,17 @@ def _archive_member(path: Path, recording: str | None) -> tuple[str, str, _DataS
             recording = next(iter(metas))
         if recording not in metas:
             raise CaptureError(
-                f"archive {path} has no recording {recording!r}; it holds {', '.join(sorted(metas))}"
+                f"archive {path} has no recording {recording!r}; "
+                f"it holds {', '.join(sorted(metas))}"
             )
         meta_member = metas[recording]
         f = tar.extractfile(meta_member)
         try:
             meta_text = f.read().decode("utf-8")
         except UnicodeDecodeError:
-            raise CaptureError(f"metadata {recording}{META_EXT} in {path} is not UTF-8 text")
+            raise CaptureError(
+                f"metadata {recording}{META_EXT} in {path} is not UTF-8 text"
+            ) from None
         meta_dir = PurePosixPath(meta_member.name).parent
         try:
             glob = json.loads(meta_text).get("global", {})

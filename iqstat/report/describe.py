@@ -31,8 +31,11 @@ def render_facts(facts: CaptureFacts, console: Console) -> None:
     t.add_column("fact", style="bold")
     t.add_column("value")
     rows = [
-        ("datatype", f"{facts.datatype}" + ("" if facts.is_complex else "  (REAL: iqstat "
-                                             "measures complex baseband only)")),
+        (
+            "datatype",
+            f"{facts.datatype}"
+            + ("" if facts.is_complex else "  (REAL: iqstat measures complex baseband only)"),
+        ),
         ("channel", f"{facts.channel + 1} of {facts.num_channels}"),
         ("sample rate", _hz(facts.sample_rate_hz).replace("Hz", "S/s")),
         ("centre frequency", _hz(facts.center_frequency_hz)),
@@ -43,16 +46,33 @@ def render_facts(facts: CaptureFacts, console: Console) -> None:
         ("mean power", _fmt(facts.mean_power_dbfs, "dBFS")),
         ("peak power", _fmt(facts.peak_power_dbfs, "dBFS")),
         ("crest factor", _fmt(facts.crest_factor_db, "dB")),
-        ("noise floor", _fmt(facts.noise_floor_dbfs, "dBFS")
-         + (f"  ({facts.noise_psd_dbfs_per_hz:.1f} dBFS/Hz)" if facts.noise_psd_dbfs_per_hz
-            is not None else "")),
-        ("samples near full scale", "— (float data)" if facts.clipped_fraction is None
-         else f"{100 * facts.clipped_fraction:.4f} %"),
-        ("DC offset", f"I {facts.dc_offset_i:+.5f}, Q {facts.dc_offset_q:+.5f}  "
-         f"({_fmt(facts.dc_offset_dbfs, 'dBFS')})"),
-        ("occupied bandwidth", "— (nothing above the floor)" if facts.occupied_bandwidth_hz is None
-         else f"{_hz(facts.occupied_bandwidth_hz)} around {_hz(facts.occupied_center_hz)}"
-         " from centre"),
+        (
+            "noise floor",
+            _fmt(facts.noise_floor_dbfs, "dBFS")
+            + (
+                f"  ({facts.noise_psd_dbfs_per_hz:.1f} dBFS/Hz)"
+                if facts.noise_psd_dbfs_per_hz is not None
+                else ""
+            ),
+        ),
+        (
+            "samples near full scale",
+            "— (float data)"
+            if facts.clipped_fraction is None
+            else f"{100 * facts.clipped_fraction:.4f} %",
+        ),
+        (
+            "DC offset",
+            f"I {facts.dc_offset_i:+.5f}, Q {facts.dc_offset_q:+.5f}  "
+            f"({_fmt(facts.dc_offset_dbfs, 'dBFS')})",
+        ),
+        (
+            "occupied bandwidth",
+            "— (nothing above the floor)"
+            if facts.occupied_bandwidth_hz is None
+            else f"{_hz(facts.occupied_bandwidth_hz)} around {_hz(facts.occupied_center_hz)}"
+            " from centre",
+        ),
     ]
     if facts.nonfinite_samples:
         rows.append(("non-finite samples", f"{facts.nonfinite_samples:,} (read as 0)"))

@@ -105,21 +105,24 @@ def _hz(v) -> str:
 
 def render_report(report: MeasurementReport, console: Console, *, max_bursts: int = 40) -> None:
     """Print the capture facts, link, per-burst table and headline."""
-    f, s, link = report.facts, report.summary, report.link
+    f, link = report.facts, report.link
     console.print(Text(f"iqstat {__version__} · {f.name}", style="bold"))
     console.print(
         f"  {f.samples:,} samples of {f.datatype} at {f.sample_rate_hz / 1e3:g} kS/s "
         f"({f.duration_s:.3f} s); noise floor {_db(report.detection.noise_floor_dbfs, 1, ' dBFS')}"
         f", peak {_db(f.peak_power_dbfs, 1, ' dBFS')}",
-        markup=False, highlight=False,
+        markup=False,
+        highlight=False,
     )
     src = {"profile": "given", "estimated": "estimated", "n/a": "", "unknown": "unknown"}
     parts = [link.modulation]
     if link.symbol_rate_hz is not None:
         parts.append(f"{link.symbol_rate_hz:.2f} Bd ({src[link.symbol_rate_source]})")
     if link.tone_spacing_hz is not None:
-        parts.append(f"tone spacing {link.tone_spacing_hz:.1f} Hz "
-                     f"({src[link.tone_spacing_source]}), h = {link.modulation_index:.3f}")
+        parts.append(
+            f"tone spacing {link.tone_spacing_hz:.1f} Hz "
+            f"({src[link.tone_spacing_source]}), h = {link.modulation_index:.3f}"
+        )
     if link.tone_correlation:
         parts.append(f"|ρ| = {link.tone_correlation:.3f}")
     console.print("  link: " + ", ".join(parts), markup=False, highlight=False)
@@ -130,10 +133,19 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
 
 def _burst_table(bursts: tuple[BurstResult, ...], max_rows: int) -> Table:
     t = Table(title="Bursts", title_justify="left", show_lines=False, pad_edge=False)
-    for col, just in [("#", "right"), ("start", "right"), ("symbols", "right"),
-                      ("CFO", "right"), ("clock", "right"), ("Eb/N0", "right"),
-                      ("95 % CI", "right"), ("power-based", "right"), ("BER pred.", "right"),
-                      ("errors/bits", "right"), ("flags", "left")]:
+    for col, just in [
+        ("#", "right"),
+        ("start", "right"),
+        ("symbols", "right"),
+        ("CFO", "right"),
+        ("clock", "right"),
+        ("Eb/N0", "right"),
+        ("95 % CI", "right"),
+        ("power-based", "right"),
+        ("BER pred.", "right"),
+        ("errors/bits", "right"),
+        ("flags", "left"),
+    ]:
         t.add_column(col, justify=just, no_wrap=col != "flags")
     shown = bursts if len(bursts) <= max_rows else bursts[:max_rows]
     for b in shown:
@@ -142,10 +154,17 @@ def _burst_table(bursts: tuple[BurstResult, ...], max_rows: int) -> Table:
         bc = b.bit_check
         errs = f"{bc.bit_errors}/{bc.bits_checked}" if bc is not None and bc.locked else "—"
         t.add_row(
-            str(b.index), f"{b.start_sample:,}", str(b.symbols), _hz(b.cfo_hz),
+            str(b.index),
+            f"{b.start_sample:,}",
+            str(b.symbols),
+            _hz(b.cfo_hz),
             "—" if b.timing is None else f"{b.timing.clock_offset_ppm:+.1f} ppm",
-            _db(b.ebn0_db), "—" if ci is None else f"{ci[0]:.1f} … {ci[1]:.1f}",
-            _db(b.available_ebn0_db), _ber(b.predicted_ber), errs, ", ".join(b.flags),
+            _db(b.ebn0_db),
+            "—" if ci is None else f"{ci[0]:.1f} … {ci[1]:.1f}",
+            _db(b.available_ebn0_db),
+            _ber(b.predicted_ber),
+            errs,
+            ", ".join(b.flags),
         )
     if len(bursts) > max_rows:
         t.caption = f"{len(bursts) - max_rows} more bursts in the JSON report"
@@ -154,36 +173,58 @@ def _burst_table(bursts: tuple[BurstResult, ...], max_rows: int) -> Table:
 
 def _headline(report: MeasurementReport, console: Console) -> None:
     s = report.summary
-    t = Table(show_header=False, title="Capture result", title_justify="left", box=None,
-              pad_edge=False)
+    t = Table(
+        show_header=False, title="Capture result", title_justify="left", box=None, pad_edge=False
+    )
     t.add_column("what", style="bold")
     t.add_column("value")
     t.add_row("bursts measured", f"{s.bursts_measured} of {s.bursts} ({s.symbols:,} symbols)")
-    t.add_row("Eb/N0 at the correlators",
-              _db(s.ebn0_db, 2) + _ci(s.ebn0_db_ci95, lambda v: f"{v:.2f}")
-              + (f"   spread {s.ebn0_db_min:.1f} … {s.ebn0_db_max:.1f} dB"
-                 if s.ebn0_db_min is not None and s.bursts_measured > 1 else ""))
+    t.add_row(
+        "Eb/N0 at the correlators",
+        _db(s.ebn0_db, 2)
+        + _ci(s.ebn0_db_ci95, lambda v: f"{v:.2f}")
+        + (
+            f"   spread {s.ebn0_db_min:.1f} … {s.ebn0_db_max:.1f} dB"
+            if s.ebn0_db_min is not None and s.bursts_measured > 1
+            else ""
+        ),
+    )
     t.add_row("Es/N0", _db(s.esn0_db, 2))
     if s.available_ebn0_db is not None:
-        t.add_row("Eb/N0 from power", _db(s.available_ebn0_db, 2)
-                  + f"   (detection loss {_db(s.detection_loss_db, 2)})")
+        t.add_row(
+            "Eb/N0 from power",
+            _db(s.available_ebn0_db, 2) + f"   (detection loss {_db(s.detection_loss_db, 2)})",
+        )
     if s.ebn0_db_dd is not None:
-        t.add_row("decision-directed Eb/N0", _db(s.ebn0_db_dd, 2)
-                  + "   (for comparison; biased high at low Eb/N0)")
+        t.add_row(
+            "decision-directed Eb/N0",
+            _db(s.ebn0_db_dd, 2) + "   (for comparison; biased high at low Eb/N0)",
+        )
     t.add_row("predicted BER", _ber(s.predicted_ber))
     if s.bits_checked:
-        t.add_row("measured BER", f"{_ber(s.measured_ber)}{_ci(s.measured_ber_ci95, _ber)}"
-                  f"   ({s.bit_errors} errors in {s.bits_checked:,} known bits, "
-                  f"{s.bursts_checked} bursts)")
+        t.add_row(
+            "measured BER",
+            f"{_ber(s.measured_ber)}{_ci(s.measured_ber_ci95, _ber)}"
+            f"   ({s.bit_errors} errors in {s.bits_checked:,} known bits, "
+            f"{s.bursts_checked} bursts)",
+        )
     else:
         t.add_row("measured BER", "— (no known bits checked)")
     if s.required_ber is not None:
         t.add_row("required", f"BER {s.required_ber:.0e} → Eb/N0 {_db(s.required_ebn0_db, 2)}")
         style = "green" if s.margin_db is not None and s.margin_db >= 0 else "red"
-        t.add_row("margin", Text(_db(s.margin_db, 2) + (
-            f"   (weakest burst {_db(s.worst_burst_margin_db, 2)})"
-            if s.worst_burst_margin_db is not None and s.bursts_measured > 1 else ""),
-            style=style))
+        t.add_row(
+            "margin",
+            Text(
+                _db(s.margin_db, 2)
+                + (
+                    f"   (weakest burst {_db(s.worst_burst_margin_db, 2)})"
+                    if s.worst_burst_margin_db is not None and s.bursts_measured > 1
+                    else ""
+                ),
+                style=style,
+            ),
+        )
     console.print(t)
     if s.flags:
         console.print(Text("flags:", style="bold yellow"))

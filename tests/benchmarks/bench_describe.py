@@ -50,8 +50,14 @@ def main() -> None:
         while f.read(1 << 26):
             pass
     env = dict(os.environ, OMP_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1", MKL_NUM_THREADS="1")
-    cmd = [sys.executable, "-m", "iqstat.cli", "describe", str(data.with_suffix(".sigmf-meta")),
-           "--json"]
+    cmd = [
+        sys.executable,
+        "-m",
+        "iqstat.cli",
+        "describe",
+        str(data.with_suffix(".sigmf-meta")),
+        "--json",
+    ]
     t0 = time.perf_counter()
     subprocess.run(["taskset", "-c", "0", *cmd], check=True, env=env, stdout=subprocess.DEVNULL)
     t_cmd = time.perf_counter() - t0

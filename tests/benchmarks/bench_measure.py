@@ -23,8 +23,6 @@ import sys
 import time
 from pathlib import Path
 
-import numpy as np
-
 SCENARIO = """
 [link]
 modulation = "2fsk"
@@ -75,14 +73,30 @@ def make(dirpath: Path, name: str, n_samples: float) -> Path:
     count = max(1, int(n_samples / 39_300))
     sc = dirpath / f"{name}.toml"
     sc.write_text(SCENARIO.format(count=count))
-    subprocess.run([sys.executable, "-m", "iqstat.cli", "synth", str(sc), "--out", str(dirpath)],
-                   check=True, env=ENV, stdout=subprocess.DEVNULL)
+    subprocess.run(
+        [sys.executable, "-m", "iqstat.cli", "synth", str(sc), "--out", str(dirpath)],
+        check=True,
+        env=ENV,
+        stdout=subprocess.DEVNULL,
+    )
     return meta
 
 
 def run_measure(meta: Path, profile: Path) -> float:
-    cmd = ["taskset", "-c", "0", sys.executable, "-m", "iqstat.cli", "measure", str(meta),
-           "--profile", str(profile), "--json", os.devnull]
+    cmd = [
+        "taskset",
+        "-c",
+        "0",
+        sys.executable,
+        "-m",
+        "iqstat.cli",
+        "measure",
+        str(meta),
+        "--profile",
+        str(profile),
+        "--json",
+        os.devnull,
+    ]
     t0 = time.perf_counter()
     subprocess.run(cmd, check=True, env=ENV, stdout=subprocess.DEVNULL)
     return time.perf_counter() - t0
@@ -103,8 +117,13 @@ def bare_pass(meta: Path) -> float:
         "    s += float(np.abs(b.view(np.complex64)).__pow__(2).sum())\n"
         "print(time.perf_counter() - t0)\n"
     )
-    out = subprocess.run(["taskset", "-c", "0", sys.executable, "-c", code], check=True,
-                         env=ENV, capture_output=True, text=True)
+    out = subprocess.run(
+        ["taskset", "-c", "0", sys.executable, "-c", code],
+        check=True,
+        env=ENV,
+        capture_output=True,
+        text=True,
+    )
     return float(out.stdout.strip())
 
 
@@ -134,31 +153,55 @@ def main() -> None:
     b10 = min(bare_pass(small) for _ in range(args.repeats))
     b40 = min(bare_pass(large) for _ in range(args.repeats))
     t0 = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "iqstat.cli", "--version"], check=True, env=ENV,
-                   stdout=subprocess.DEVNULL)
+    subprocess.run(
+        [sys.executable, "-m", "iqstat.cli", "--version"],
+        check=True,
+        env=ENV,
+        stdout=subprocess.DEVNULL,
+    )
     t_start = time.perf_counter() - t0
     rss_small = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     marg = (n40 - n10) / (t40 - t10)
     marg_bare = (n40 - n10) / (b40 - b10)
     print(f"captures: {n10:,} and {n40:,} samples (ci16_le, 250 kS/s, 2-FSK bursts + gaps)")
     print(f"iqstat measure: {t10:.2f} s and {t40:.2f} s (one core, best of {args.repeats})")
-    print(f"marginal throughput: {marg / 1e6:.1f} M samples/s "
-          f"({marg / 250e3:.0f}x real time at 250 kS/s)")
-    print(f"bare numpy read + |x|^2: {b10:.3f} s and {b40:.3f} s -> marginal "
-          f"{marg_bare / 1e6:.1f} M samples/s")
+    print(
+        f"marginal throughput: {marg / 1e6:.1f} M samples/s "
+        f"({marg / 250e3:.0f}x real time at 250 kS/s)"
+    )
+    print(
+        f"bare numpy read + |x|^2: {b10:.3f} s and {b40:.3f} s -> marginal "
+        f"{marg_bare / 1e6:.1f} M samples/s"
+    )
     print(f"marginal time ratio measure/bare: {(t40 - t10) / (b40 - b10):.2f}")
     print(f"start-up (iqstat --version): {t_start:.2f} s")
     print(f"peak RSS (10 M / 40 M runs): {rss_small:.0f} MB")
     if args.big_gigabytes > 0:
         big = make(d, "big", args.big_gigabytes * 1e9 / 4)
         warm(big)
-        cmd = ["/usr/bin/time", "-f", "%M %e", "taskset", "-c", "0", sys.executable, "-m",
-               "iqstat.cli", "measure", str(big), "--profile", str(profile), "--json", os.devnull]
+        cmd = [
+            "/usr/bin/time",
+            "-f",
+            "%M %e",
+            "taskset",
+            "-c",
+            "0",
+            sys.executable,
+            "-m",
+            "iqstat.cli",
+            "measure",
+            str(big),
+            "--profile",
+            str(profile),
+            "--json",
+            os.devnull,
+        ]
         out = subprocess.run(cmd, env=ENV, capture_output=True, text=True, check=True)
         kb, secs = out.stderr.strip().splitlines()[-1].split()
         n_big = big.with_suffix(".sigmf-data").stat().st_size // 4
-        print(f"big capture: {n_big:,} samples, {float(secs):.1f} s, peak RSS "
-              f"{int(kb) / 1024:.0f} MB")
+        print(
+            f"big capture: {n_big:,} samples, {float(secs):.1f} s, peak RSS {int(kb) / 1024:.0f} MB"
+        )
 
 
 if __name__ == "__main__":
