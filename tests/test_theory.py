@@ -212,6 +212,59 @@ def test_marcum_q_order_recurrence(m):
     assert th.marcum_q(0.0, 2.0, m) == pytest.approx(stats.chi2.sf(4.0, 2 * m), rel=1e-14)
 
 
+def test_marcum_q_large_amplitude(ref):
+    """Large a, up to where scipy's ncx2 stops converging: vs mpmath quadrature of the Rician pdf
+    [computed], both Q1 and 1 − Q1 to full relative precision."""
+    for row in ref["marcum_q1_large"]:
+        a, b = row["a"], row["b"]
+        assert th.marcum_q(a, b) == pytest.approx(f(row["q"]), rel=1e-12)
+        q, qc = th._marcum_q1_pair(np.array([a]), np.array([b]))
+        assert qc[0] == pytest.approx(f(row["q_complement"]), rel=1e-12)
+        # order 2 by the recurrence, against order 1 plus the Bessel step [from memory]
+        step = (b / a) * np.exp(-0.5 * (a - b) ** 2) * special.i1e(a * b)
+        assert th.marcum_q(a, b, 2) == pytest.approx(q[0] + step, rel=1e-12)
+
+
+def test_marcum_q_agrees_with_scipy_where_scipy_is_reliable():
+    """Reference library: scipy.stats.ncx2 (Boost), METHODS §2 'scipy within 2e-15' of mpmath,
+    on a grid with a <= 30 where its values exceed 1e-50 (below that its lower tail drifts:
+    3.7 % off at 1 − Q1(16.94, 0.81) = 1.59e-59 against mpmath; there iqstat matches mpmath)."""
+    a = np.linspace(0.05, 30.0, 40)[:, None]
+    b = np.linspace(0.05, 45.0, 60)[None, :]
+    ref_q = stats.ncx2.sf(b**2, 2, a**2)
+    ref_qc = stats.ncx2.cdf(b**2, 2, a**2)
+    q, qc = th._marcum_q1_pair(a, b)
+    ok = ref_q > 1e-50
+    np.testing.assert_allclose(q[ok], ref_q[ok], rtol=1e-12)
+    ok = ref_qc > 1e-50
+    np.testing.assert_allclose(qc[ok], ref_qc[ok], rtol=1e-12)
+    for m in (2, 3):
+        ref_m = stats.ncx2.sf(b**2, 2 * m, a**2)
+        ok = ref_m > 1e-50
+        np.testing.assert_allclose(th.marcum_q(a, b, m)[ok], ref_m[ok], rtol=1e-12)
+
+
+def test_marcum_q_deep_tails(ref):
+    # mpmath Poisson-mixture series [computed]; these are the tails scipy gets wrong
+    for row in ref["marcum_q1_deep"]:
+        q, qc = th._marcum_q1_pair(np.array([row["a"]]), np.array([row["b"]]))
+        assert q[0] == pytest.approx(f(row["q"]), rel=1e-12)
+        assert qc[0] == pytest.approx(f(row["q_complement"]), rel=1e-12)
+
+
+def test_marcum_q_edges_where_boost_fails():
+    # tiny non-centrality: the central law (Boost's ncx2 overflows for a² ~ 1e-34)
+    assert th.marcum_q(1e-17, 3.0) == pytest.approx(np.exp(-4.5), rel=1e-15)
+    # tiny threshold with a > 3: 1 − Q1 ≈ e^{−a²/2}·b²/2·(1 + b²(a²/4 − ½)/2) (Taylor series of
+    # the Rician cdf [derived]), where Boost raises OverflowError
+    a, b = 10.0, 1e-6
+    q, qc = th._marcum_q1_pair(np.array([a]), np.array([b]))
+    assert qc[0] == pytest.approx(np.exp(-50.0) * b**2 / 2 * (1 + b**2 * 12.0), rel=1e-12)
+    assert q[0] == 1.0
+    # order m > 1 with b << a: no NaN from the Bessel terms
+    assert th.marcum_q(200.0, 1e-3, 5) == 1.0
+
+
 def test_marcum_q_tail_versus_quadrature():
     """Deep tail: compare with direct integration of the Rician pdf (no 1 − cdf)."""
     a, b = 3.0, 12.0
@@ -495,6 +548,28 @@ def test_monotone_and_graceful_at_extremes(fn):
     assert np.all(np.diff(p[live]) < 0)
     assert fn(undb(100.0)) == 0.0 or fn(undb(100.0)) < 1e-300
     assert fn(np.array([1e12]))[0] >= 0.0
+
+
+def test_no_warnings_up_to_1000_db():
+    """filterwarnings = error: any RuntimeWarning (overflow, scipy non-convergence) fails."""
+    g = undb(np.array([60.0, 100.0, 200.0, 500.0, 1000.0]))
+    outs = [
+        th.ber_ncfsk(g, 2),
+        th.ber_ncfsk(g, 4),
+        th.ser_ncfsk(g, 128),
+        th.ber_ncbfsk_nonorthogonal(g, 0.9),
+        th.ber_ook(g),
+        th.predicted_ber(g, "4fsk", 0.5),
+    ]
+    for p in outs:
+        assert np.all(np.isfinite(p)) and np.all(p >= 0) and np.all(p < 1e-200)
+    # nearly identical tones: still 0.159 at 60 dB (c·γ = 1 with c ≈ 1e-6), then falls
+    p = th.ber_ncbfsk_nonorthogonal(g, 0.999999)
+    assert np.all(np.isfinite(p)) and p[0] > 0.1 and np.all(np.diff(p) <= 0) and p[-1] == 0.0
+    b = th.ook_threshold(g)
+    np.testing.assert_allclose(b, np.sqrt(g), rtol=1e-2)  # b → a/2 = sqrt(γ) at high SNR
+    with pytest.raises(ParameterError, match="exceeds 1e"):
+        th.ber_ook(1e101)
 
 
 def test_zero_ebn0():

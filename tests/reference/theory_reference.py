@@ -56,6 +56,18 @@ def marcum_q1(a, b):
     return mp.fsum(terms)
 
 
+def rice_tail_quad(a, b, upper=True):
+    """Q1(a,b) (upper) or 1 − Q1(a,b) (lower) by quadrature of the Rician pdf; for large a."""
+    a, b = mp.mpf(a), mp.mpf(b)
+
+    def pdf(x):
+        return x * mp.exp(-((x - a) ** 2) / 2 - a * x) * mp.besseli(0, a * x)
+
+    if upper:
+        return mp.quad(pdf, [b, b + 2, b + 6, b + 15, b + 60])
+    return mp.quad(pdf, [max(b - 60, 0), b - 15, b - 6, b - 2, b])
+
+
 def marcum_q1_complement(a, b):
     """1 − Q1(a,b) as the Poisson mixture of regularised lower incomplete gammas."""
     a, b = mp.mpf(a), mp.mpf(b)
@@ -164,6 +176,34 @@ def main() -> None:
     }
     ref["marcum_q1"] = [
         {"a": a, "b": b, "q": s(marcum_q1(a, b))} for a, b in ((1, 2), (2, 1), (5, 8), (10, 16))
+    ]
+    # large a, where scipy's ncx2 stops converging (a² ~ 1e10 and beyond): float inputs so the
+    # test can pass the very same doubles
+    large = []
+    for a, d in ((10000.001, 3.0), (2e5, 4.0), (5e4, -6.0), (3e7, 0.25)):
+        b = a + d
+        large.append(
+            {
+                "a": a,
+                "b": b,
+                "q": s(rice_tail_quad(a, b, True)),
+                "q_complement": s(rice_tail_quad(a, b, False)),
+            }
+        )
+    ref["marcum_q1_large"] = large
+    # tails far below where scipy's ncx2 is reliable (its cdf returns 0 below ~1e-80)
+    deep = (
+        (49.95, 17.9),
+        (30.0, 5.0),
+        (20.0, 0.5),
+        (5.0, 40.0),
+        (1.0, 30.0),
+        (0.001, 0.001),
+        (16.944871794871794, 0.8118644067796611),
+    )
+    ref["marcum_q1_deep"] = [
+        {"a": a, "b": b, "q": s(marcum_q1(a, b)), "q_complement": s(marcum_q1_complement(a, b))}
+        for a, b in deep
     ]
     ref["log_i0"] = [
         {"x": x, "value": s(mp.log(mp.besseli(0, mp.mpf(x))))}
