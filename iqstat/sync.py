@@ -21,12 +21,14 @@ import scipy.signal
 import scipy.stats
 
 from iqstat.correlate import (
+    _check_cumulative,
     _check_rate,
     check_samples,
     check_tone_freqs,
     interval_energies,
     mix_cumulative,
     symbol_boundaries,
+    tone_phasors,
 )
 from iqstat.errors import MeasurementError, ParameterError
 
@@ -137,33 +139,34 @@ def _coarse_timing(
     of the clock offset [ppm], line SNR [dB] and a status line.
     """
     e = feat - feat.mean()
-    # Line strength against the spectral floor of the feature (rfft bins around the line).
+    # Line strength against the spectral floor of the feature (rfft bins around the line;
+    # only those bins are squared).
     n_fft = scipy.fft.next_fast_len(e.size, real=True)
-    spec = np.abs(scipy.fft.rfft(e, n_fft)) ** 2
+    spec = scipy.fft.rfft(e, n_fft)
     k_line = n_fft / period0
     kk = int(round(k_line))
     lo, hi = max(1, kk - 200), min(spec.size, kk + 201)
     neigh = np.r_[spec[lo : max(lo, kk - 3)], spec[min(hi, kk + 4) : hi]]
-    phasor = np.exp(-2j * np.pi * np.mod(np.arange(e.size) / period0, 1.0))
-    x_all = complex(e @ phasor)
+    neigh = neigh.real**2 + neigh.imag**2
+    block = int(round(CLOCK_BLOCK_SYMBOLS * period0))
+    n_blocks = e.size // block if track_clock else 0
+    # e·e^{−j2πn/P0} once: the block sums below and the whole-burst coefficient share it.
+    prod = e * tone_phasors(np.array([1.0 / period0]), e.size)[0]
+    x_all = complex(prod.sum())
     floor = np.median(neigh) if neigh.size else np.nan
     line_snr_db = 10 * math.log10(abs(x_all) ** 2 / floor) if floor > 0 else float("inf")
 
-    block = int(round(CLOCK_BLOCK_SYMBOLS * period0))
-    n_blocks = e.size // block if track_clock else 0
     # Peak of the feature ↔ window aligned with a symbol: n = t0 + k·P + (P − L + 1)/2.
     shift = (period0 - window + 1) / 2.0
     if n_blocks >= MIN_CLOCK_BLOCKS:
-        eb = e[: n_blocks * block].reshape(n_blocks, block)
-        xb = np.einsum("bn,bn->b", eb, phasor[: n_blocks * block].reshape(n_blocks, block))
+        xb = prod[: n_blocks * block].reshape(n_blocks, block).sum(axis=1)
         # Position of the feature peaks modulo P0, in samples; it drifts as (P − P0)/P per
         # sample when P != P0 (block-wise line phase, unwrapped and line-fitted: METHODS §4).
         off = -np.unwrap(np.angle(xb)) / (2 * np.pi) * period0
         centre = np.arange(n_blocks, dtype=np.float64) * block + block // 2
         w = np.abs(xb)
-        (s, c), cov = np.polyfit(centre, off, 1, w=np.sqrt(w), cov=True)
-        rms = float(np.sqrt(np.average((off - (c + s * centre)) ** 2, weights=w)))
-        se_ppm = math.sqrt(max(cov[0, 0], 0.0)) * 1e6
+        s, c, rms, se = _weighted_line(centre, off, w)
+        se_ppm = se * 1e6
         ppm = -s * 1e6  # (P0/P − 1)·1e6 with P = P0/(1 − s)
         if not math.isfinite(ppm) or abs(ppm) > MAX_CLOCK_OFFSET_PPM:
             status = f"block fit gave {ppm:+.0f} ppm, implausible: kept the nominal rate"
@@ -194,13 +197,58 @@ def _coarse_timing(
     return t0, float(period), int(n_blocks), rms, float(se_ppm), float(line_snr_db), status
 
 
+def _weighted_line(
+    x: np.ndarray, y: np.ndarray, w: np.ndarray
+) -> tuple[float, float, float, float]:
+    """Weighted least-squares line y ≈ c + s·x with weights w.
+
+    Returns slope s, intercept c, the weighted rms residual and the standard error of s with
+    the residual variance estimated from the fit, Σw·r²/(n − 2) (what np.polyfit(x, y, 1,
+    w=√w, cov=True) gives, without its overhead: this runs once per burst).
+    """
+    sw = float(w.sum())
+    xm = float((w * x).sum()) / sw
+    ym = float((w * y).sum()) / sw
+    dx = x - xm
+    sxx = float((w * dx * dx).sum())
+    s = float((w * dx * (y - ym)).sum()) / sxx
+    c = ym - s * xm
+    r = y - (c + s * x)
+    ssr = float((w * r * r).sum())
+    rms = math.sqrt(ssr / sw)
+    se = math.sqrt(max(ssr / (x.size - 2), 0.0) / sxx)
+    return s, c, rms, se
+
+
 def _grid_energy(
     cum: np.ndarray, t_mid: np.ndarray, drift: np.ndarray, k_rel: np.ndarray
 ) -> np.ndarray:
-    """Σ_k max_i |z_ki|² on grids t_k = t_mid + drift·k_rel (k_rel in [−1, 1]) per candidate."""
-    t = t_mid[:, None] + drift[:, None] * k_rel[None, :]
-    b = np.ceil(t).astype(np.int64)
-    return interval_energies(cum, b).max(axis=-1).sum(axis=-1)
+    """Σ_k max_i |z_ki|² on grids t_k = t_mid + drift·k_rel (k_rel in [−1, 1]) per candidate.
+
+    The energies of :func:`~iqstat.correlate.interval_energies`, taken tone by tone (one
+    gather of the running sums per tone for all candidates at once) and divided by N_k
+    after the maximum, which is the same number: N_k is common to the tones.
+    """
+    n_cand, n_b = t_mid.size, k_rel.size
+    t = np.multiply.outer(drift, k_rel)
+    t += t_mid[:, None]
+    np.ceil(t, out=t)
+    # All candidates' boundaries as one flat sequence: its differences are the symbols,
+    # plus one junk difference between consecutive candidates (zeroed below).
+    flat = t.ravel()
+    b = flat.astype(np.intp)
+    best = None
+    for row in cum:  # M <= 4 tones, each over all candidates and symbols at once
+        s = row[b]
+        d = s[1:] - s[:-1]
+        e = d.real**2
+        e += d.imag**2
+        best = e if best is None else np.maximum(best, e, out=best)
+    out = np.empty(n_cand * n_b)
+    np.divide(best, flat[1:] - flat[:-1], out=out[:-1])
+    out = out.reshape(n_cand, n_b)
+    out[:, -1] = 0.0  # the junk differences (and the unused last slot)
+    return out.sum(axis=1)
 
 
 def _energy_check(
@@ -239,6 +287,7 @@ def recover_timing(
     tone_freqs_hz: Sequence[float],
     *,
     track_clock: bool = True,
+    cumulative: np.ndarray | None = None,
 ) -> SymbolTiming:
     """Fractional symbol timing and sample-clock offset of a burst.
 
@@ -254,6 +303,10 @@ def recover_timing(
         The link's tones relative to the capture centre [Hz], CFO included (one for OOK).
     track_clock : bool
         Estimate the clock offset (period ≠ fs/Rs). False keeps P = fs/Rs.
+    cumulative : ndarray, shape (M, n_samples + 1), optional
+        :func:`~iqstat.correlate.mix_cumulative` of the same x and tones, when the caller
+        has it already (it is the costliest step here, and
+        :func:`~iqstat.correlate.correlate_symbols` can use the same array).
 
     Returns
     -------
@@ -293,10 +346,15 @@ def recover_timing(
             f"burst of {a.size} samples holds fewer than {MIN_SYMBOLS + 2} symbols of "
             f"{period0:.4g} samples; timing recovery needs a longer burst"
         )
-    cum = mix_cumulative(a, fs, f)
+    if cumulative is None:
+        cum = mix_cumulative(a, fs, f)
+    else:
+        cum = _check_cumulative(cumulative, f.size, a.size)
     window = max(1, int(round(period0)))
     d = cum[:, window:] - cum[:, :-window]
-    feat = (d.real**2 + d.imag**2).max(axis=0)
+    feat = d.real**2
+    feat += d.imag**2
+    feat = feat.max(axis=0)
 
     t0_c, period_c, n_blocks, rms, se_ppm, line_snr_db, clock_txt = _coarse_timing(
         feat, period0, window, track_clock
