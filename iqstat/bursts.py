@@ -169,10 +169,14 @@ class FramePowers:
 # --------------------------------------------------------------------------------------------
 # Gamma-law helpers (pure)
 # --------------------------------------------------------------------------------------------
+#: Detections longer than this many expected bursts are split (see _split_long_groups).
+LONG_BURST_FACTOR = 1.5
+#: The gap re-estimate of the floor may exceed the robust starting estimate by this factor.
+GAP_FLOOR_MAX_RISE = 1.1
 #: Fewest noise-only frames for a noise estimate from the gaps.
 MIN_GAP_FRAMES = 8
 #: Degrees of freedom the smoothed powers of :func:`noise_floor_lowest_cluster` aim for.
-FLOOR_SMOOTH_DOF = 50.0
+FLOOR_SMOOTH_DOF = (50.0, 400.0)
 #: Noise quantile where :func:`noise_floor_lowest_cluster` truncates.
 FLOOR_TRUNCATION_QUANTILE = 0.9
 
@@ -199,7 +203,7 @@ def noise_floor_lowest_cluster(frame_power, dof: float) -> float:
     frames' own; when gaps are only a few per cent of the frames, the 1 % quantile overall is
     the 20 % quantile of the noise frames and the estimate is far too high. Instead, frames are
     smoothed by a moving mean of m frames (m·dof ≥ 50, so noise and a burst a few dB in-band
-    above it separate), and the noise level N is the fixed point of the truncated-Gamma mean
+    above it separate; and m·dof ≥ 400 for bursts barely above the noise; the smaller wins), and the noise level N is the fixed point of the truncated-Gamma mean
 
         N = mean(p_m | p_m < t) / (P(G+1, t·G/N) / P(G, t·G/N)),   t = N·Q(0.9; G)/G,
 
@@ -210,27 +214,35 @@ def noise_floor_lowest_cluster(frame_power, dof: float) -> float:
     pw = np.asarray(frame_power, dtype=np.float64).ravel()
     if pw.size == 0:
         raise ParameterError("frame_power is empty; give at least one frame power")
-    m = int(min(max(1, math.ceil(FLOOR_SMOOTH_DOF / dof)), max(1, pw.size // 8)))
     cs = np.concatenate(([0.0], np.cumsum(pw)))
-    pm = (cs[m:] - cs[:-m]) / m
-    g = m * dof
-    q = float(stats.gamma.ppf(FLOOR_TRUNCATION_QUANTILE, g)) / g
-    n = float(pm.min())
-    if n <= 0:
-        return noise_floor_from_frames(pw, dof)
-    for _ in range(100):
-        t = n * q
-        below = pm[pm < t]
-        if below.size == 0:
-            break
-        x = t * g / n
-        factor = float(special.gammainc(g + 1, x) / special.gammainc(g, x))
-        new = float(below.mean()) / factor
-        if abs(new - n) <= 1e-6 * n:
+    estimates = []
+    for target in FLOOR_SMOOTH_DOF:
+        m = int(min(max(1, math.ceil(target / dof)), max(1, pw.size // 8)))
+        pm = (cs[m:] - cs[:-m]) / m
+        g = m * dof
+        q = float(stats.gamma.ppf(FLOOR_TRUNCATION_QUANTILE, g)) / g
+        n = float(pm.min())
+        if n <= 0:
+            continue
+        for _ in range(100):
+            t = n * q
+            below = pm[pm < t]
+            if below.size == 0:
+                break
+            x = t * g / n
+            factor = float(special.gammainc(g + 1, x) / special.gammainc(g, x))
+            new = float(below.mean()) / factor
+            if abs(new - n) <= 1e-6 * n:
+                n = new
+                break
             n = new
-            break
-        n = new
-    return n
+        estimates.append(n)
+    if not estimates:
+        return noise_floor_from_frames(pw, dof)
+    # A weak burst (in-band SNR of a few tenths) blurs into the noise at light smoothing and
+    # pulls that estimate up; heavier smoothing separates them where the gaps are long enough.
+    # Each estimate is a mean of many values, so the smallest is not noticeably biased low.
+    return min(estimates)
 
 
 def noise_floor_from_frames(frame_power, frame_len: float, quantile: float = 0.1) -> float:
@@ -331,7 +343,16 @@ def _band_edges(bins: np.ndarray, frame_samples: int, sample_rate_hz: float):
     return (float(f.min() - half), float(f.max() + half))
 
 
-def _survey_band(capture: Capture, frame_samples: int) -> np.ndarray | None:
+@dataclass(frozen=True, eq=False)
+class _Survey:
+    """Spectrum survey of a capture: occupied bins and a per-bin noise reference."""
+
+    bins: np.ndarray | None  # occupied DFT bins (numpy order), None if nothing stands out
+    noise_per_bin: np.ndarray  # noise power per rectangular-window bin, E|X_k|²/L², (L,)
+    rel_std: float  # relative standard deviation of noise_per_bin summed over a band
+
+
+def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     """Choose the occupied DFT bins from a Hann spectrum of spread blocks of frames."""
     L = frame_samples
     n_frames = capture.n_samples // L
@@ -370,15 +391,21 @@ def _survey_band(capture: Capture, frame_samples: int) -> np.ndarray | None:
     dc = np.abs(k) <= 1  # a stationary line at DC is an LO spur, not a signal
     occupied = intermittent | (stationary & ~dc)
     idx = np.flatnonzero(occupied)
+    # Noise reference per bin from the neighbouring bins' low quantiles: a narrowband signal
+    # holds a minority of each median window, so this is the noise level under the signal
+    # too (white or slowly varying noise), whatever the bursts' duty cycle. Hann bins of
+    # white noise have E|X|² = σ²·Σw², rectangular ones L·σ²: rescale to the latter / L².
+    noise_per_bin = np.fft.ifftshift(ref) / (float(np.sum(w.astype(np.float64) ** 2)) * L)
+    rel_std = s_own / math.sqrt(width)
     if idx.size == 0:
-        return None
+        return _Survey(None, noise_per_bin, rel_std)
     # Clusters of occupied bins (gaps up to L/16 bins); keep the one with most excess power.
     breaks = np.flatnonzero(np.diff(idx) > max(1, L // 16)) + 1
     groups = np.split(idx, breaks)
     excess = np.maximum(mean - ref, 0.0)
     best = max(groups, key=lambda g: excess[g[0] : g[-1] + 1].sum())
     lo, hi = max(best[0] - 1, 0), min(best[-1] + 1, L - 1)
-    return np.sort(np.fft.fftshift(np.arange(L))[lo : hi + 1])
+    return _Survey(np.sort(np.fft.fftshift(np.arange(L))[lo : hi + 1]), noise_per_bin, rel_std)
 
 
 def measure_frame_powers(
@@ -548,6 +575,17 @@ def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int
         finer = _split_by_scale(p, dof, floor, by_scale, scales_desc[1:], g[0], g[1])
         if len(finer) > 1:
             out.extend(finer)
+            # A burst seen only at this length (too weak for the finer ones) must not be
+            # lost between the finer pieces: keep this length's intervals that no finer
+            # piece overlaps.
+            left = []
+            for x, y in inside:
+                if x < g[1] and y > g[0] and all(y <= f[0] or x >= f[1] for f in finer):
+                    if left and x <= left[-1][1]:
+                        left[-1][1] = max(left[-1][1], y)
+                    else:
+                        left.append([x, y, m, m])
+            out.extend(left)
         elif len(finer) == 1:
             # One burst at the finer length too: its edges are the sharper ones, unless it
             # saw only part of the burst (then the coarser extent stands).
@@ -557,7 +595,7 @@ def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int
                         f[2] if f[0] <= g[0] + m else m, f[3] if f[1] >= g[1] - m else m])
         else:
             out.append(g)
-    return out
+    return sorted(out)
 
 
 def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[_Group]:
@@ -737,6 +775,35 @@ def _check_nonneg(name: str, value) -> float:
     return v
 
 
+def _split_long_groups(groups: list[_Group], p: np.ndarray, expected: float) -> list[_Group]:
+    """Split groups much longer than the expected burst at their quietest stretches.
+
+    Weak bursts a short gap apart can merge into one detection (the gap's power is only a
+    little below theirs). When the link's frame length is known, a detection longer than
+    ``LONG_BURST_FACTOR`` frames' worth is cut where a moving mean of a tenth of a burst is
+    lowest, searched between 0.8 and 2 expected lengths from its start, repeatedly.
+    """
+    w = max(1, int(round(expected / 10)))
+    cs = np.concatenate(([0.0], np.cumsum(p, dtype=np.float64)))
+    out: list[_Group] = []
+    for g in groups:
+        a = g.start
+        lo_edge = (g.start_lo, g.start_hi)
+        while g.stop - a > LONG_BURST_FACTOR * expected:
+            s0 = int(a + 0.8 * expected)
+            s1 = int(min(g.stop - 0.8 * expected, a + 2.0 * expected))
+            if s1 - s0 < w:
+                break
+            mm = (cs[s0 + w : s1 + 1] - cs[s0 : s1 + 1 - w]) / w
+            cut = s0 + int(np.argmin(mm)) + w // 2
+            out.append(_Group(a, cut, lo_edge[0], lo_edge[1], max(a + 1, cut - w), cut + w))
+            a = cut
+            lo_edge = (max(a - w, 0), a + w)
+        out.append(_Group(a, g.stop, lo_edge[0], lo_edge[1], g.stop_lo, g.stop_hi) if a != g.start
+                   else g)
+    return out
+
+
 def detect_bursts(
     capture: Capture,
     *,
@@ -746,6 +813,7 @@ def detect_bursts(
     frame_samples: int | None = None,
     band_hz: tuple[float, float] | None = None,
     chunk_samples: int = 1 << 20,
+    expected_burst_s: float | None = None,
 ) -> BurstDetection:
     """Find the bursts of a capture and measure the noise in the gaps.
 
@@ -768,6 +836,10 @@ def detect_bursts(
         spectrum survey of the capture (full band when nothing stands out of the noise).
     chunk_samples : int
         Samples per read in the streaming pass.
+    expected_burst_s : float, optional
+        Duration of one burst when the link's frame length is known [s]; detections longer
+        than 1.5 such bursts are split at their quietest stretches (weak bursts close
+        together can otherwise merge).
 
     Returns
     -------
@@ -820,10 +892,11 @@ def detect_bursts(
             f"frame_samples={L} (needs 8 frames); use a smaller frame_samples or a longer capture"
         )
 
+    survey = _survey_band(capture, L) if capture.is_complex else None
     if band_hz is not None:
         bins = _bins_for_band(_check_band(band_hz, fs), L, fs)
     else:
-        bins = _survey_band(capture, L)
+        bins = None if survey is None else survey.bins
     band_edges = None if bins is None else _band_edges(bins, L, fs)
     fp = measure_frame_powers(
         capture, frame_samples=L, band_hz=band_edges, chunk_samples=int(chunk_samples)
@@ -832,26 +905,64 @@ def detect_bursts(
     dof = fp.band_dof
 
     floor = noise_floor_lowest_cluster(p, dof)
+    if survey is not None:
+        # Weak bursts filling most of the capture blur into the noise in time; the spectrum
+        # beside the signal still shows the noise level. Prefer it when the time-domain
+        # estimate lies clearly above it.
+        band_bins = np.arange(L) if bins is None else bins
+        spectral = float(np.sum(survey.noise_per_bin[band_bins]))
+        if floor > spectral * (1.0 + 4.0 * survey.rel_std + 0.05):
+            floor = spectral
+    start_floor = floor
+    gap = np.ones(n_frames, dtype=bool)
+    groups: list[_Group] = []
     for _ in range(4):
         groups = _detect_groups(p, dof, floor, pfa)
+        if not groups:
+            break  # nothing detected: the gaps are the whole capture, keep the estimate
         gap = np.ones(n_frames, dtype=bool)
         for g in groups:
             gap[max(g.start_lo - 1, 0) : g.stop_hi + 1] = False
         if gap.sum() < MIN_GAP_FRAMES:
             break  # (almost) no gaps: keep the quantile floor
-        new_floor = float(p[gap].mean())
+        # Frames between detections may still hold the undetected fringes of weak bursts:
+        # the gap mean may refine the floor but not run away above the robust start.
+        new_floor = min(float(p[gap].mean()), start_floor * GAP_FLOOR_MAX_RISE)
         if abs(new_floor - floor) <= 1e-4 * floor:
             break
         floor = new_floor
 
-    spans = [_refine(capture, g, L, band_edges, p, floor, dof) for g in groups]
+    cut_before: set[int] = set()  # groups made by a split: never merged back
+    if expected_burst_s is not None and expected_burst_s > 0:
+        split = _split_long_groups(groups, p, expected_burst_s * fs / L)
+        originals = {g.start for g in groups}
+        cut_before = {i for i, g in enumerate(split) if g.start not in originals}
+        groups = split
+    spans = [(*_refine(capture, g, L, band_edges, p, floor, dof), i in cut_before)
+             for i, g in enumerate(groups)]
     spans.sort()
     joined: list[list[int]] = []
-    for s0, s1 in spans:
-        if joined and s0 - joined[-1][1] < merge_gap:
+    for s0, s1, was_cut in spans:
+        if joined and not was_cut and s0 - joined[-1][1] < merge_gap:
             joined[-1][1] = max(joined[-1][1], s1)
         else:
             joined.append([s0, s1])
+    if expected_burst_s is not None and expected_burst_s > 0:
+        # Edge refinement can still join neighbours (a stop edge found at the far end of a
+        # burst the coarse detection ran into): split what is still too long.
+        e_frames = expected_burst_s * fs / L
+        again = []
+        for s0, s1 in joined:
+            if (s1 - s0) / L <= LONG_BURST_FACTOR * e_frames:
+                again.append([s0, s1])
+                continue
+            f0, f1 = s0 // L, min(-(-s1 // L), n_frames)
+            whole = _Group(f0, f1, max(f0 - 1, 0), f0 + 2, max(f1 - 2, f0 + 1), f1)
+            pieces = _split_long_groups([whole], p, e_frames)
+            for k, g in enumerate(pieces):
+                a, b = _refine(capture, g, L, band_edges, p, floor, dof)
+                again.append([s0 if k == 0 else a, s1 if k == len(pieces) - 1 else b])
+        joined = again
     joined = [sp for sp in joined if sp[1] - sp[0] >= max(min_burst, 1)]
 
     thr = threshold_from_floor(floor, dof, pfa)

@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.fft
+from scipy import stats
 
 from iqstat import theory
 from iqstat.bursts import Burst, BurstDetection, detect_bursts
@@ -38,6 +39,10 @@ EDGE_MARGIN_SYMBOLS = 2.0
 OOK_MERGE_SYMBOLS = 24
 #: Power-based Eb/N0: the band is the outer tones ± this many symbol rates.
 AVAILABLE_BAND_SYMBOLS = 2.0
+#: Header errors tolerated (fraction of its bits) when the payload pattern confirms the lock.
+LOOSE_HEADER_ERROR_FRACTION = 0.3
+#: Header errors less probable than this at the payload's error rate reject the header.
+HEADER_CONSISTENCY_P = 1e-3
 #: Fewest symbols for a fit worth reporting.
 MIN_FIT_SYMBOLS = 20
 #: Fraction of full-scale samples above which a capture is flagged as clipped.
@@ -361,6 +366,47 @@ def _known_payload_symbols(check: BitCheck | None, layout, profile, n_bits: int)
     return bits_to_symbols(ref, profile.modulation)
 
 
+def _header_consistent(frame: FrameAlignment, check: BitCheck, profile: LinkProfile) -> bool:
+    """Whether the header's bit errors are plausible at the payload's measured error rate.
+
+    A header matched with many errors while the payload is nearly error-free means the
+    profile's preamble or sync word is not what was sent (or the position is a sidelobe):
+    P(X ≥ header errors) under Binomial(header bits, payload BER) below 1e-3 rejects it.
+    """
+    if frame.bit_errors is None or not check.bits_checked:
+        return True
+    n_bits = frame.header_bits
+    p = max((check.bit_errors + 0.5) / (check.bits_checked + 1), 1e-6)
+    return float(stats.binom.sf(frame.bit_errors - 1, n_bits, p)) >= HEADER_CONSISTENCY_P
+
+
+def _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile):
+    """Symbols of the frame found at ``frame``: (selection, known symbols, payload check)."""
+    m = profile.modulation
+    start = frame.start_symbol
+    n_payload_sym = None
+    if layout.payload_length is not None:
+        n_payload_sym = layout.payload_length // profile.bits_per_symbol
+    stop = k1 if n_payload_sym is None else min(timing.n_symbols,
+                                                  start + len(header) + n_payload_sym)
+    stop = max(stop, start)
+    # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions, apply
+    # it to the known symbols.
+    def flip(t):
+        return n_tones - 1 - t if frame.inverted else t
+
+    known = np.full(stop - start, -1, dtype=np.int64)
+    known[: len(header)] = flip(header)[: stop - start]
+    payload_syms = flip(hard[start + len(header) : stop])
+    bits = symbols_to_bits(payload_syms, m)
+    check = _check_payload(bits, layout, profile)
+    ref = _known_payload_symbols(check, layout, profile, len(bits))
+    if ref is not None:
+        n_ref = min(len(ref), len(known) - len(header))
+        known[len(header) : len(header) + n_ref] = flip(ref[:n_ref])
+    return (start, stop), known, check
+
+
 def measure_burst(
     capture: Capture,
     burst: Burst,
@@ -445,29 +491,30 @@ def measure_burst(
         n_tones = 2 if m == "ook" else z_all.shape[1]
         soft = np.abs(z_all) ** 2 if m != "ook" else None
         frame = align_frame(hard, header, soft=soft, n_tones=n_tones, detect_inverted=m != "ook")
+        framed = None
         if frame.found:
-            start = frame.start_symbol
-            n_payload_sym = None
-            if layout.payload_length is not None:
-                n_payload_sym = layout.payload_length // profile.bits_per_symbol
-            stop = (
-                k1
-                if n_payload_sym is None
-                else min(timing.n_symbols, start + len(header) + n_payload_sym)
-            )
-            sel = (start, stop)
-            # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions,
-            # apply it to the known symbols.
-            flip = (lambda t: n_tones - 1 - t) if frame.inverted else (lambda t: t)
-            known = np.full(stop - start, -1, dtype=np.int64)
-            known[: len(header)] = flip(header)[: stop - start]
-            payload_syms = flip(hard[start + len(header) : stop])
-            bits = symbols_to_bits(payload_syms, m)
-            check = _check_payload(bits, layout, profile)
-            ref = _known_payload_symbols(check, layout, profile, len(bits))
-            if ref is not None:
-                n_ref = min(len(ref), len(known) - len(header))
-                known[len(header) : len(header) + n_ref] = flip(ref[:n_ref])
+            framed = _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile)
+            if framed[2] is not None and framed[2].locked and not _header_consistent(
+                    frame, framed[2], profile):
+                flags.append("header-mismatch")
+        elif profile.payload_kind != "unknown":
+            # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a
+            # looser match only when the payload pattern then locks (its own false-lock
+            # probability is 1e-6), which confirms the position.
+            loose = align_frame(hard, header, soft=soft, n_tones=n_tones,
+                                detect_inverted=m != "ook",
+                                max_errors=int(LOOSE_HEADER_ERROR_FRACTION * len(header)
+                                               * profile.bits_per_symbol))
+            if loose.found:
+                trial = _frame_symbols(loose, hard, header, n_tones, k1, timing, layout,
+                                       profile)
+                if (trial[2] is not None and trial[2].locked
+                        and _header_consistent(loose, trial[2], profile)):
+                    frame = dataclasses.replace(
+                        loose, message=loose.message + "; confirmed by the payload pattern")
+                    framed = trial
+        if framed is not None:
+            sel, known, check = framed
         else:
             flags.append("sync-not-found")
     elif profile.payload_kind != "unknown":
@@ -629,6 +676,8 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
         flags.append("sync-not-found")
     if any("not-awgn" in r.flags for r in results):
         flags.append("not-awgn")
+    if any("header-mismatch" in r.flags for r in results):
+        flags.append("header-mismatch")
     if any("detection-loss" in r.flags for r in results):
         flags.append("detection-loss")
     if lo is not None and hi - lo > LEVEL_SPREAD_FLAG_DB:
@@ -636,8 +685,6 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
     if meas is not None and pred is not None and n_bits:
         # Measured errors far outside what the fitted Eb/N0 predicts point at something
         # other than white noise (interference, fading, bit slips).
-        from scipy import stats
-
         p_lo = stats.binom.cdf(errors, n_bits, pred)
         p_hi = stats.binom.sf(errors - 1, n_bits, pred)
         if min(p_lo, p_hi) < 1e-4:
@@ -736,14 +783,18 @@ def measure_capture(
             "this recording is real-valued; Eb/N0 measurement needs complex baseband (I/Q) samples"
         )
     facts = compute_facts(capture) if facts is None else facts
+    layout = frame_layout(profile)
     if detection is None:
         merge_gap_s = None
         if profile.modulation == "ook":
             # An OOK burst is silent during runs of zeros (15 symbols in PN15): bridge them.
             rate = profile.symbol_rate_hz or capture.sample_rate_hz / 50
             merge_gap_s = OOK_MERGE_SYMBOLS / rate
-        detection = detect_bursts(capture, merge_gap_s=merge_gap_s)
-    layout = frame_layout(profile)
+        expected_s = None
+        if profile.symbol_rate_hz and layout.payload_length is not None:
+            n_sym = (layout.n_header_bits + layout.payload_length) / profile.bits_per_symbol
+            expected_s = n_sym / profile.symbol_rate_hz
+        detection = detect_bursts(capture, merge_gap_s=merge_gap_s, expected_burst_s=expected_s)
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))

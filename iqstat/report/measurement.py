@@ -31,6 +31,7 @@ FLAG_TEXT = {
     "clipping": "samples at full scale: the receiver front end was overdriven",
     "real-valued-capture": "real-valued recording: complex baseband is needed",
     "sync-not-found": "the profile's preamble/sync word was not found in some bursts",
+    "header-mismatch": "header errors far above the payload's: check the preamble/sync word",
     "pattern-not-locked": "the known payload pattern did not lock in some bursts",
     "not-awgn": "branch energies do not follow the white-noise laws (interference, fading?)",
     "detection-loss": "correlators capture much less energy than the power suggests",
