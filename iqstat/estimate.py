@@ -41,7 +41,7 @@ from typing import Literal
 import numpy as np
 import scipy.fft
 from scipy.signal import zoom_fft
-from scipy.stats import gamma
+from scipy import special
 
 from iqstat.errors import MeasurementError, ParameterError
 
@@ -278,7 +278,7 @@ class _Burst:
             )
         self.n = self.x.size
         self.spectrum = scipy.fft.fft(self.x)
-        self.power = np.abs(self.spectrum) ** 2
+        self.power = self.spectrum.real**2 + self.spectrum.imag**2
         if not np.any(self.power > 0):
             raise MeasurementError("burst is all zeros; there is no signal to estimate from")
         self.df_hz = self.fs / self.n
@@ -349,10 +349,13 @@ def _moving_average_circular(p: np.ndarray, width: int) -> np.ndarray:
     if width <= 1:
         return p.copy()
     pad = np.concatenate((p[-width:], p, p[:width]))
-    c = np.concatenate(([0.0], np.cumsum(pad)))
-    half = width // 2
-    lo = np.arange(p.size) + width - half
-    return (c[lo + width] - c[lo]) / width
+    c = np.empty(pad.size + 1)
+    c[0] = 0.0
+    np.cumsum(pad, out=c[1:])
+    lo = width - width // 2  # window n covers pad[n + lo : n + lo + width]
+    out = c[lo + width : lo + width + p.size] - c[lo : lo + p.size]
+    out /= width
+    return out
 
 
 def _noise_floor(power: np.ndarray, width: int) -> tuple[np.ndarray, float]:
@@ -362,8 +365,24 @@ def _noise_floor(power: np.ndarray, width: int) -> tuple[np.ndarray, float]:
     percentile survives bursts that fill most of the band.
     """
     smooth = _moving_average_circular(power, width)
-    q = float(gamma.ppf(0.2, width, scale=1.0 / width))
-    return smooth, float(np.percentile(smooth, 20.0)) / q
+    q = float(special.gammaincinv(width, 0.2)) / width  # Gamma(w, 1/w) 20 % quantile
+    return smooth, _percentile(smooth, 0.2) / q
+
+
+def _percentile(v: np.ndarray, q: float) -> float:
+    """np.percentile(v, 100·q) (linear interpolation), with one partition instead of two.
+
+    The order statistic above the lower one is the minimum of the partition's upper part.
+    """
+    pos = q * (v.size - 1)
+    i = int(math.floor(pos))
+    part = np.partition(v, i)
+    lo = float(part[i])
+    if i + 1 >= v.size:
+        return lo
+    hi = float(part[i + 1 :].min())
+    t = pos - i
+    return lo + (hi - lo) * t if t < 0.5 else hi - (hi - lo) * (1.0 - t)
 
 
 def _coarse_center(b: _Burst, width_hz: float) -> tuple[float, float]:
@@ -639,7 +658,7 @@ def _fit_lines(
     offsets = tone_offsets_hz(b.modulation, spacing_hz)
     sig_half = float(offsets[-1]) + rate_hz if b.m > 1 else rate_hz
     spec = _power_spectrum_for_lines(b, p, center_hz, sig_half + rate_hz)
-    pw = np.abs(spec) ** 2
+    pw = b.power if p == 1 else spec.real**2 + spec.imag**2
     half = 0.4 * p * spacing_hz if b.m > 1 else 0.5 * rate_hz
     freqs, powers, proms = [], [], []
     for pred in p * (center_hz + offsets):  # M ≤ 4 tones
