@@ -40,8 +40,8 @@ from typing import Literal
 
 import numpy as np
 import scipy.fft
-from scipy.signal import zoom_fft
 from scipy import special
+from scipy.signal import zoom_fft
 
 from iqstat.errors import MeasurementError, ParameterError
 
