@@ -270,13 +270,15 @@ def _rice_tails(a: np.ndarray, b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     weights = np.tile(_GL_WEIGHTS, _RICE_PANELS)
     for start in range(0, a.size, _RICE_BLOCK):
         sl = slice(start, start + _RICE_BLOCK)
-        aa, d = a[sl], b[sl] - a[sl]
-        upper = b[sl] >= np.sqrt(aa**2 + 2.0 * np.log(2.0))
-        lo = np.where(upper, d, np.maximum(-aa, d - _RICE_SPAN))
-        hi = np.where(upper, d + _RICE_SPAN, d)
-        width = (hi - lo) / _RICE_PANELS
-        t = lo[:, None] + offsets[None, :] * width[:, None]
-        x = np.maximum(aa[:, None] + t, 0.0)
+        aa, bb = a[sl], b[sl]
+        upper = bb >= np.sqrt(aa**2 + 2.0 * np.log(2.0))
+        # the interval in x (accurate near x = 0) and in t = x − a (accurate near x = a)
+        x_lo = np.where(upper, bb, np.maximum(bb - _RICE_SPAN, 0.0))
+        t_lo = np.where(upper, bb - aa, np.where(bb > _RICE_SPAN, (bb - aa) - _RICE_SPAN, -aa))
+        width = (np.where(upper, bb + _RICE_SPAN, bb) - x_lo) / _RICE_PANELS
+        step = offsets[None, :] * width[:, None]
+        x = x_lo[:, None] + step
+        t = t_lo[:, None] + step
         with np.errstate(under="ignore"):
             pdf = x * np.exp(-0.5 * t**2) * special.i0e(aa[:, None] * x)  # eq. (1)
         tail = (pdf @ weights) * width
@@ -321,13 +323,13 @@ def log_i0(x: ArrayLike):
 
     Notes
     -----
-    For |x| >= 1e-2, log I0(x) = log(i0e(x)) + |x| (i0e the exponentially scaled Bessel function)
-    (METHODS §8). Below that the subtraction loses digits, and the Maclaurin series of log I0 is
-    used::
+    For |x| >= 2, log I0(x) = log(i0e(x)) + |x| (i0e the exponentially scaled Bessel function)
+    (METHODS §8). Below that the sum loses relative digits (log i0e(x) ≈ −x), and the power
+    series of I0 − 1, all of whose terms are positive, is used (Abramowitz & Stegun 9.6.12)::
 
-        log I0(x) = x²/4 − x⁴/64 + x⁶/576 − 11·x⁸/49152 + ...                      (1)
+        log I0(x) = log1p( Σ_{k=1}^{18} (x²/4)^k / (k!)² )                           (1)
 
-    whose truncation error at |x| = 1e-2 is ~1e-22 (relative ~1e-17).
+    truncated where (x²/4)^19/(19!)² < 1e-34 for |x| < 2.
     """
     arr = _as_array(x, "x")
     out = _log_i0_array(np.abs(arr).reshape(-1)).reshape(arr.shape)
@@ -337,11 +339,21 @@ def log_i0(x: ArrayLike):
 def _log_i0_array(x: np.ndarray) -> np.ndarray:
     """log I0 of a validated non-negative 1-D array (see :func:`log_i0`; no checks)."""
     out = np.log(special.i0e(x)) + x
-    small = x < 1e-2
+    small = x < 2.0
     if np.any(small):
-        s = x[small] ** 2
-        out[small] = s / 4.0 - s**2 / 64.0 + s**3 / 576.0 - 11.0 * s**4 / 49152.0  # eq. (1)
+        s = 0.25 * x[small] ** 2
+        term = np.ones_like(s)
+        series = np.zeros_like(s)
+        with np.errstate(under="ignore"):
+            for k in range(1, _I0_SERIES_TERMS + 1):  # over series terms, not samples
+                term = term * s / (k * k)
+                series = series + term
+        out[small] = np.log1p(series)  # eq. (1)
     return out
+
+
+#: Terms of the I0 − 1 power series used by log_i0 below |x| = 2.
+_I0_SERIES_TERMS = 18
 
 
 # --------------------------------------------------------------------------------------------

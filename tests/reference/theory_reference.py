@@ -200,6 +200,8 @@ def main() -> None:
         (1.0, 30.0),
         (0.001, 0.001),
         (16.944871794871794, 0.8118644067796611),
+        (1e-4, 3.0),
+        (3e-9, 2.0),
     )
     ref["marcum_q1_deep"] = [
         {"a": a, "b": b, "q": s(marcum_q1(a, b)), "q_complement": s(marcum_q1_complement(a, b))}
@@ -207,7 +209,7 @@ def main() -> None:
     ]
     ref["log_i0"] = [
         {"x": x, "value": s(mp.log(mp.besseli(0, mp.mpf(x))))}
-        for x in ("0.001", "0.0099", "0.0101", "0.3", "1", "50", "700")
+        for x in ("0.001", "0.0099", "0.0101", "0.02", "0.3", "1", "1.99", "2.01", "50", "700")
     ]
     ref["stein"] = [
         {"ebn0_db": d, "rho_abs": r, "ber": s(ber_stein(undb(d), mp.mpf(r)))}
