@@ -22,7 +22,7 @@ References
        optimum envelope threshold and its approximation).
 .. [4] J. I. Marcum, "A statistical theory of target detection by pulsed radar", IRE Trans.
        Inf. Theory IT-6(2):59-267, 1960 (the Q function; computed here through the
-       noncentral chi-square survival function).
+       noncentral chi-square survival function). [details from memory]
 """
 
 from __future__ import annotations
@@ -325,7 +325,8 @@ def log_i0(x: ArrayLike):
     -----
     For |x| >= 2, log I0(x) = log(i0e(x)) + |x| (i0e the exponentially scaled Bessel function)
     (METHODS §8). Below that the sum loses relative digits (log i0e(x) ≈ −x), and the power
-    series of I0 − 1, all of whose terms are positive, is used (Abramowitz & Stegun 9.6.12)::
+    series of I0 − 1, all of whose terms are positive, is used (Abramowitz & Stegun 9.6.12
+    [from memory])::
 
         log I0(x) = log1p( Σ_{k=1}^{18} (x²/4)^k / (k!)² )                           (1)
 
