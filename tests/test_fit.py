@@ -659,7 +659,12 @@ def test_scale_invariance_and_zero_input():
 
 def test_private_log_i0_agrees_with_theory():
     # fit keeps its own log I0 (it reuses i0e(u) for I1/I0 in the hot loop); the project's
-    # theory module has the same formula with one more series term
+    # theory module evaluates the I0 power series below x = 2, where log(i0e(x)) + x loses
+    # relative digits (3.6e-12 at x = 0.01). The likelihood adds log I0 terms, so what counts
+    # is the error relative to max(1, log I0): at the float64 level, 2e-15 (measured 6.6e-16).
     theory = pytest.importorskip("iqstat.theory")
     x = np.concatenate([np.geomspace(1e-9, 1e-2, 20), np.linspace(0.02, 800, 200)])
-    np.testing.assert_allclose(_log_i0(x), theory.log_i0(x), rtol=1e-13, atol=1e-300)
+    ref = theory.log_i0(x)
+    assert np.all(np.abs(_log_i0(x) - ref) <= 2e-15 * np.maximum(1.0, np.abs(ref)))
+    small = x < 1e-2  # the Maclaurin branch is accurate in relative terms too
+    np.testing.assert_allclose(_log_i0(x[small]), ref[small], rtol=1e-13, atol=0)
