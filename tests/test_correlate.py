@@ -15,6 +15,7 @@ from iqstat.correlate import (
     mix_cumulative,
     symbol_boundaries,
     template_gram,
+    tone_phasors,
 )
 from iqstat.errors import ParameterError
 from iqstat.synth import modulate
@@ -180,3 +181,59 @@ def test_bad_parameters_raise_parameter_error(kwargs, text):
 def test_two_dimensional_input_is_refused():
     with pytest.raises(ParameterError, match="1-D"):
         correlate_symbols(np.zeros((2, 100), complex), FS, [0.0], 0.0, PERIOD, 1)
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 17, 1000, 29_401])
+def test_tone_phasors_equal_direct_exponentials(n):
+    # e^{−j2πcm} from block tables against numpy's exp of each phase (reduced mod 1 cycle);
+    # both round c·m, so they agree to ~1e-16·c·n cycles (here c·n <= 0.4·29401 ≈ 1.2e4).
+    c = np.array([-0.0123456789, 0.0, 0.25, 0.4])
+    ref = np.exp(-2j * np.pi * np.mod(np.outer(c, np.arange(n)), 1.0))
+    got = tone_phasors(c, n)
+    assert got.shape == (4, n)
+    np.testing.assert_allclose(got, ref, rtol=0, atol=1e-11)
+    assert np.all(got[:, 0] == 1.0)
+
+
+def test_mix_cumulative_is_the_running_sum_of_the_mixed_samples():
+    # S[i, n] = Σ_{m<n} x[m]·e^{−j2πf_i m/fs}, written out directly (mix_cumulative docstring).
+    rng = np.random.default_rng(81)
+    x = (rng.standard_normal(3001) + 1j * rng.standard_normal(3001)).astype(np.complex64)
+    f = _tones(2, RS, -1234.5)
+    ref = np.zeros((2, x.size + 1), complex)
+    for i, fi in enumerate(f):
+        ref[i, 1:] = np.cumsum(x * np.exp(-2j * np.pi * fi / FS * np.arange(x.size)))
+    np.testing.assert_allclose(mix_cumulative(x, FS, f), ref, rtol=0, atol=1e-9)
+
+
+@pytest.mark.parametrize("m", [1, 2, 4])
+def test_bank_from_running_sums_equals_the_templates(m):
+    # Eq. (2) of correlate_symbols (differences of the running sums re-referenced to each
+    # symbol's centre) against eq. (1) (the templates), complex values, phase included.
+    rng = np.random.default_rng(82 + m)
+    x = rng.standard_normal(30000) + 1j * rng.standard_normal(30000)
+    f = _tones(m, RS, 733.3)
+    n_sym = 570
+    z_tpl = correlate_symbols(x, FS, f, 3.7, PERIOD * (1 - 20e-6), n_sym)
+    cum = mix_cumulative(x, FS, f)
+    z_cum = correlate_symbols(x, FS, f, 3.7, PERIOD * (1 - 20e-6), n_sym, cumulative=cum)
+    # the running sums reach ~sqrt(n)·|x|: rounding of 1e-16 of that, relative to |z| ~ 1
+    np.testing.assert_allclose(z_cum, z_tpl, rtol=0, atol=1e-10)
+
+
+def test_energies_tones_first_are_the_same_numbers():
+    rng = np.random.default_rng(9)
+    x = rng.standard_normal(6000) + 1j * rng.standard_normal(6000)
+    cum = mix_cumulative(x, FS, _tones(2, RS))
+    b = np.stack([symbol_boundaries(t0, PERIOD, 100) for t0 in (0.1, 1.6, 9.9)])
+    e = interval_energies(cum, b)
+    et = interval_energies(cum, b, tones_first=True)
+    assert e.shape == (3, 100, 2) and et.shape == (2, 3, 100)
+    np.testing.assert_array_equal(np.moveaxis(et, 0, -1), e)
+
+
+def test_cumulative_of_other_samples_is_refused():
+    x = np.zeros(5000, complex)
+    cum = mix_cumulative(np.zeros(4000, complex), FS, [-2400.0, 2400.0])
+    with pytest.raises(ParameterError, match="cumulative"):
+        correlate_symbols(x, FS, [-2400.0, 2400.0], 0.0, PERIOD, 10, cumulative=cum)

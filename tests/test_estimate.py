@@ -410,3 +410,14 @@ def test_bad_parameters_raise_parameter_error():
         estimate_link(x, FS, modulation="ook", tone_spacing_hz=4800.0)
     with pytest.raises(ParameterError, match="tone_spacing_hz"):
         estimate_carrier(x, FS, modulation="2fsk", tone_spacing_hz=None, symbol_rate_hz=RS)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 1000, 29400])
+@pytest.mark.parametrize("q", [0.0, 0.2, 0.5, 0.97, 1.0])
+def test_noise_floor_percentile_equals_numpy(n, q):
+    # The one-partition percentile used for the spectral noise floor is numpy's default
+    # (linear interpolation between order statistics).
+    from iqstat.estimate import _percentile
+
+    v = np.random.default_rng(n).exponential(size=n)
+    assert _percentile(v, q) == pytest.approx(np.percentile(v, 100 * q), rel=1e-15, abs=0)

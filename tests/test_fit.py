@@ -668,3 +668,17 @@ def test_private_log_i0_agrees_with_theory():
     assert np.all(np.abs(_log_i0(x) - ref) <= 2e-15 * np.maximum(1.0, np.abs(ref)))
     small = x < 1e-2  # the Maclaurin branch is accurate in relative terms too
     np.testing.assert_allclose(_log_i0(x[small]), ref[small], rtol=1e-13, atol=0)
+
+
+@pytest.mark.parametrize("lam", [0.0, 1e-9, 1e-6, 9.9e-5, 1e-4, 3.0, 80.0])
+def test_chi2_cdf_against_scipy_noncentral_law(lam):
+    # scipy.stats.ncx2 (central chi2 for λ = 0) as the reference. Below λ = 1e-4 two
+    # Poisson-series terms are used; the remainder bound (λ/2)²/2 is the tolerance there.
+    from scipy import stats
+
+    from iqstat.fit import _chi2_2_cdf
+
+    y = np.concatenate([np.geomspace(1e-6, 1.0, 30), np.linspace(1.0, 200.0, 60)])
+    ref = stats.chi2.cdf(y, 2) if lam == 0 else stats.ncx2.cdf(y, 2, lam)
+    tol = (lam / 2) ** 2 / 2 + 1e-14 if lam < 1e-4 else 1e-12
+    assert np.max(np.abs(_chi2_2_cdf(y, lam) - ref)) <= tol

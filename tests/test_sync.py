@@ -259,3 +259,34 @@ def test_boundaries_of_timing_match_the_grid():
     np.testing.assert_array_equal(
         b, symbol_boundaries(timing.t0_samples, timing.period_samples, timing.n_symbols)
     )
+
+
+@pytest.mark.parametrize("modulation", ["2fsk", "4fsk", "ook"])
+def test_running_sums_passed_in_give_the_same_timing(modulation):
+    # recover_timing(cumulative=mix_cumulative(x, fs, tones)) must be the same computation.
+    from iqstat.correlate import mix_cumulative
+
+    rng = np.random.default_rng(61)
+    x, _, _, _, tones = _burst(rng, modulation, 300, ppm=30.0, ebn0_db=9.0)
+    direct = recover_timing(x, FS, RS, tones)
+    shared = recover_timing(x, FS, RS, tones, cumulative=mix_cumulative(x, FS, tones))
+    assert shared == direct
+    with pytest.raises(ParameterError, match="cumulative"):
+        recover_timing(x, FS, RS, tones, cumulative=mix_cumulative(x[:-1], FS, tones))
+
+
+def test_clock_line_fit_matches_numpy_polyfit():
+    # The block-phase line fit of the coarse clock estimate, against np.polyfit with weights
+    # √w and its residual-scaled covariance (numpy's documented estimator, n − 2 dof).
+    from iqstat.sync import _weighted_line
+
+    rng = np.random.default_rng(62)
+    x = np.arange(9) * 3333.0 + 1666.0
+    y = 4.1 - 2.3e-5 * x + rng.normal(0, 0.05, x.size)
+    w = rng.uniform(0.5, 3.0, x.size)
+    s, c, rms, se = _weighted_line(x, y, w)
+    (s_ref, c_ref), cov = np.polyfit(x, y, 1, w=np.sqrt(w), cov=True)
+    assert s == pytest.approx(s_ref, rel=1e-9, abs=0) and c == pytest.approx(c_ref, rel=1e-9)
+    assert se == pytest.approx(math.sqrt(cov[0, 0]), rel=1e-9, abs=0)
+    r = y - (c_ref + s_ref * x)
+    assert rms == pytest.approx(math.sqrt(np.average(r**2, weights=w)), rel=1e-9, abs=0)
