@@ -173,6 +173,8 @@ class FramePowers:
 LONG_BURST_FACTOR = 1.5
 #: The gap re-estimate of the floor may exceed the robust starting estimate by this factor.
 GAP_FLOOR_MAX_RISE = 1.1
+#: z-score of the smoothed spectral excess up to which the occupied band is grown.
+_GROW_Z = 3.0
 #: Fewest noise-only frames for a noise estimate from the gaps.
 MIN_GAP_FRAMES = 8
 #: Degrees of freedom the smoothed powers of :func:`noise_floor_lowest_cluster` aim for.
@@ -405,6 +407,16 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     excess = np.maximum(mean - ref, 0.0)
     best = max(groups, key=lambda g: excess[g[0] : g[-1] + 1].sum())
     lo, hi = max(best[0] - 1, 0), min(best[-1] + 1, L - 1)
+    # Grow the band over neighbouring bins that still hold signal at a looser level, seen on
+    # the excess smoothed over a few bins: bursts with different carrier offsets smear the
+    # tones, and a 4-FSK signal's outer tones can be weaker than the significance test.
+    k_s = 5
+    smooth = np.convolve(mean / ref - 1.0, np.ones(k_s) / k_s, mode="same")
+    grow_thr = _GROW_Z * math.hypot(s_mean, s_own / math.sqrt(width)) / math.sqrt(k_s)
+    while lo > 0 and smooth[lo - 1] > grow_thr and not dc[lo - 1]:
+        lo -= 1
+    while hi < L - 1 and smooth[hi + 1] > grow_thr and not dc[hi + 1]:
+        hi += 1
     return _Survey(np.sort(np.fft.fftshift(np.arange(L))[lo : hi + 1]), noise_per_bin, rel_std)
 
 
@@ -555,6 +567,22 @@ def reach_of(cluster) -> int:
     return max(iv[1] for iv in cluster)
 
 
+def _part_of_burst(p: np.ndarray, dof: float, floor: float, level: float, a: int, b: int) -> bool:
+    """Whether frames [a, b) belong to a burst of mean power ``level`` next to them.
+
+    Their mean must be clearly above the noise (3 σ) and at least half-way from the floor
+    to the burst's level: a noise bump beside a strong burst is not part of it, the weak
+    fringe of a burst that only a longer average saw is.
+    """
+    seg = p[max(a, 0) : b]
+    if seg.size == 0:
+        return False
+    mean = float(seg.mean())
+    return mean > floor * (1.0 + 3.0 / math.sqrt(seg.size * dof)) and mean > 0.5 * (
+        floor + level
+    )
+
+
 def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int]]:
     """Pieces ``[start, stop, m_first, m_last]`` of the frames [a, b), coarse to fine."""
     if not scales_desc:
@@ -589,10 +617,15 @@ def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int
         elif len(finer) == 1:
             # One burst at the finer length too: its edges are the sharper ones, unless it
             # saw only part of the burst (then the coarser extent stands).
+            # The coarser extent stands only where the frames it adds hold signal.
             f = finer[0]
-            out.append([min(f[0], g[0]) if f[0] > g[0] + m else f[0],
-                        max(f[1], g[1]) if f[1] < g[1] - m else f[1],
-                        f[2] if f[0] <= g[0] + m else m, f[3] if f[1] >= g[1] - m else m])
+            # The coarse group's own mean: a short fine piece of a weak burst is a lucky,
+            # inflated sample of its level.
+            level = float(p[g[0] : g[1]].mean())
+            ext_lo = f[0] > g[0] + m and _part_of_burst(p, dof, floor, level, g[0], f[0])
+            ext_hi = f[1] < g[1] - m and _part_of_burst(p, dof, floor, level, f[1], g[1])
+            out.append([g[0] if ext_lo else f[0], g[1] if ext_hi else f[1],
+                        m if ext_lo else f[2], m if ext_hi else f[3]])
         else:
             out.append(g)
     return sorted(out)
@@ -814,6 +847,7 @@ def detect_bursts(
     band_hz: tuple[float, float] | None = None,
     chunk_samples: int = 1 << 20,
     expected_burst_s: float | None = None,
+    signal_bandwidth_hz: float | None = None,
 ) -> BurstDetection:
     """Find the bursts of a capture and measure the noise in the gaps.
 
@@ -840,6 +874,9 @@ def detect_bursts(
         Duration of one burst when the link's frame length is known [s]; detections longer
         than 1.5 such bursts are split at their quietest stretches (weak bursts close
         together can otherwise merge).
+    signal_bandwidth_hz : float, optional
+        Bandwidth of the link's signal when known (tones and symbol rate from the profile);
+        a surveyed band narrower than half of it (a weak signal) is widened.
 
     Returns
     -------
@@ -897,6 +934,17 @@ def detect_bursts(
         bins = _bins_for_band(_check_band(band_hz, fs), L, fs)
     else:
         bins = None if survey is None else survey.bins
+        if bins is not None and signal_bandwidth_hz:
+            lo_hz, hi_hz = _band_edges(bins, L, fs)
+            width = hi_hz - lo_hz
+            if width < 0.5 * signal_bandwidth_hz:
+                # A weak signal shows only its strongest part above the noise: widen to the
+                # link's bandwidth, by as much again as the part seen (where in it the rest
+                # lies is unknown).
+                half = 0.5 * (signal_bandwidth_hz + width)
+                mid = 0.5 * (lo_hz + hi_hz)
+                band = (max(mid - half, -0.5 * fs), min(mid + half, 0.5 * fs - fs / L))
+                bins = _bins_for_band(band, L, fs)
     band_edges = None if bins is None else _band_edges(bins, L, fs)
     fp = measure_frame_powers(
         capture, frame_samples=L, band_hz=band_edges, chunk_samples=int(chunk_samples)

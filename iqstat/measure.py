@@ -17,7 +17,12 @@ from scipy import stats
 from iqstat import theory
 from iqstat.bursts import Burst, BurstDetection, detect_bursts
 from iqstat.capture import Capture
-from iqstat.correlate import correlate_symbols, template_gram
+from iqstat.correlate import (
+    correlate_symbols,
+    interval_energies,
+    mix_cumulative,
+    template_gram,
+)
 from iqstat.errors import IqstatError, MeasurementError
 from iqstat.estimate import LinkEstimate, estimate_link, refine_link_across_bursts
 from iqstat.facts import CaptureFacts, compute_facts
@@ -43,6 +48,17 @@ AVAILABLE_BAND_SYMBOLS = 2.0
 LOOSE_HEADER_ERROR_FRACTION = 0.3
 #: Header errors less probable than this at the payload's error rate reject the header.
 HEADER_CONSISTENCY_P = 1e-3
+#: Below this symbol-rate line SNR [dB] the timing phase is searched blind instead.
+BLIND_SEARCH_LINE_DB = 10.0
+#: Below this line SNR [dB] the timing is refined on the known symbols of a found frame.
+DA_REFINE_LINE_DB = 20.0
+#: Candidates per pass of a timing search.
+TIMING_SEARCH_POINTS = 41
+#: Per-burst flags that also flag the capture when any burst raises them.
+BURST_FLAGS_RAISED = (
+    "sync-not-found", "header-mismatch", "pattern-not-locked", "not-awgn", "detection-loss",
+    "fit-failed", "too-few-symbols", "not-measured", "link-not-estimated",
+)
 #: Fewest symbols for a fit worth reporting.
 MIN_FIT_SYMBOLS = 20
 #: Fraction of full-scale samples above which a capture is flagged as clipped.
@@ -366,6 +382,60 @@ def _known_payload_symbols(check: BitCheck | None, layout, profile, n_bits: int)
     return bits_to_symbols(ref, profile.modulation)
 
 
+def _search_timing(cum: np.ndarray, timing: SymbolTiming, n_samples: int, k0: int, k1: int,
+                   known: np.ndarray | None, offsets: np.ndarray) -> tuple[SymbolTiming, int]:
+    """Best timing phase on a grid of offsets (fractions of a symbol) around ``timing``.
+
+    Criterion per candidate, over symbols k0..k1 of the grid: with known symbols s_k (−1 for
+    unknown), Σ_k (e[k, s_k] − mean_i e[k, i]); without, the decision margin
+    Σ_k (max_i e[k, i] − mean_i e[k, i]). OOK (one branch): Σ_k (2·s_k − 1)·e_k with known
+    on/off symbols, else the variance of the symbol energies. A coarse pass over ``offsets`` is followed by a
+    pass ten times finer around its best. Returns the new timing and the index shift j − k
+    of a symbol's number in the new grid relative to the old one.
+    """
+    p = timing.period_samples
+    ks = np.arange(k0, k1 + 1, dtype=np.float64)
+    t0 = timing.t0_samples
+    best = 0.0
+    for fine in (False, True):
+        grid = best + (offsets - offsets.mean()) / 10.0 if fine else offsets
+        edges = t0 + grid[:, None] * p + ks[None, :] * p
+        ok = (np.ceil(edges[:, 0]) >= 0) & (np.ceil(edges[:, -1]) <= n_samples)
+        if not ok.any():
+            break
+        grid, edges = grid[ok], edges[ok]
+        e = interval_energies(cum, np.ceil(edges).astype(np.int64))  # (C, K, M)
+        base = e.mean(axis=-1)
+        if e.shape[-1] == 1:
+            # OOK, one branch: the contrast between "on" and "off" symbols.
+            if known is None:
+                score = e[..., 0].var(axis=-1)
+            else:
+                kk = np.asarray(known[: e.shape[1]])
+                score = (e[..., 0] * np.where(kk >= 0, 2.0 * kk - 1.0, 0.0)).sum(axis=-1)
+        elif known is None:
+            score = (e.max(axis=-1) - base).sum(axis=-1)
+        else:
+            kk = np.asarray(known[: e.shape[1]])
+            use = kk >= 0
+            idx = np.where(use, kk, 0)
+            own = np.take_along_axis(e, idx[None, :, None].repeat(len(grid), 0), -1)[..., 0]
+            score = ((own - base) * use).sum(axis=-1)
+        best = float(grid[int(np.argmax(score))])
+    t_new = t0 + best * p
+    shift = int(math.floor(t_new / p))
+    t_new -= shift * p
+    n_sym = int(math.floor((n_samples - math.ceil(t_new)) / p))
+    while n_sym > 0 and math.ceil(t_new + n_sym * p) > n_samples:
+        n_sym -= 1
+    moved = dataclasses.replace(
+        timing, t0_samples=float(t_new), n_symbols=n_sym,
+        message=timing.message + f"; timing moved {best:+.3f} T by a "
+        + ("data-aided" if known is not None else "decision-margin") + " search",
+    )
+    return moved, -shift
+
+
 def _header_consistent(frame: FrameAlignment, check: BitCheck, profile: LinkProfile) -> bool:
     """Whether the header's bit errors are plausible at the payload's measured error rate.
 
@@ -443,16 +513,22 @@ def measure_burst(
     sps = fs / link.symbol_rate_hz
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * sps))
     x0, x = _read_burst(capture, burst, margin)
-    timing = recover_timing(x, fs, link.symbol_rate_hz, link.tone_freqs_hz)
+    cum = mix_cumulative(x, fs, link.tone_freqs_hz)
+    timing = recover_timing(x, fs, link.symbol_rate_hz, link.tone_freqs_hz, cumulative=cum)
+    lo_edge, hi_edge = burst.start_sample - x0 - 0.5 * sps, burst.stop_sample - x0 + 0.5 * sps
+    if timing.quality.get("line_snr_db", np.inf) < BLIND_SEARCH_LINE_DB:
+        # No usable symbol-rate line (weak burst, or h = 1/2 whose feature line is faint):
+        # search the timing phase directly for the largest decision margin.
+        k0, k1 = _symbols_inside(timing, lo_edge, hi_edge)
+        timing, _ = _search_timing(cum, timing, len(x), k0, k1, None, np.linspace(
+            -0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False))
     z_all = correlate_symbols(
         x, fs, link.tone_freqs_hz, timing.t0_samples, timing.period_samples, timing.n_symbols
     )
     gram = template_gram(link.tone_freqs_hz, timing.period_samples, fs)
     m = profile.modulation
     # Symbols within the detected burst (a symbol's worth of slack at each detected edge).
-    k0, k1 = _symbols_inside(
-        timing, burst.start_sample - x0 - 0.5 * sps, burst.stop_sample - x0 + 0.5 * sps
-    )
+    k0, k1 = _symbols_inside(timing, lo_edge, hi_edge)
     z_in = z_all[k0:k1]
     if len(z_in) < MIN_FIT_SYMBOLS:
         return BurstResult(
@@ -520,6 +596,18 @@ def measure_burst(
     elif profile.payload_kind != "unknown":
         bits = symbols_to_bits(hard[k0:k1], m)
         check = _check_payload(bits, layout, profile)
+    if (known is not None and frame is not None and frame.found
+            and timing.quality.get("line_snr_db", np.inf) < DA_REFINE_LINE_DB):
+        # Known symbols give a sharper timing criterion than the feature line: refine the
+        # grid around its estimate, then correlate again.
+        timing, shift = _search_timing(cum, timing, len(x), sel[0], sel[1], known,
+                                       np.linspace(-0.25, 0.25, TIMING_SEARCH_POINTS))
+        sel = (sel[0] + shift, sel[1] + shift)
+        if sel[0] < 0 or sel[1] > timing.n_symbols:
+            sel = (max(sel[0], 0), min(sel[1], timing.n_symbols))
+            known = known[: sel[1] - sel[0]]
+        z_all = correlate_symbols(x, fs, link.tone_freqs_hz, timing.t0_samples,
+                                  timing.period_samples, timing.n_symbols)
     z = z_all[sel[0] : sel[1]]
     fit = fit_nda(z, gram, modulation=m)
     dd = fit_dd(z, gram, modulation=m, gof=False)
@@ -672,14 +760,9 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
         flags.append("clipping")
     if not facts.is_complex:
         flags.append("real-valued-capture")
-    if any("sync-not-found" in r.flags for r in results):
-        flags.append("sync-not-found")
-    if any("not-awgn" in r.flags for r in results):
-        flags.append("not-awgn")
-    if any("header-mismatch" in r.flags for r in results):
-        flags.append("header-mismatch")
-    if any("detection-loss" in r.flags for r in results):
-        flags.append("detection-loss")
+    for fl in BURST_FLAGS_RAISED:
+        if any(fl in r.flags for r in results):
+            flags.append(fl)
     if lo is not None and hi - lo > LEVEL_SPREAD_FLAG_DB:
         flags.append("level-spread")
     if meas is not None and pred is not None and n_bits:
@@ -730,6 +813,19 @@ def _mean_db(values_db, weights) -> float | None:
     v = 10 ** (np.asarray(values_db, dtype=float) / 10)
     w = np.ones_like(v) if weights is None else np.asarray(weights, dtype=float)
     return float(db(np.sum(w * v) / np.sum(w)))
+
+
+def _measure_burst_safely(capture, burst, link, profile, layout, detection) -> BurstResult:
+    """:func:`measure_burst`, with a burst that cannot be measured reported, not raised."""
+    try:
+        return measure_burst(capture, burst, link, profile, layout, detection)
+    except MeasurementError as exc:
+        return BurstResult(
+            index=burst.index, start_sample=burst.start_sample, stop_sample=burst.stop_sample,
+            power_dbfs=burst.power_dbfs, symbols=0, link=link, timing=None, frame=None,
+            fit=None, fit_da=None, fit_dd=None, bit_check=None, available_ebn0_db=None,
+            predicted_ber=None, flags=("not-measured",), message=str(exc),
+        )
 
 
 def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]:
@@ -794,13 +890,18 @@ def measure_capture(
         if profile.symbol_rate_hz and layout.payload_length is not None:
             n_sym = (layout.n_header_bits + layout.payload_length) / profile.bits_per_symbol
             expected_s = n_sym / profile.symbol_rate_hz
-        detection = detect_bursts(capture, merge_gap_s=merge_gap_s, expected_burst_s=expected_s)
+        bandwidth = None
+        if profile.symbol_rate_hz:
+            spread = (profile.n_tones - 1) * (profile.tone_spacing_hz or 0.0)
+            bandwidth = spread + 2.0 * profile.symbol_rate_hz
+        detection = detect_bursts(capture, merge_gap_s=merge_gap_s, expected_burst_s=expected_s,
+                                  signal_bandwidth_hz=bandwidth)
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))
     links = _estimate_links(capture, detection, profile, margin)
     results = [
-        measure_burst(capture, b, e, profile, layout, detection)
+        _measure_burst_safely(capture, b, e, profile, layout, detection)
         for b, e in zip(detection.bursts, links, strict=True)
     ]
     mismatch = _check_profile_rates(capture, detection, profile, margin)

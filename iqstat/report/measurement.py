@@ -40,6 +40,7 @@ FLAG_TEXT = {
     "some-bursts-below-requirement": "the weakest bursts are below the requirement",
     "ber-disagrees-with-ebn0": "measured errors disagree with the fitted Eb/N0: not plain noise",
     "fit-failed": "the Eb/N0 fit failed on some bursts",
+    "not-measured": "some bursts could not be measured (too short, no timing)",
     "too-few-symbols": "some bursts hold too few symbols to fit",
     "link-not-estimated": "carrier or rates could not be estimated on some bursts",
     "symbol-rate-mismatch": "the symbol rate in the capture differs from the profile's",
