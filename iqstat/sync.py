@@ -11,6 +11,7 @@ fast (its symbols are shorter in receiver samples).
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
@@ -465,9 +466,22 @@ def _int_symbols(name: str, a: np.ndarray) -> np.ndarray:
     return s.astype(np.int64, copy=False)
 
 
+#: Below this many multiply-adds the sliding dot product is summed directly by numpy (what
+#: scipy.signal.correlate chooses there too, without its 13 µs of method selection).
+_DIRECT_DOT_WORK = 1_000_000
+
+
 def _sliding_dot(a: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Σ_j a[s + j]·v[j] for every s with the pattern inside a (FFT or direct, as faster)."""
+    if a.size * v.size <= _DIRECT_DOT_WORK:
+        return np.correlate(a, v, mode="valid")
     return scipy.signal.correlate(a, v, mode="valid")
+
+
+@functools.lru_cache(maxsize=64)
+def _random_match_cdf(n_bits: int) -> tuple[float, ...]:
+    """P(at most e of n_bits random bits wrong), e = 0..n_bits // 4 (a header's false match)."""
+    return tuple(scipy.stats.binom.cdf(np.arange(n_bits // 4 + 1), n_bits, 0.5))
 
 
 def align_frame(
@@ -543,7 +557,7 @@ def align_frame(
     n_pos = hard.size - hdr.size + 1
     if max_errors is None:
         n_tests = max(1, n_pos) * (2 if detect_inverted else 1)
-        cdf = scipy.stats.binom.cdf(np.arange(nb // 4 + 1), nb, 0.5)
+        cdf = np.array(_random_match_cdf(nb))
         ok = np.nonzero(n_tests * cdf <= FALSE_LOCK_PROBABILITY)[0]
         max_err = int(ok[-1]) if ok.size else -1
     else:
