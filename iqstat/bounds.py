@@ -22,8 +22,14 @@ def _log_i0(x: np.ndarray) -> np.ndarray:
     return np.log(special.i0e(x)) + np.abs(x)
 
 
-def _log_lik(z: np.ndarray, sent: np.ndarray | None, log_a: float, log_n0: float,
-             modulation: str, q: np.ndarray) -> np.ndarray:
+def _log_lik(
+    z: np.ndarray,
+    sent: np.ndarray | None,
+    log_a: float,
+    log_n0: float,
+    modulation: str,
+    q: np.ndarray,
+) -> np.ndarray:
     """Per-symbol log-likelihood (METHODS §0, §3); q = zᴴR⁻¹z (|z|² for orthogonal tones).
 
     With template Gram matrix R, z = A·e^{jθ}·R[:, i] + n, n ~ CN(0, N0·R); since
@@ -140,14 +146,28 @@ def crb_esn0(
 def _da_ook(z, on, log_a, log_n0):
     a, n0 = math.exp(log_a), math.exp(log_n0)
     r = np.abs(z[:, 0])
-    base = -r**2 / n0 - math.log(math.pi * n0)
+    base = -(r**2) / n0 - math.log(math.pi * n0)
     return base + on * (_log_i0(2 * a * r / n0) - a * a / n0)
 
 
-def crb_std_db(esn0_db: float, modulation, n_symbols: int, *, kind: Kind = "nda",
-               n_monte_carlo: int = 200_000, seed: int = 1,
-               gram: np.ndarray | None = None) -> float:
+def crb_std_db(
+    esn0_db: float,
+    modulation,
+    n_symbols: int,
+    *,
+    kind: Kind = "nda",
+    n_monte_carlo: int = 200_000,
+    seed: int = 1,
+    gram: np.ndarray | None = None,
+) -> float:
     """The bound as a standard deviation of the estimate in dB: 10/ln10 · √(CRB/γ²)."""
-    v = crb_esn0(esn0_db, modulation, kind=kind, n_symbols=n_symbols,
-                 n_monte_carlo=n_monte_carlo, seed=seed, gram=gram)
+    v = crb_esn0(
+        esn0_db,
+        modulation,
+        kind=kind,
+        n_symbols=n_symbols,
+        n_monte_carlo=n_monte_carlo,
+        seed=seed,
+        gram=gram,
+    )
     return 10.0 / math.log(10.0) * math.sqrt(v)

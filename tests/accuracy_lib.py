@@ -43,13 +43,26 @@ def scenario_doc(config: str, ebn0_db: float, n_bursts: int, seed: int) -> dict:
         link["tone_spacing"] = c["spacing"]
     return {
         "link": link,
-        "frame": {"preamble": "aaaaaaaa", "sync_word": "2dd4", "payload": "pn9",
-                  "payload_bits": 512},
+        "frame": {
+            "preamble": "aaaaaaaa",
+            "sync_word": "2dd4",
+            "payload": "pn9",
+            "payload_bits": 512,
+        },
         "requirement": {"ber": 1e-4},
-        "capture": {"sample_rate": FS, "datatype": c["datatype"], "seed": seed,
-                    "lead_in_s": 0.01, "tail_s": 0.01},
-        "bursts": {"count": n_bursts, "ebn0_db": float(ebn0_db),
-                   "cfo_hz": {"uniform": [-3000.0, 3000.0]}, "gap_s": {"uniform": [0.01, 0.03]}},
+        "capture": {
+            "sample_rate": FS,
+            "datatype": c["datatype"],
+            "seed": seed,
+            "lead_in_s": 0.01,
+            "tail_s": 0.01,
+        },
+        "bursts": {
+            "count": n_bursts,
+            "ebn0_db": float(ebn0_db),
+            "cfo_hz": {"uniform": [-3000.0, 3000.0]},
+            "gap_s": {"uniform": [0.01, 0.03]},
+        },
         "impairments": {"clock_offset_ppm": 20.0, "timing": "random", "phase": "random"},
     }
 
@@ -83,8 +96,15 @@ def _overlap(a0, a1, b0, b1) -> int:
     return min(a1, b1) - max(a0, b0)
 
 
-def run_point(config: str, ebn0_db: float, *, captures: int = 2, n_bursts: int = 8,
-              seed: int = 1, workdir: Path | None = None) -> PointResult:
+def run_point(
+    config: str,
+    ebn0_db: float,
+    *,
+    captures: int = 2,
+    n_bursts: int = 8,
+    seed: int = 1,
+    workdir: Path | None = None,
+) -> PointResult:
     """Synthesise ``captures`` recordings of ``n_bursts`` bursts, measure, compare."""
     c = CONFIGS[config]
     mod = c["modulation"]
@@ -96,17 +116,26 @@ def run_point(config: str, ebn0_db: float, *, captures: int = 2, n_bursts: int =
             sc = scenario_from_dict(doc, source=f"{config}@{ebn0_db}", name=f"acc{k}")
             out = write_synthetic(sc, Path(tmp))
             truth = _read_truth(out.truth_path)
-            profile = profile_from_dict({key: doc[key] for key in ("link", "frame",
-                                                                    "requirement")})
+            profile = profile_from_dict({key: doc[key] for key in ("link", "frame", "requirement")})
             report = measure_capture(open_capture(out.meta_path), profile)
             if report.summary.ebn0_db is not None:
                 pooled.append(report.summary.ebn0_db - ebn0_db)
             for t in truth["bursts"]:
-                best = max(report.bursts, default=None, key=lambda b, t=t: _overlap(
-                    b.start_sample, b.stop_sample, t["start_sample"], t["stop_sample"]))
-                if best is None or best.ebn0_db is None or _overlap(
-                        best.start_sample, best.stop_sample, t["start_sample"],
-                        t["stop_sample"]) <= 0:
+                best = max(
+                    report.bursts,
+                    default=None,
+                    key=lambda b, t=t: _overlap(
+                        b.start_sample, b.stop_sample, t["start_sample"], t["stop_sample"]
+                    ),
+                )
+                if (
+                    best is None
+                    or best.ebn0_db is None
+                    or _overlap(
+                        best.start_sample, best.stop_sample, t["start_sample"], t["stop_sample"]
+                    )
+                    <= 0
+                ):
                     continue
                 measured += 1
                 errs.append(best.ebn0_db - t["ebn0_db"])
@@ -131,16 +160,29 @@ def run_point(config: str, ebn0_db: float, *, captures: int = 2, n_bursts: int =
         m_tones = 2 if mod == "2fsk" else 4
         tones = (np.arange(m_tones) - (m_tones - 1) / 2) * c["spacing"]
         gram = template_gram(tones, FS / RS, FS)
-    crb = crb_std_db(ebn0_db + 10 * math.log10(bps), mod, max(1, int(round(n_mean))),
-                     n_monte_carlo=100_000, gram=gram)
+    crb = crb_std_db(
+        ebn0_db + 10 * math.log10(bps),
+        mod,
+        max(1, int(round(n_mean))),
+        n_monte_carlo=100_000,
+        gram=gram,
+    )
     return PointResult(
-        config=config, ebn0_db=ebn0_db, captures=captures, bursts_sent=captures * n_bursts,
-        bursts_measured=measured, symbols_per_burst=n_mean,
+        config=config,
+        ebn0_db=ebn0_db,
+        captures=captures,
+        bursts_sent=captures * n_bursts,
+        bursts_measured=measured,
+        symbols_per_burst=n_mean,
         pooled_bias_db=float(np.mean(pooled)) if pooled else None,
         burst_bias_db=float(np.mean(errs)) if errs else None,
         burst_std_db=float(np.std(errs, ddof=1)) if len(errs) > 1 else None,
-        crb_std_db=crb, max_cfo_error_hz=float(np.max(cfo_err)) if cfo_err else None,
-        bit_errors=bit_errors, bits_checked=bits, ber_theory=p_th, ber_pvalue=pval,
+        crb_std_db=crb,
+        max_cfo_error_hz=float(np.max(cfo_err)) if cfo_err else None,
+        bit_errors=bit_errors,
+        bits_checked=bits,
+        ber_theory=p_th,
+        ber_pvalue=pval,
     )
 
 
@@ -154,14 +196,18 @@ def format_row(r: PointResult) -> str:
     def f(v, fmt):
         return "—" if v is None else format(v, fmt)
 
-    return (f"{r.config:10s} {r.ebn0_db:5.1f} {r.bursts_measured:3d}/{r.bursts_sent:<3d} "
-            f"{r.symbols_per_burst:6.0f} {f(r.pooled_bias_db, '+7.3f')} "
-            f"{f(r.burst_bias_db, '+7.3f')} {f(r.burst_std_db, '6.3f')} {r.crb_std_db:6.3f} "
-            f"{f(r.std_over_crb, '5.2f')} {f(r.max_cfo_error_hz, '7.1f')} "
-            f"{r.bit_errors:6d}/{r.bits_checked:<7d} {r.ber_theory:9.2e} "
-            f"{f(r.ber_pvalue, '7.3f')}")
+    return (
+        f"{r.config:10s} {r.ebn0_db:5.1f} {r.bursts_measured:3d}/{r.bursts_sent:<3d} "
+        f"{r.symbols_per_burst:6.0f} {f(r.pooled_bias_db, '+7.3f')} "
+        f"{f(r.burst_bias_db, '+7.3f')} {f(r.burst_std_db, '6.3f')} {r.crb_std_db:6.3f} "
+        f"{f(r.std_over_crb, '5.2f')} {f(r.max_cfo_error_hz, '7.1f')} "
+        f"{r.bit_errors:6d}/{r.bits_checked:<7d} {r.ber_theory:9.2e} "
+        f"{f(r.ber_pvalue, '7.3f')}"
+    )
 
 
-HEADER = ("config     Eb/N0 found  sym/b  pooled  burst   std    CRB    std/  maxCFO  "
-          "errors/bits     BER th.   p(BER)\n"
-          "           [dB]               bias dB bias dB [dB]   [dB]   CRB   err Hz")
+HEADER = (
+    "config     Eb/N0 found  sym/b  pooled  burst   std    CRB    std/  maxCFO  "
+    "errors/bits     BER th.   p(BER)\n"
+    "           [dB]               bias dB bias dB [dB]   [dB]   CRB   err Hz"
+)

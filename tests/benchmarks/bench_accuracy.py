@@ -43,28 +43,43 @@ def criteria(rows) -> list[tuple[str, bool, str]]:
     orth = ("2fsk", "4fsk", "2fsk-cu8", "2fsk-cf32")
     for lo, hi, tol in ((4, 20, 0.2), (0, 4, 0.5)):
         sel = pooled(orth, lo, hi)
-        worst = max((abs(r.pooled_bias_db) for r in sel if r.pooled_bias_db is not None),
-                    default=float("nan"))
+        worst = max(
+            (abs(r.pooled_bias_db) for r in sel if r.pooled_bias_db is not None),
+            default=float("nan"),
+        )
         missing = [r for r in sel if r.pooled_bias_db is None]
-        out.append((f"orthogonal 2/4-FSK pooled bias within ±{tol} dB, {lo}–{hi} dB", worst <= tol
-                    and not missing, f"worst |bias| {worst:.3f} dB"
-                    + (f", {len(missing)} point(s) unmeasured" if missing else "")))
+        out.append(
+            (
+                f"orthogonal 2/4-FSK pooled bias within ±{tol} dB, {lo}–{hi} dB",
+                worst <= tol and not missing,
+                f"worst |bias| {worst:.3f} dB"
+                + (f", {len(missing)} point(s) unmeasured" if missing else ""),
+            )
+        )
     sel = [r for r in pooled(orth, 0, 20) if r.std_over_crb is not None]
     worst = max(r.std_over_crb for r in sel)
-    out.append(("orthogonal spread at most 1.5x the bound", worst <= 1.5,
-                f"worst std/CRB {worst:.2f}"))
+    out.append(
+        ("orthogonal spread at most 1.5x the bound", worst <= 1.5, f"worst std/CRB {worst:.2f}")
+    )
     sel = pooled(("2fsk-h0.5",), 0, 20)
     worst = max(abs(r.pooled_bias_db) for r in sel if r.pooled_bias_db is not None)
-    out.append(("2-FSK h=0.5 pooled bias within ±0.5 dB", worst <= 0.5,
-                f"worst |bias| {worst:.3f} dB"))
+    out.append(
+        ("2-FSK h=0.5 pooled bias within ±0.5 dB", worst <= 0.5, f"worst |bias| {worst:.3f} dB")
+    )
     sel = pooled(("ook",), 8, 20)
     worst = max(abs(r.pooled_bias_db) for r in sel if r.pooled_bias_db is not None)
-    out.append(("OOK pooled bias within ±0.5 dB from 8 dB", worst <= 0.5,
-                f"worst |bias| {worst:.3f} dB"))
+    out.append(
+        ("OOK pooled bias within ±0.5 dB from 8 dB", worst <= 0.5, f"worst |bias| {worst:.3f} dB")
+    )
     sel = [r for r in rows if r.bit_errors > 0 and r.ber_pvalue is not None]
     worst = min(r.ber_pvalue for r in sel)
-    out.append(("measured BER consistent with theory (binomial p > 1e-3) where errors occur",
-                worst > 1e-3, f"smallest p {worst:.3g} over {len(sel)} points"))
+    out.append(
+        (
+            "measured BER consistent with theory (binomial p > 1e-3) where errors occur",
+            worst > 1e-3,
+            f"smallest p {worst:.3g} over {len(sel)} points",
+        )
+    )
     sel = [r for r in rows if r.max_cfo_error_hz is not None]
     worst = max(r.max_cfo_error_hz for r in sel)
     tol = max(50.0, 0.01 * RS)
