@@ -56,9 +56,18 @@ DA_REFINE_LINE_DB = 20.0
 TIMING_SEARCH_POINTS = 41
 #: Per-burst flags that also flag the capture when any burst raises them.
 BURST_FLAGS_RAISED = (
-    "sync-not-found", "header-mismatch", "pattern-not-locked", "not-awgn", "detection-loss",
-    "fit-failed", "too-few-symbols", "not-measured", "link-not-estimated",
+    "sync-not-found",
+    "header-mismatch",
+    "pattern-not-locked",
+    "not-awgn",
+    "detection-loss",
+    "fit-failed",
+    "too-few-symbols",
+    "not-measured",
+    "link-not-estimated",
 )
+#: 4-FSK tones whose |ρ| stay below this are treated as orthogonal by the theory.
+NEAR_ORTHOGONAL_RHO = 0.05
 #: Fewest symbols for a fit worth reporting.
 MIN_FIT_SYMBOLS = 20
 #: Fraction of full-scale samples above which a capture is flagged as clipped.
@@ -382,16 +391,23 @@ def _known_payload_symbols(check: BitCheck | None, layout, profile, n_bits: int)
     return bits_to_symbols(ref, profile.modulation)
 
 
-def _search_timing(cum: np.ndarray, timing: SymbolTiming, n_samples: int, k0: int, k1: int,
-                   known: np.ndarray | None, offsets: np.ndarray) -> tuple[SymbolTiming, int]:
+def _search_timing(
+    cum: np.ndarray,
+    timing: SymbolTiming,
+    n_samples: int,
+    k0: int,
+    k1: int,
+    known: np.ndarray | None,
+    offsets: np.ndarray,
+) -> tuple[SymbolTiming, int]:
     """Best timing phase on a grid of offsets (fractions of a symbol) around ``timing``.
 
     Criterion per candidate, over symbols k0..k1 of the grid: with known symbols s_k (−1 for
     unknown), Σ_k (e[k, s_k] − mean_i e[k, i]); without, the decision margin
     Σ_k (max_i e[k, i] − mean_i e[k, i]). OOK (one branch): Σ_k (2·s_k − 1)·e_k with known
-    on/off symbols, else the variance of the symbol energies. A coarse pass over ``offsets`` is followed by a
-    pass ten times finer around its best. Returns the new timing and the index shift j − k
-    of a symbol's number in the new grid relative to the old one.
+    on/off symbols, else the variance of the symbol energies. A coarse pass over ``offsets``
+    is followed by a pass ten times finer around its best. Returns the new timing and the
+    index shift j − k of a symbol's number in the new grid relative to the old one.
     """
     p = timing.period_samples
     ks = np.arange(k0, k1 + 1, dtype=np.float64)
@@ -429,9 +445,13 @@ def _search_timing(cum: np.ndarray, timing: SymbolTiming, n_samples: int, k0: in
     while n_sym > 0 and math.ceil(t_new + n_sym * p) > n_samples:
         n_sym -= 1
     moved = dataclasses.replace(
-        timing, t0_samples=float(t_new), n_symbols=n_sym,
-        message=timing.message + f"; timing moved {best:+.3f} T by a "
-        + ("data-aided" if known is not None else "decision-margin") + " search",
+        timing,
+        t0_samples=float(t_new),
+        n_symbols=n_sym,
+        message=timing.message
+        + f"; timing moved {best:+.3f} T by a "
+        + ("data-aided" if known is not None else "decision-margin")
+        + " search",
     )
     return moved, -shift
 
@@ -457,9 +477,11 @@ def _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile):
     n_payload_sym = None
     if layout.payload_length is not None:
         n_payload_sym = layout.payload_length // profile.bits_per_symbol
-    stop = k1 if n_payload_sym is None else min(timing.n_symbols,
-                                                  start + len(header) + n_payload_sym)
+    stop = (
+        k1 if n_payload_sym is None else min(timing.n_symbols, start + len(header) + n_payload_sym)
+    )
     stop = max(stop, start)
+
     # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions, apply
     # it to the known symbols.
     def flip(t):
@@ -520,8 +542,15 @@ def measure_burst(
         # No usable symbol-rate line (weak burst, or h = 1/2 whose feature line is faint):
         # search the timing phase directly for the largest decision margin.
         k0, k1 = _symbols_inside(timing, lo_edge, hi_edge)
-        timing, _ = _search_timing(cum, timing, len(x), k0, k1, None, np.linspace(
-            -0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False))
+        timing, _ = _search_timing(
+            cum,
+            timing,
+            len(x),
+            k0,
+            k1,
+            None,
+            np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
+        )
     z_all = correlate_symbols(
         x, fs, link.tone_freqs_hz, timing.t0_samples, timing.period_samples, timing.n_symbols
     )
@@ -570,24 +599,34 @@ def measure_burst(
         framed = None
         if frame.found:
             framed = _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile)
-            if framed[2] is not None and framed[2].locked and not _header_consistent(
-                    frame, framed[2], profile):
+            if (
+                framed[2] is not None
+                and framed[2].locked
+                and not _header_consistent(frame, framed[2], profile)
+            ):
                 flags.append("header-mismatch")
         elif profile.payload_kind != "unknown":
             # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a
             # looser match only when the payload pattern then locks (its own false-lock
             # probability is 1e-6), which confirms the position.
-            loose = align_frame(hard, header, soft=soft, n_tones=n_tones,
-                                detect_inverted=m != "ook",
-                                max_errors=int(LOOSE_HEADER_ERROR_FRACTION * len(header)
-                                               * profile.bits_per_symbol))
+            loose = align_frame(
+                hard,
+                header,
+                soft=soft,
+                n_tones=n_tones,
+                detect_inverted=m != "ook",
+                max_errors=int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol),
+            )
             if loose.found:
-                trial = _frame_symbols(loose, hard, header, n_tones, k1, timing, layout,
-                                       profile)
-                if (trial[2] is not None and trial[2].locked
-                        and _header_consistent(loose, trial[2], profile)):
+                trial = _frame_symbols(loose, hard, header, n_tones, k1, timing, layout, profile)
+                if (
+                    trial[2] is not None
+                    and trial[2].locked
+                    and _header_consistent(loose, trial[2], profile)
+                ):
                     frame = dataclasses.replace(
-                        loose, message=loose.message + "; confirmed by the payload pattern")
+                        loose, message=loose.message + "; confirmed by the payload pattern"
+                    )
                     framed = trial
         if framed is not None:
             sel, known, check = framed
@@ -596,18 +635,30 @@ def measure_burst(
     elif profile.payload_kind != "unknown":
         bits = symbols_to_bits(hard[k0:k1], m)
         check = _check_payload(bits, layout, profile)
-    if (known is not None and frame is not None and frame.found
-            and timing.quality.get("line_snr_db", np.inf) < DA_REFINE_LINE_DB):
+    if (
+        known is not None
+        and frame is not None
+        and frame.found
+        and timing.quality.get("line_snr_db", np.inf) < DA_REFINE_LINE_DB
+    ):
         # Known symbols give a sharper timing criterion than the feature line: refine the
         # grid around its estimate, then correlate again.
-        timing, shift = _search_timing(cum, timing, len(x), sel[0], sel[1], known,
-                                       np.linspace(-0.25, 0.25, TIMING_SEARCH_POINTS))
+        timing, shift = _search_timing(
+            cum,
+            timing,
+            len(x),
+            sel[0],
+            sel[1],
+            known,
+            np.linspace(-0.25, 0.25, TIMING_SEARCH_POINTS),
+        )
         sel = (sel[0] + shift, sel[1] + shift)
         if sel[0] < 0 or sel[1] > timing.n_symbols:
             sel = (max(sel[0], 0), min(sel[1], timing.n_symbols))
             known = known[: sel[1] - sel[0]]
-        z_all = correlate_symbols(x, fs, link.tone_freqs_hz, timing.t0_samples,
-                                  timing.period_samples, timing.n_symbols)
+        z_all = correlate_symbols(
+            x, fs, link.tone_freqs_hz, timing.t0_samples, timing.period_samples, timing.n_symbols
+        )
     z = z_all[sel[0] : sel[1]]
     fit = fit_nda(z, gram, modulation=m)
     dd = fit_dd(z, gram, modulation=m, gof=False)
@@ -622,12 +673,10 @@ def measure_burst(
         flags.append("fit-failed")
     elif fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
         flags.append("not-awgn")
-    rho = float(abs(gram[0, 1])) if m != "ook" else 0.0
+    rho = _theory_rho(np.abs(gram), m)
     pred = None
     if fit.converged and fit.ebn0_db is not None:
-        pred = float(
-            theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho if m == "2fsk" else 0.0)
-        )
+        pred = float(theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho))
     avail = _available_ebn0_db(
         x[int(burst.start_sample - x0) : int(burst.stop_sample - x0)],
         detection,
@@ -705,13 +754,12 @@ def _weighted_ebn0(results: list[BurstResult]):
     return mean_db, ci, float(d.min()), float(d.max()), std
 
 
-def _summarise(results, profile, link_sum, facts, detection) -> Summary:
+def _summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
     flags: list[str] = []
     m = profile.modulation
     mean_db, ci, lo, hi, std = _weighted_ebn0(results)
     ok = [r for r in results if r.ebn0_db is not None]
     symbols = sum(r.symbols for r in ok)
-    rho = link_sum.tone_correlation or 0.0
     pred = None
     if ok:
         pred = float(
@@ -719,7 +767,7 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
                 np.array([r.ebn0 for r in ok]),
                 np.array([r.symbols for r in ok], dtype=float),
                 m,
-                rho_abs=rho if m == "2fsk" else 0.0,
+                rho_abs=rho,
             )
         )
     checked = [r for r in results if r.bit_check is not None and r.bit_check.locked]
@@ -732,11 +780,7 @@ def _summarise(results, profile, link_sum, facts, detection) -> Summary:
     req = marg = worst = None
     if profile.required_ber is not None:
         try:
-            req = float(
-                theory.required_ebn0_db(
-                    profile.required_ber, m, rho_abs=rho if m == "2fsk" else 0.0
-                )
-            )
+            req = float(theory.required_ebn0_db(profile.required_ber, m, rho_abs=rho))
         except IqstatError:
             req = None
         if req is not None and mean_db is not None:
@@ -815,16 +859,46 @@ def _mean_db(values_db, weights) -> float | None:
     return float(db(np.sum(w * v) / np.sum(w)))
 
 
+def _theory_rho(rho_abs: np.ndarray, modulation: str):
+    """Tone correlation in the form theory takes: |ρ| for 2-FSK, the |ρ| matrix for 4-FSK
+    (union bound over tone pairs when the tones are not orthogonal), 0 for OOK and
+    orthogonal 4-FSK."""
+    rho_abs = np.clip(rho_abs, 0.0, 1.0)
+    if modulation == "2fsk":
+        return float(rho_abs[0, 1])  # Stein's formula is exact for any |ρ|
+    if modulation == "4fsk":
+        # The union bound is only worth its looseness where the tones really leak; a
+        # fractional symbol length leaves |ρ| ~ 1e-3 between nominally orthogonal tones.
+        off = rho_abs - np.diag(np.diag(rho_abs))
+        if float(off.max()) <= NEAR_ORTHOGONAL_RHO:
+            return 0.0
+        np.fill_diagonal(rho_abs, 1.0)
+        return rho_abs
+    return 0.0
+
+
 def _measure_burst_safely(capture, burst, link, profile, layout, detection) -> BurstResult:
     """:func:`measure_burst`, with a burst that cannot be measured reported, not raised."""
     try:
         return measure_burst(capture, burst, link, profile, layout, detection)
     except MeasurementError as exc:
         return BurstResult(
-            index=burst.index, start_sample=burst.start_sample, stop_sample=burst.stop_sample,
-            power_dbfs=burst.power_dbfs, symbols=0, link=link, timing=None, frame=None,
-            fit=None, fit_da=None, fit_dd=None, bit_check=None, available_ebn0_db=None,
-            predicted_ber=None, flags=("not-measured",), message=str(exc),
+            index=burst.index,
+            start_sample=burst.start_sample,
+            stop_sample=burst.stop_sample,
+            power_dbfs=burst.power_dbfs,
+            symbols=0,
+            link=link,
+            timing=None,
+            frame=None,
+            fit=None,
+            fit_da=None,
+            fit_dd=None,
+            bit_check=None,
+            available_ebn0_db=None,
+            predicted_ber=None,
+            flags=("not-measured",),
+            message=str(exc),
         )
 
 
@@ -894,8 +968,12 @@ def measure_capture(
         if profile.symbol_rate_hz:
             spread = (profile.n_tones - 1) * (profile.tone_spacing_hz or 0.0)
             bandwidth = spread + 2.0 * profile.symbol_rate_hz
-        detection = detect_bursts(capture, merge_gap_s=merge_gap_s, expected_burst_s=expected_s,
-                                  signal_bandwidth_hz=bandwidth)
+        detection = detect_bursts(
+            capture,
+            merge_gap_s=merge_gap_s,
+            expected_burst_s=expected_s,
+            signal_bandwidth_hz=bandwidth,
+        )
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))
@@ -906,17 +984,18 @@ def measure_capture(
     ]
     mismatch = _check_profile_rates(capture, detection, profile, margin)
     good_links = [e for e in links if e is not None]
-    rho = None
+    rho_display, rho_theory = None, 0.0
     if good_links and profile.modulation != "ook":
-        rho = float(
-            abs(
-                theory.tone_correlation(
-                    good_links[0].tone_spacing_hz, 1.0 / good_links[0].symbol_rate_hz
-                )
+        g = good_links[0]
+        rho_mat = np.abs(
+            theory.tone_correlation_matrix(
+                profile.n_tones, g.tone_spacing_hz, 1.0 / g.symbol_rate_hz
             )
         )
-    link_sum = _link_summary(profile, good_links, rho)
-    summary = _summarise(results, profile, link_sum, facts, detection)
+        rho_display = float(rho_mat[0, 1])
+        rho_theory = _theory_rho(rho_mat, profile.modulation)
+    link_sum = _link_summary(profile, good_links, rho_display)
+    summary = _summarise(results, profile, link_sum, facts, detection, rho_theory)
     if mismatch:
         summary = dataclasses.replace(summary, flags=tuple(dict.fromkeys(summary.flags + mismatch)))
     return MeasurementReport(
