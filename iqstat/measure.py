@@ -46,8 +46,9 @@ OOK_MERGE_SYMBOLS = 24
 AVAILABLE_BAND_SYMBOLS = 2.0
 #: Header errors tolerated (fraction of its bits) when the payload pattern confirms the lock.
 LOOSE_HEADER_ERROR_FRACTION = 0.3
-#: Header errors less probable than this at the payload's error rate reject the header.
-HEADER_CONSISTENCY_P = 1e-3
+#: Header errors less probable than this at the payload's error rate reject the header
+#: (lenient: the first symbols of a burst err more often than the payload).
+HEADER_CONSISTENCY_P = 1e-5
 #: Below this symbol-rate line SNR [dB] the timing phase is searched blind instead.
 BLIND_SEARCH_LINE_DB = 10.0
 #: Below this line SNR [dB] the timing is refined on the known symbols of a found frame.
@@ -461,7 +462,7 @@ def _header_consistent(frame: FrameAlignment, check: BitCheck, profile: LinkProf
 
     A header matched with many errors while the payload is nearly error-free means the
     profile's preamble or sync word is not what was sent (or the position is a sidelobe):
-    P(X ≥ header errors) under Binomial(header bits, payload BER) below 1e-3 rejects it.
+    P(X ≥ header errors) under Binomial(header bits, payload BER) below 1e-5 rejects it.
     """
     if frame.bit_errors is None or not check.bits_checked:
         return True

@@ -90,7 +90,7 @@ def _ber(v) -> str:
         return "—"
     if v == 0:
         return "0"
-    return f"{v:.2e}"
+    return f"{v:.1e}"
 
 
 def _ci(ci, fmt) -> str:
@@ -129,41 +129,51 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
         parts.append(f"|ρ| = {link.tone_correlation:.3f}")
     console.print("  link: " + ", ".join(parts), markup=False, highlight=False)
     if report.bursts:
-        console.print(_burst_table(report.bursts, max_bursts))
+        console.print(_burst_table(report.bursts, f.sample_rate_hz, max_bursts))
+        console.print(
+            "  P-based: Eb/N0 from burst power and the noise in the gaps; clk: symbol "
+            "clock offset where significant",
+            markup=False,
+            highlight=False,
+            style="dim",
+        )
     _headline(report, console)
 
 
-def _burst_table(bursts: tuple[BurstResult, ...], max_rows: int) -> Table:
-    t = Table(title="Bursts", title_justify="left", show_lines=False, pad_edge=False)
-    for col, just in [
-        ("#", "right"),
-        ("start", "right"),
-        ("symbols", "right"),
-        ("CFO", "right"),
-        ("clock", "right"),
-        ("Eb/N0", "right"),
-        ("95 % CI", "right"),
-        ("power-based", "right"),
-        ("BER pred.", "right"),
-        ("errors/bits", "right"),
-        ("flags", "left"),
-    ]:
-        t.add_column(col, justify=just, no_wrap=col != "flags")
+def _burst_table(bursts: tuple[BurstResult, ...], fs: float, max_rows: int) -> Table:
+    t = Table(title="Bursts", title_justify="left", pad_edge=False, padding=(0, 1))
+    for col in (
+        "#",
+        "t [s]",
+        "sym",
+        "CFO [Hz]",
+        "clk [ppm]",
+        "Eb/N0 [dB]",
+        "95 % CI",
+        "P-based",
+        "BER pred",
+        "err/bits",
+    ):
+        t.add_column(col, justify="right", no_wrap=True)
+    t.add_column("flags", justify="left")
     shown = bursts if len(bursts) <= max_rows else bursts[:max_rows]
     for b in shown:
         fit = b.fit
         ci = fit.ebn0_db_ci95 if fit is not None and fit.converged else None
         bc = b.bit_check
         errs = f"{bc.bit_errors}/{bc.bits_checked}" if bc is not None and bc.locked else "—"
+        clock = "—"
+        if b.timing is not None and b.timing.clock_offset_ppm != 0.0:
+            clock = f"{b.timing.clock_offset_ppm:+.1f}"
         t.add_row(
             str(b.index),
-            f"{b.start_sample:,}",
+            f"{b.start_sample / fs:.3f}",
             str(b.symbols),
-            _hz(b.cfo_hz),
-            "—" if b.timing is None else f"{b.timing.clock_offset_ppm:+.1f} ppm",
-            _db(b.ebn0_db),
-            "—" if ci is None else f"{ci[0]:.1f} … {ci[1]:.1f}",
-            _db(b.available_ebn0_db),
+            "—" if b.cfo_hz is None else f"{b.cfo_hz:+.0f}",
+            clock,
+            _db(b.ebn0_db, 1, ""),
+            "—" if ci is None else f"{ci[0]:.1f}–{ci[1]:.1f}",
+            _db(b.available_ebn0_db, 1, ""),
             _ber(b.predicted_ber),
             errs,
             ", ".join(b.flags),
