@@ -10,6 +10,7 @@ import math
 
 from rich.console import Console
 from rich.table import Table
+from rich.markup import escape
 from rich.text import Text
 
 from iqstat import __version__
@@ -154,7 +155,7 @@ def _burst_table(bursts: tuple[BurstResult, ...], fs: float, max_rows: int) -> T
         "BER pred",
         "err/bits",
     ):
-        t.add_column(col, justify="right", no_wrap=True)
+        t.add_column(escape(col), justify="right", no_wrap=True)
     t.add_column("flags", justify="left")
     shown = bursts if len(bursts) <= max_rows else bursts[:max_rows]
     for b in shown:
