@@ -156,7 +156,6 @@ def _burst_table(bursts: tuple[BurstResult, ...], fs: float, max_rows: int) -> T
         "err/bits",
     ):
         t.add_column(escape(col), justify="right", no_wrap=True)
-    t.add_column("flags", justify="left")
     shown = bursts if len(bursts) <= max_rows else bursts[:max_rows]
     for b in shown:
         fit = b.fit
@@ -177,7 +176,6 @@ def _burst_table(bursts: tuple[BurstResult, ...], fs: float, max_rows: int) -> T
             _db(b.available_ebn0_db, 1, ""),
             _ber(b.predicted_ber),
             errs,
-            ", ".join(b.flags),
         )
     if len(bursts) > max_rows:
         t.caption = f"{len(bursts) - max_rows} more bursts in the JSON report"
