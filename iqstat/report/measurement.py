@@ -9,8 +9,8 @@ from __future__ import annotations
 import math
 
 from rich.console import Console
-from rich.table import Table
 from rich.markup import escape
+from rich.table import Table
 from rich.text import Text
 
 from iqstat import __version__
