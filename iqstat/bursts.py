@@ -15,6 +15,7 @@ never loaded whole.
 
 from __future__ import annotations
 
+import bisect
 import math
 from dataclasses import asdict, dataclass
 
@@ -205,7 +206,8 @@ def noise_floor_lowest_cluster(frame_power, dof: float) -> float:
     frames' own; when gaps are only a few per cent of the frames, the 1 % quantile overall is
     the 20 % quantile of the noise frames and the estimate is far too high. Instead, frames are
     smoothed by a moving mean of m frames (m·dof ≥ 50, so noise and a burst a few dB in-band
-    above it separate; and m·dof ≥ 400 for bursts barely above the noise; the smaller wins), and the noise level N is the fixed point of the truncated-Gamma mean
+    above it separate; and m·dof ≥ 400 for bursts barely above the noise; the smaller wins),
+    and the noise level N is the fixed point of the truncated-Gamma mean
 
         N = mean(p_m | p_m < t) / (P(G+1, t·G/N) / P(G, t·G/N)),   t = N·Q(0.9; G)/G,
 
@@ -578,9 +580,32 @@ def _part_of_burst(p: np.ndarray, dof: float, floor: float, level: float, a: int
     if seg.size == 0:
         return False
     mean = float(seg.mean())
-    return mean > floor * (1.0 + 3.0 / math.sqrt(seg.size * dof)) and mean > 0.5 * (
-        floor + level
-    )
+    return mean > floor * (1.0 + 3.0 / math.sqrt(seg.size * dof)) and mean > 0.5 * (floor + level)
+
+
+class _Intervals:
+    """One smoothing length's detections, sorted, with their starts and ends for bisection.
+
+    Hysteresis runs of one length are disjoint and sorted and all extend by m − 1 frames, so
+    starts and ends both increase: the intervals overlapping [a, b) are a contiguous slice,
+    found by bisection instead of a scan of every interval of the capture (which made the
+    grouping quadratic in the number of bursts). Should the ends not increase, the scan is
+    used.
+    """
+
+    def __init__(self, intervals):
+        self.items = sorted(intervals)
+        self.starts = [x for x, _ in self.items]
+        self.ends = [y for _, y in self.items]
+        self.sorted_ends = all(u <= v for u, v in zip(self.ends, self.ends[1:], strict=False))
+
+    def overlapping(self, a: int, b: int) -> list[tuple[int, int]]:
+        """The intervals (x, y) with y > a and x < b, in order."""
+        if not self.sorted_ends:
+            return [(x, y) for x, y in self.items if y > a and x < b]
+        i0 = bisect.bisect_right(self.ends, a)
+        i1 = bisect.bisect_left(self.starts, b)
+        return self.items[i0:i1] if i0 < i1 else []
 
 
 def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int]]:
@@ -588,7 +613,7 @@ def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int
     if not scales_desc:
         return []
     m = scales_desc[0]
-    inside = [(x, y) for x, y in by_scale[m] if y > a and x < b]
+    inside = by_scale[m].overlapping(a, b)
     if not inside:
         return _split_by_scale(p, dof, floor, by_scale, scales_desc[1:], a, b)
     groups = [[inside[0][0], inside[0][1], m, m]]
@@ -607,8 +632,9 @@ def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int
             # lost between the finer pieces: keep this length's intervals that no finer
             # piece overlaps.
             left = []
-            for x, y in inside:
-                if x < g[1] and y > g[0] and all(y <= f[0] or x >= f[1] for f in finer):
+            # the intervals of ``inside`` that overlap g (y > a, x < b, y > g0, x < g1)
+            for x, y in by_scale[m].overlapping(max(a, g[0]), min(b, g[1])):
+                if all(y <= f[0] or x >= f[1] for f in finer):
                     if left and x <= left[-1][1]:
                         left[-1][1] = max(left[-1][1], y)
                     else:
@@ -624,8 +650,14 @@ def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int
             level = float(p[g[0] : g[1]].mean())
             ext_lo = f[0] > g[0] + m and _part_of_burst(p, dof, floor, level, g[0], f[0])
             ext_hi = f[1] < g[1] - m and _part_of_burst(p, dof, floor, level, f[1], g[1])
-            out.append([g[0] if ext_lo else f[0], g[1] if ext_hi else f[1],
-                        m if ext_lo else f[2], m if ext_hi else f[3]])
+            out.append(
+                [
+                    g[0] if ext_lo else f[0],
+                    g[1] if ext_hi else f[1],
+                    m if ext_lo else f[2],
+                    m if ext_hi else f[3],
+                ]
+            )
         else:
             out.append(g)
     return sorted(out)
@@ -657,13 +689,13 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
         # shows a gap that is decisively noise; within a burst, the finest length that still
         # sees it whole gives its edges. (Taking the finest fragments everywhere would let a
         # weak burst's dips mask the true gaps, and bursts would merge.)
-        by_scale = {m: sorted((a, b) for a, b, mm in cl if mm == m) for m in scales}
+        by_scale = {m: _Intervals((a, b) for a, b, mm in cl if mm == m) for m in scales}
         merged = _split_by_scale(p, dof, floor, by_scale, scales[::-1], cl[0][0], reach_of(cl))
         # A piece found at smoothing length m may start up to m frames before the true edge.
         for i, (a, b, m_first, m_last) in enumerate(merged):
             left = merged[i - 1][1] if i else 0
             right = merged[i + 1][0] if i + 1 < len(merged) else n_frames
-            over = [iv for iv in cl if iv[1] > a and iv[0] < b]
+            over = [iv for m in scales for iv in by_scale[m].overlapping(a, b)]
             lo = max(left, min(iv[0] for iv in over) - 1)
             hi = min(right, max(iv[1] for iv in over) + 1)
             mid = (a + b + 1) // 2
@@ -684,17 +716,28 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
 # Edge refinement and burst figures (read back a few samples)
 # --------------------------------------------------------------------------------------------
 def _band_power_samples(
-    capture: Capture, lo: int, hi: int, band_hz: tuple[float, float] | None
+    capture: Capture,
+    lo: int,
+    hi: int,
+    band_hz: tuple[float, float] | None,
+    raw: list | None = None,
 ) -> np.ndarray:
-    """|y|² of samples [lo, hi) band-limited to band_hz (brick-wall FFT mask, padded)."""
+    """|y|² of samples [lo, hi) band-limited to band_hz (brick-wall FFT mask, padded).
+
+    ``raw``, if given, receives ``(first index, samples read)`` for reuse by the caller.
+    """
     fs = capture.sample_rate_hz
     if band_hz is None:
         x = capture.read(lo, hi - lo)
+        if raw is not None:
+            raw.append((lo, x))
         return (x.real.astype(np.float64) ** 2) + x.imag.astype(np.float64) ** 2
     width = band_hz[1] - band_hz[0]
     pad = int(math.ceil(8.0 * fs / width))
     a, b = max(0, lo - pad), min(capture.n_samples, hi + pad)
     x = capture.read(a, b - a)
+    if raw is not None:
+        raw.append((a, x))
     nfft = scipy.fft.next_fast_len(x.size + pad)
     X = scipy.fft.fft(x, nfft)
     f = scipy.fft.fftfreq(nfft, 1.0 / fs)
@@ -720,10 +763,26 @@ def _change_point(p: np.ndarray, noise: float, burst: float, rising: bool) -> in
     return int(np.argmin(c)) if rising else int(np.argmax(c))
 
 
+def _energy(x: np.ndarray) -> float:
+    """Σ|x|² in float64 (the partial frames of :func:`_mean_power`)."""
+    return float(np.sum(np.abs(x.astype(np.complex128)) ** 2))
+
+
 def _refine(
-    capture, g: _Group, L: int, band_hz, p: np.ndarray, floor: float, dof: float
+    capture,
+    g: _Group,
+    L: int,
+    band_hz,
+    p: np.ndarray,
+    floor: float,
+    dof: float,
+    end_energy: dict | None = None,
 ) -> tuple[int, int]:
-    """Edges of a group to one sample: frame-level CUSUM, then sample level around it."""
+    """Edges of a group to one sample: frame-level CUSUM, then sample level around it.
+
+    ``end_energy``, if given, receives Σ|x|² of the partial frame inside each refined edge,
+    keyed by its sample range, from the samples read here (:func:`_mean_power` needs them).
+    """
     n = capture.n_samples
     n_frames = p.size
     level = float(np.mean(p[g.start : g.stop]))
@@ -743,16 +802,28 @@ def _refine(
         b = min(hi, e + _REFINE_HALF_FRAMES)
         # A window reaching the last frame also takes the partial frame after it.
         b = n if b >= n_frames else b * L
-        t = _change_point(_band_power_samples(capture, a, b, band_hz), floor, level, rising)
-        edges.append(a + t if t is not None else e * L)
+        raw: list = []
+        t = _change_point(_band_power_samples(capture, a, b, band_hz, raw), floor, level, rising)
+        edge = a + t if t is not None else e * L
+        edges.append(edge)
+        if end_energy is not None:
+            r0, r1 = (edge, -(-edge // L) * L) if rising else (edge // L * L, edge)
+            x0, x = raw[0]
+            if r1 > r0 and x0 <= r0 and r1 <= x0 + x.size:
+                end_energy[(r0, r1)] = _energy(x[r0 - x0 : r1 - x0])
     start, stop = edges
     if stop <= start:
         start, stop = g.start * L, min(g.stop * L, n)
     return start, stop
 
 
-def _mean_power(capture: Capture, fp: FramePowers, s0: int, s1: int) -> float:
-    """Mean |x|² over samples [s0, s1): whole frames from the frame powers, ends read back."""
+def _mean_power(
+    capture: Capture, fp: FramePowers, s0: int, s1: int, end_energy: dict | None = None
+) -> float:
+    """Mean |x|² over samples [s0, s1): whole frames from the frame powers, ends read back.
+
+    ``end_energy`` may hold the partial ends' Σ|x|² already (from :func:`_refine`).
+    """
     L = fp.frame_samples
     f0, f1 = -(-s0 // L), min(s1 // L, fp.full.size)
     if f1 - f0 < 1:
@@ -761,7 +832,8 @@ def _mean_power(capture: Capture, fp: FramePowers, s0: int, s1: int) -> float:
     total = float(np.sum(fp.full[f0:f1], dtype=np.float64)) * L
     for a, b in ((s0, f0 * L), (f1 * L, s1)):
         if b > a:
-            total += float(np.sum(np.abs(capture.read(a, b - a).astype(np.complex128)) ** 2))
+            known = None if end_energy is None else end_energy.get((a, b))
+            total += _energy(capture.read(a, b - a)) if known is None else known
     return total / (s1 - s0)
 
 
@@ -832,8 +904,9 @@ def _split_long_groups(groups: list[_Group], p: np.ndarray, expected: float) -> 
             out.append(_Group(a, cut, lo_edge[0], lo_edge[1], max(a + 1, cut - w), cut + w))
             a = cut
             lo_edge = (max(a - w, 0), a + w)
-        out.append(_Group(a, g.stop, lo_edge[0], lo_edge[1], g.stop_lo, g.stop_hi) if a != g.start
-                   else g)
+        out.append(
+            _Group(a, g.stop, lo_edge[0], lo_edge[1], g.stop_lo, g.stop_hi) if a != g.start else g
+        )
     return out
 
 
@@ -986,8 +1059,11 @@ def detect_bursts(
         originals = {g.start for g in groups}
         cut_before = {i for i, g in enumerate(split) if g.start not in originals}
         groups = split
-    spans = [(*_refine(capture, g, L, band_edges, p, floor, dof), i in cut_before)
-             for i, g in enumerate(groups)]
+    end_energy: dict = {}
+    spans = [
+        (*_refine(capture, g, L, band_edges, p, floor, dof, end_energy), i in cut_before)
+        for i, g in enumerate(groups)
+    ]
     spans.sort()
     joined: list[list[int]] = []
     for s0, s1, was_cut in spans:
@@ -1008,7 +1084,7 @@ def detect_bursts(
             whole = _Group(f0, f1, max(f0 - 1, 0), f0 + 2, max(f1 - 2, f0 + 1), f1)
             pieces = _split_long_groups([whole], p, e_frames)
             for k, g in enumerate(pieces):
-                a, b = _refine(capture, g, L, band_edges, p, floor, dof)
+                a, b = _refine(capture, g, L, band_edges, p, floor, dof, end_energy)
                 again.append([s0 if k == 0 else a, s1 if k == len(pieces) - 1 else b])
         joined = again
     joined = [sp for sp in joined if sp[1] - sp[0] >= max(min_burst, 1)]
@@ -1034,7 +1110,7 @@ def detect_bursts(
         fr = slice(f0, f1) if f1 > f0 else slice(s0 // L, min(-(-s1 // L), n_frames))
         pb = float(np.mean(p[fr])) if fr.stop > fr.start else floor
         snr = (pb - floor) / floor if floor > 0 else float("inf")
-        power = _mean_power(capture, fp, s0, s1)
+        power = _mean_power(capture, fp, s0, s1, end_energy)
         peak = float(np.max(fp.full[f0:f1])) if f1 - f0 >= 2 else power
         bursts.append(
             Burst(

@@ -370,3 +370,21 @@ def test_too_short_capture_is_a_measurement_error():
     with pytest.raises(MeasurementError, match="frame_samples"):
         detect_bursts(cap)
     assert issubclass(MeasurementError, IqstatError)
+
+
+def test_interval_bisection_equals_the_scan():
+    # The grouping finds the detections overlapping [a, b) by bisection; it must return what
+    # the plain scan (y > a and x < b) returns, in order, for runs that overlap each other
+    # (extended by m − 1 frames) and, through the fallback, for ends that do not increase.
+    from iqstat.bursts import _Intervals
+
+    rng = np.random.default_rng(31)
+    starts = np.sort(rng.choice(5000, 300, replace=False))
+    runs = [(int(s), int(s) + 40) for s in starts]  # one length: starts and ends increase
+    widths = rng.integers(1, 90, 300)
+    odd = [(int(s), int(s) + int(w)) for s, w in zip(starts, widths, strict=True)]
+    for ivs in (runs, odd):
+        iv = _Intervals(ivs)
+        for a, b in rng.integers(-50, 5100, (400, 2)):
+            a, b = int(min(a, b)), int(max(a, b))
+            assert iv.overlapping(a, b) == [(x, y) for x, y in sorted(ivs) if y > a and x < b]
