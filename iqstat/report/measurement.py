@@ -132,12 +132,17 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
     if report.bursts:
         console.print(_burst_table(report.bursts, f.sample_rate_hz, max_bursts))
         console.print(
-            "  P-based: Eb/N0 from burst power and the noise in the gaps; clk: symbol "
-            "clock offset where significant",
+            "  P-based: Eb/N0 from power and gap noise; clk: clock offset if significant",
             markup=False,
             highlight=False,
             style="dim",
         )
+        for b in report.bursts[:max_bursts]:
+            if b.flags:
+                why = f" ({b.message})" if b.message and b.ebn0_db is None else ""
+                console.print(
+                    f"  burst {b.index}: {', '.join(b.flags)}{why}", markup=False, highlight=False
+                )
     _headline(report, console)
 
 
