@@ -27,12 +27,15 @@ from iqstat.errors import IqstatError, MeasurementError
 from iqstat.estimate import LinkEstimate, estimate_link, refine_link_across_bursts
 from iqstat.facts import CaptureFacts, compute_facts
 from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
+from iqstat.formats.open import open_capture
 from iqstat.patterns import BitCheck, check_known, check_prbs, clopper_pearson, prbs_bits
 from iqstat.profile import (
     FrameLayout,
     LinkProfile,
     bits_to_symbols,
     frame_layout,
+    load_profile,
+    override_profile,
     symbols_to_bits,
 )
 from iqstat.sync import FrameAlignment, SymbolTiming, align_frame, recover_timing
@@ -1007,3 +1010,38 @@ def measure_capture(
         bursts=tuple(results),
         summary=summary,
     )
+
+
+def measure_file(
+    path,
+    *,
+    profile=None,
+    modulation: str | None = None,
+    symbol_rate_hz: float | None = None,
+    tone_spacing_hz: float | None = None,
+    required_ber: float | None = None,
+    **capture_options,
+) -> MeasurementReport:
+    """Open a capture and measure it: the Python form of ``iqstat measure``.
+
+    Parameters
+    ----------
+    path : str or Path
+        The capture (see :func:`iqstat.open_capture`; ``capture_options`` such as
+        ``datatype=``, ``sample_rate_hz=``, ``channel=`` are passed on to it).
+    profile : str, Path or LinkProfile, optional
+        The link profile; the keyword arguments override its fields.
+    """
+    base = (
+        load_profile(profile)
+        if isinstance(profile, (str, bytes)) or hasattr(profile, "__fspath__")
+        else profile
+    )
+    prof = override_profile(
+        base,
+        modulation=modulation,
+        symbol_rate_hz=symbol_rate_hz,
+        tone_spacing_hz=tone_spacing_hz,
+        required_ber=required_ber,
+    )
+    return measure_capture(open_capture(path, **capture_options), prof)
