@@ -208,10 +208,14 @@ def _weighted_line(
     w=√w, cov=True) gives, without its overhead: this runs once per burst).
     """
     sw = float(w.sum())
+    if not sw > 0:
+        return 0.0, float(np.mean(y)), math.nan, math.inf  # no weight: no line
     xm = float((w * x).sum()) / sw
     ym = float((w * y).sum()) / sw
     dx = x - xm
     sxx = float((w * dx * dx).sum())
+    if not sxx > 0:
+        return 0.0, ym, math.nan, math.inf
     s = float((w * dx * (y - ym)).sum()) / sxx
     c = ym - s * xm
     r = y - (c + s * x)
@@ -356,6 +360,10 @@ def recover_timing(
     feat = d.real**2
     feat += d.imag**2
     feat = feat.max(axis=0)
+    if not feat.max() > 0:
+        raise MeasurementError(
+            "burst has no energy at the tones (all-zero samples); check the burst limits"
+        )
 
     t0_c, period_c, n_blocks, rms, se_ppm, line_snr_db, clock_txt = _coarse_timing(
         feat, period0, window, track_clock

@@ -290,3 +290,8 @@ def test_clock_line_fit_matches_numpy_polyfit():
     assert se == pytest.approx(math.sqrt(cov[0, 0]), rel=1e-9, abs=0)
     r = y - (c_ref + s_ref * x)
     assert rms == pytest.approx(math.sqrt(np.average(r**2, weights=w)), rel=1e-9, abs=0)
+
+
+def test_all_zero_burst_raises_measurement_error():
+    with pytest.raises(MeasurementError, match="no energy"):
+        recover_timing(np.zeros(30000, complex), FS, RS, [CFO - RS / 2, CFO + RS / 2])
