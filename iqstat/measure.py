@@ -291,14 +291,17 @@ def _read_burst(capture: Capture, burst: Burst, margin: int) -> tuple[int, np.nd
     return a, capture.read(a, b - a)
 
 
-def _estimate_links(capture, detection, profile, margin) -> list[LinkEstimate | None]:
-    """Per-burst link estimates; blind rates are refined across bursts, then re-estimated."""
+def _blind_rates(capture, detection, profile, margin) -> tuple[float | None, float | None]:
+    """Symbol rate and tone spacing from blind per-burst estimates, refined across bursts.
+
+    Only for what the profile does not give; returns the profile's values otherwise.
+    """
     fs = capture.sample_rate_hz
-    out: list[LinkEstimate | None] = []
+    good = []
     for burst in detection.bursts:
         _, x = _read_burst(capture, burst, margin)
         try:
-            out.append(
+            good.append(
                 estimate_link(
                     x,
                     fs,
@@ -308,35 +311,12 @@ def _estimate_links(capture, detection, profile, margin) -> list[LinkEstimate | 
                 )
             )
         except MeasurementError:
-            out.append(None)
-    blind = profile.symbol_rate_hz is None or (
-        profile.modulation != "ook" and profile.tone_spacing_hz is None
-    )
-    good = [e for e in out if e is not None]
-    if blind and len(good) > 1:
-        weights = [e.quality.get("n_symbols", 1) or 1 for e in good]
-        rate, spacing = refine_link_across_bursts(good, weights)
-        refined = []
-        for burst, e in zip(detection.bursts, out, strict=True):
-            if e is None:
-                refined.append(None)
-                continue
-            _, x = _read_burst(capture, burst, margin)
-            try:
-                refined.append(
-                    estimate_link(
-                        x,
-                        fs,
-                        modulation=profile.modulation,
-                        symbol_rate_hz=rate,
-                        tone_spacing_hz=spacing if profile.modulation != "ook" else None,
-                    )
-                )
-            except MeasurementError:
-                refined.append(None)
-        # Keep the provenance honest: these rates were estimated, not given.
-        out = [None if e is None else _as_estimated(e, profile) for e in refined]
-    return out
+            continue
+    if not good:
+        return profile.symbol_rate_hz, profile.tone_spacing_hz
+    weights = [e.quality.get("n_symbols", 1) or 1 for e in good]
+    rate, spacing = refine_link_across_bursts(good, weights)
+    return rate, (spacing if profile.modulation != "ook" else None)
 
 
 def _as_estimated(e: LinkEstimate, profile: LinkProfile) -> LinkEstimate:
@@ -506,12 +486,18 @@ def _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile):
 def measure_burst(
     capture: Capture,
     burst: Burst,
-    link: LinkEstimate | None,
     profile: LinkProfile,
     layout: FrameLayout,
     detection: BurstDetection,
+    *,
+    symbol_rate_hz: float,
+    tone_spacing_hz: float | None,
 ) -> BurstResult:
-    """Synchronise, correlate, fit and check one burst (see :func:`measure_capture`)."""
+    """Estimate the carrier, synchronise, correlate, fit and check one burst.
+
+    ``symbol_rate_hz`` and ``tone_spacing_hz`` are the link's (from the profile, or refined
+    across bursts by :func:`measure_capture` when the profile lacks them).
+    """
     flags: list[str] = []
     base = dict(
         index=burst.index,
@@ -519,6 +505,23 @@ def measure_burst(
         stop_sample=burst.stop_sample,
         power_dbfs=burst.power_dbfs,
     )
+    fs = capture.sample_rate_hz
+    sps = fs / symbol_rate_hz
+    margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * sps))
+    x0, x = _read_burst(capture, burst, margin)
+    try:
+        link = _as_estimated(
+            estimate_link(
+                x,
+                fs,
+                modulation=profile.modulation,
+                symbol_rate_hz=symbol_rate_hz,
+                tone_spacing_hz=tone_spacing_hz,
+            ),
+            profile,
+        )
+    except MeasurementError:
+        link = None
     if link is None:
         return BurstResult(
             **base,
@@ -535,10 +538,6 @@ def measure_burst(
             flags=("link-not-estimated",),
             message="carrier and rates could not be estimated on this burst",
         )
-    fs = capture.sample_rate_hz
-    sps = fs / link.symbol_rate_hz
-    margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * sps))
-    x0, x = _read_burst(capture, burst, margin)
     cum = mix_cumulative(x, fs, link.tone_freqs_hz)
     timing = recover_timing(x, fs, link.symbol_rate_hz, link.tone_freqs_hz, cumulative=cum)
     lo_edge, hi_edge = burst.start_sample - x0 - 0.5 * sps, burst.stop_sample - x0 + 0.5 * sps
@@ -881,10 +880,33 @@ def _theory_rho(rho_abs: np.ndarray, modulation: str):
     return 0.0
 
 
-def _measure_burst_safely(capture, burst, link, profile, layout, detection) -> BurstResult:
+def _unmeasured(burst: Burst, flag: str, message: str, link=None) -> BurstResult:
+    return BurstResult(
+        index=burst.index,
+        start_sample=burst.start_sample,
+        stop_sample=burst.stop_sample,
+        power_dbfs=burst.power_dbfs,
+        symbols=0,
+        link=link,
+        timing=None,
+        frame=None,
+        fit=None,
+        fit_da=None,
+        fit_dd=None,
+        bit_check=None,
+        available_ebn0_db=None,
+        predicted_ber=None,
+        flags=(flag,),
+        message=message,
+    )
+
+
+def _measure_burst_safely(capture, burst, profile, layout, detection, rate, spacing):
     """:func:`measure_burst`, with a burst that cannot be measured reported, not raised."""
     try:
-        return measure_burst(capture, burst, link, profile, layout, detection)
+        return measure_burst(
+            capture, burst, profile, layout, detection, symbol_rate_hz=rate, tone_spacing_hz=spacing
+        )
     except MeasurementError as exc:
         return BurstResult(
             index=burst.index,
@@ -892,7 +914,7 @@ def _measure_burst_safely(capture, burst, link, profile, layout, detection) -> B
             stop_sample=burst.stop_sample,
             power_dbfs=burst.power_dbfs,
             symbols=0,
-            link=link,
+            link=None,
             timing=None,
             frame=None,
             fit=None,
@@ -981,13 +1003,28 @@ def measure_capture(
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))
-    links = _estimate_links(capture, detection, profile, margin)
-    results = [
-        _measure_burst_safely(capture, b, e, profile, layout, detection)
-        for b, e in zip(detection.bursts, links, strict=True)
-    ]
+    blind = profile.symbol_rate_hz is None or (
+        profile.modulation != "ook" and profile.tone_spacing_hz is None
+    )
+    rate, spacing = profile.symbol_rate_hz, profile.tone_spacing_hz
+    if blind and detection.bursts:
+        rate, spacing = _blind_rates(capture, detection, profile, margin)
+    if rate is not None:
+        results = [
+            _measure_burst_safely(capture, b, profile, layout, detection, rate, spacing)
+            for b in detection.bursts
+        ]
+    else:
+        results = [
+            _unmeasured(
+                b,
+                "link-not-estimated",
+                "the symbol rate could not be estimated on any burst; give it with --symbol-rate",
+            )
+            for b in detection.bursts
+        ]
     mismatch = _check_profile_rates(capture, detection, profile, margin)
-    good_links = [e for e in links if e is not None]
+    good_links = [r.link for r in results if r.link is not None]
     rho_display, rho_theory = None, 0.0
     if good_links and profile.modulation != "ook":
         g = good_links[0]

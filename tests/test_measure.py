@@ -222,3 +222,33 @@ def test_measure_cli_bad_inputs(tmp_path):
         assert r.exit_code == 2, (args, r.stdout, r.stderr)
         lines = [ln for ln in r.stderr.splitlines() if ln.strip()]
         assert len(lines) == 1 and match in lines[0], r.stderr
+
+
+def test_blind_rates_when_the_profile_omits_them():
+    """Issue requirement: symbol rate within 100 ppm, tone spacing within 1 % (10 dB+ bursts).
+
+    reservoir_drift's truth: 4.8 kBd from a transmitter clock 20 ppm fast, tone spacing
+    4.8 kHz (sample_captures/reservoir_drift.toml).
+    """
+    from pathlib import Path
+
+    samples = Path(__file__).resolve().parents[1] / "sample_captures"
+    profile = profile_from_dict(
+        {
+            "link": {"modulation": "2fsk"},
+            "frame": {
+                "preamble": "aaaaaaaa",
+                "sync_word": "2dd4",
+                "payload": "pn9",
+                "payload_bits": 400,
+            },
+        }
+    )
+    from iqstat.formats.open import open_capture
+
+    report = measure_capture(open_capture(samples / "reservoir_drift.sigmf-meta"), profile)
+    assert report.link.symbol_rate_source == "estimated"
+    assert abs(report.link.symbol_rate_hz / (RS * (1 + 20e-6)) - 1) < 100e-6
+    assert abs(report.link.tone_spacing_hz / 4800.0 - 1) < 0.01
+    assert report.summary.bits_checked == 2400
+    assert abs(report.summary.ebn0_db - 14.0) < 0.5
