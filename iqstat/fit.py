@@ -802,6 +802,48 @@ def _ks_uniform(u: np.ndarray) -> tuple[float, float]:
     return d, float(special.kolmogorov((rn + 0.12 + 0.11 / rn) * d))
 
 
+#: Block lengths of the successive passes of :func:`_ks_monotone` (then every value left).
+_KS_BLOCKS = (16, 4)
+
+
+def _ks_monotone(y_sorted: np.ndarray, cdf) -> tuple[float, float]:
+    """The KS test of :func:`_ks_uniform` on cdf(y) for a nondecreasing cdf and sorted y.
+
+    The statistic D = max_k max((k + 1)/n − F_k, F_k − k/n), F_k = cdf(y_k), is the same
+    number, but F is evaluated only where it can matter: between two evaluated points i0 < i1,
+    monotonicity bounds every deviation inside by max(i1/n − F_i0, F_i1 − (i0 + 1)/n), and an
+    interval whose bound does not exceed the largest deviation found so far is skipped.
+    Passes at every 16th, then every 4th value of the open intervals, then all values left
+    (at 540 symbols about a quarter of the CDF evaluations; fewer for more symbols).
+    """
+    n = y_sorted.size
+    f = np.empty(n)
+    known = np.zeros(n, dtype=bool)
+    new = np.arange(0, n, _KS_BLOCKS[0])
+    if new[-1] != n - 1:
+        new = np.r_[new, n - 1]
+    d = 0.0
+    for block in (*_KS_BLOCKS[1:], 1, 0):
+        if new.size:
+            f[new] = cdf(y_sorted[new])
+            known[new] = True
+            d = max(d, float(np.max(np.maximum((new + 1) / n - f[new], f[new] - new / n))))
+        if block == 0:
+            break
+        ev = np.flatnonzero(known)
+        lo, hi = ev[:-1], ev[1:]
+        bound = np.maximum(hi / n - f[lo], f[hi] - (lo + 1) / n)
+        keep = (bound > d) & (hi - lo > 1)
+        lo, hi = lo[keep], hi[keep]
+        # every block-th index strictly inside each open interval (lo, hi)
+        count = (hi - lo - 1) // block
+        first = np.cumsum(count) - count
+        step = np.arange(int(count.sum())) - np.repeat(first, count) + 1
+        new = np.repeat(lo, count) + block * step
+    rn = math.sqrt(n)
+    return d, float(special.kolmogorov((rn + 0.12 + 0.11 / rn) * d))
+
+
 def check_energy_laws(
     z: np.ndarray,
     *,
@@ -857,19 +899,42 @@ def check_energy_laws(
     sub = zz[idx]
     energy = sub.real**2 + sub.imag**2
     sym = None if symbols is None else np.asarray(symbols)[idx]
-    cdf = branch_energy_cdf(
-        energy,
-        amplitude=amplitude,
-        noise_var=noise_var,
-        gram=gram,
-        modulation=modulation,
-        priors=priors,
-        symbols=sym,
-    )
-    tests = [_ks_uniform(cdf[:, j]) for j in range(m)]
+    if sym is None:
+        # Marginal laws: each branch's transform is a monotone function of its energy, so the
+        # KS statistic can be found evaluating the CDF only where it can matter.
+        _check_modulation(modulation)
+        if not (math.isfinite(noise_var) and noise_var > 0):
+            raise ParameterError(f"noise_var {noise_var!r} must be a positive finite number")
+        if not (math.isfinite(amplitude) and amplitude >= 0):
+            raise ParameterError(f"amplitude {amplitude!r} must be a finite number >= 0")
+        r, _ = _check_gram(gram if modulation != "ook" else None, m)
+        pi = _check_priors(priors, modulation)
+        lam = _noncentrality(amplitude, noise_var, r, modulation)
+        y = energy / (0.5 * noise_var)
+        tests = []
+        for j in range(m):  # branches, each vectorised over symbols
+
+            def cdf(v, j=j):
+                out = pi[0] * _chi2_2_cdf(v, lam[0, j])  # same sums as branch_energy_cdf
+                for h in range(1, len(pi)):
+                    out += pi[h] * _chi2_2_cdf(v, lam[h, j])
+                return np.clip(out, 0.0, 1.0)
+
+            tests.append(_ks_monotone(np.sort(y[:, j]), cdf))
+    else:
+        cdf = branch_energy_cdf(
+            energy,
+            amplitude=amplitude,
+            noise_var=noise_var,
+            gram=gram,
+            modulation=modulation,
+            priors=priors,
+            symbols=sym,
+        )
+        tests = [_ks_uniform(cdf[:, j]) for j in range(m)]
     statistic = max(t[0] for t in tests)
     pvalue = min(1.0, m * min(t[1] for t in tests))  # Bonferroni over branches
-    return statistic, pvalue, int(cdf.size)
+    return statistic, pvalue, int(energy.size)
 
 
 # --------------------------------------------------------------------------------------------

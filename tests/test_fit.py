@@ -682,3 +682,27 @@ def test_chi2_cdf_against_scipy_noncentral_law(lam):
     ref = stats.chi2.cdf(y, 2) if lam == 0 else stats.ncx2.cdf(y, 2, lam)
     tol = (lam / 2) ** 2 / 2 + 1e-14 if lam < 1e-4 else 1e-12
     assert np.max(np.abs(_chi2_2_cdf(y, lam) - ref)) <= tol
+
+
+@pytest.mark.parametrize(("modulation", "n"), [("2fsk", 540), ("4fsk", 333), ("ook", 1000)])
+def test_gof_statistic_equals_scipy_kstest(modulation, n):
+    # check_energy_laws evaluates the CDF only where the KS maximum can be; its statistic
+    # must be scipy.stats.kstest's on the full probability-integral transform.
+    from scipy import stats
+
+    from iqstat.fit import N_BRANCHES
+
+    rng = np.random.default_rng(n)
+    m = N_BRANCHES[modulation]
+    sym = rng.integers(0, 2 if modulation == "ook" else m, n)
+    z = (rng.standard_normal((n, m)) + 1j * rng.standard_normal((n, m))) * np.sqrt(0.5)
+    phase = np.exp(1j * rng.uniform(0, 2 * np.pi, n))
+    if modulation == "ook":
+        z[:, 0] += 3.0 * sym * phase
+    else:
+        z[np.arange(n), sym] += 3.0 * phase
+    stat, _, n_values = check_energy_laws(z, amplitude=3.1, noise_var=0.95, modulation=modulation)
+    u = branch_energy_cdf(np.abs(z) ** 2, amplitude=3.1, noise_var=0.95, modulation=modulation)
+    ref = max(stats.kstest(u[:, j], "uniform").statistic for j in range(m))
+    assert n_values == n * m
+    assert stat == pytest.approx(ref, rel=1e-12, abs=0)
