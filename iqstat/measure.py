@@ -928,6 +928,31 @@ def _measure_burst_safely(capture, burst, profile, layout, detection, rate, spac
         )
 
 
+def _profile_mismatch(
+    results: list[BurstResult], rate_flags: tuple[str, ...], layout: FrameLayout
+) -> str | None:
+    """Why the profile evidently does not describe the capture, or None.
+
+    Evidence: the capture's blind symbol rate or tone spacing contradicts the profile's; or,
+    among the measured bursts, most fail the energy-law test while the frame is found in
+    fewer than half; or most frames match their header far worse than their payload.
+    """
+    if rate_flags:
+        return ", ".join(f.replace("-", " ") for f in rate_flags)
+    measured = [r for r in results if r.fit is not None]
+    if not measured:
+        return None
+    n = len(measured)
+    not_awgn = sum("not-awgn" in r.flags for r in measured)
+    framed = sum(r.frame is not None and r.frame.found for r in measured)
+    header_bad = sum("header-mismatch" in r.flags for r in measured)
+    if layout.n_header_bits and not_awgn >= 0.5 * n and framed < 0.5 * n:
+        return "branch energies do not follow the model and the frame is rarely found"
+    if header_bad >= 0.5 * n:
+        return "headers match far worse than payloads"
+    return None
+
+
 def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]:
     """Blind estimate on the longest burst, compared with the rates the profile gives."""
     if not detection.bursts or (profile.symbol_rate_hz is None and profile.tone_spacing_hz is None):
@@ -1039,6 +1064,22 @@ def measure_capture(
     summary = _summarise(results, profile, link_sum, facts, detection, rho_theory)
     if mismatch:
         summary = dataclasses.replace(summary, flags=tuple(dict.fromkeys(summary.flags + mismatch)))
+    reason = _profile_mismatch(results, mismatch, layout)
+    if reason is not None and summary.ebn0_db is not None:
+        # The model the figures rest on does not describe this capture: report what was seen
+        # per burst, but no headline figure.
+        summary = dataclasses.replace(
+            summary,
+            ebn0_db=None,
+            ebn0_db_ci95=None,
+            esn0_db=None,
+            predicted_ber=None,
+            margin_db=None,
+            worst_burst_margin_db=None,
+            flags=tuple(dict.fromkeys((*summary.flags, "profile-mismatch"))),
+            message=f"the capture does not match the profile ({reason}): no headline figure; "
+            "check the modulation, rates and frame",
+        )
     return MeasurementReport(
         facts=facts,
         profile=profile,

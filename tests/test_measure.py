@@ -252,3 +252,37 @@ def test_blind_rates_when_the_profile_omits_them():
     assert abs(report.link.tone_spacing_hz / 4800.0 - 1) < 0.01
     assert report.summary.bits_checked == 2400
     assert abs(report.summary.ebn0_db - 14.0) < 0.5
+
+
+def test_wrong_modulation_gives_no_headline_figure():
+    """A 2-FSK capture measured as 4-FSK: flagged, per-burst values kept, no made-up headline."""
+    from pathlib import Path
+
+    from iqstat.formats.open import open_capture
+    from iqstat.profile import load_profile, override_profile
+
+    samples = Path(__file__).resolve().parents[1] / "sample_captures"
+    profile = override_profile(load_profile(samples / "link.toml"), modulation="4fsk")
+    report = measure_capture(open_capture(samples / "reservoir_clean.sigmf-meta"), profile)
+    s = report.summary
+    assert "profile-mismatch" in s.flags
+    assert s.ebn0_db is None and s.margin_db is None and s.predicted_ber is None
+    assert "does not match the profile" in s.message
+    json.dumps(report_to_dict(report), allow_nan=False)
+
+
+def test_clipped_capture_is_flagged(tmp_path):
+    """A receiver overdriven past its converter's full scale: ci16 samples saturate."""
+    from iqstat.formats.open import open_capture
+    from iqstat.formats.sigmf_writer import write_recording
+
+    doc = _doc("2fsk", 20.0, count=2)
+    syn = synthesize(scenario_from_dict(doc), seed=4)
+    peak = float(np.max(np.abs(syn.samples)))
+    meta, _ = write_recording(
+        tmp_path / "hot", syn.samples * (2.0 / peak), datatype="ci16_le", sample_rate_hz=FS
+    )
+    profile = profile_from_dict({k: doc[k] for k in ("link", "frame", "requirement")})
+    report = measure_capture(open_capture(meta), profile)
+    assert "clipping" in report.summary.flags
+    assert report.facts.clipped_fraction > 1e-4

@@ -32,6 +32,7 @@ FLAG_TEXT = {
     "clipping": "samples at full scale: the receiver front end was overdriven",
     "real-valued-capture": "real-valued recording: complex baseband is needed",
     "sync-not-found": "the profile's preamble/sync word was not found in some bursts",
+    "profile-mismatch": "the capture does not match the profile: no headline figure",
     "header-mismatch": "header errors far above the payload's: check the preamble/sync word",
     "pattern-not-locked": "the known payload pattern did not lock in some bursts",
     "not-awgn": "branch energies do not follow the white-noise laws (interference, fading?)",
