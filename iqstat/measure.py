@@ -523,20 +523,8 @@ def measure_burst(
     except MeasurementError:
         link = None
     if link is None:
-        return BurstResult(
-            **base,
-            symbols=0,
-            link=None,
-            timing=None,
-            frame=None,
-            fit=None,
-            fit_da=None,
-            fit_dd=None,
-            bit_check=None,
-            available_ebn0_db=None,
-            predicted_ber=None,
-            flags=("link-not-estimated",),
-            message="carrier and rates could not be estimated on this burst",
+        return _unmeasured(
+            burst, "link-not-estimated", "carrier and rates could not be estimated on this burst"
         )
     cum = mix_cumulative(x, fs, link.tone_freqs_hz)
     timing = recover_timing(x, fs, link.symbol_rate_hz, link.tone_freqs_hz, cumulative=cum)
@@ -563,20 +551,13 @@ def measure_burst(
     k0, k1 = _symbols_inside(timing, lo_edge, hi_edge)
     z_in = z_all[k0:k1]
     if len(z_in) < MIN_FIT_SYMBOLS:
-        return BurstResult(
-            **base,
-            symbols=len(z_in),
+        return _unmeasured(
+            burst,
+            "too-few-symbols",
+            f"only {len(z_in)} whole symbols: too few to fit",
             link=link,
             timing=timing,
-            frame=None,
-            fit=None,
-            fit_da=None,
-            fit_dd=None,
-            bit_check=None,
-            available_ebn0_db=None,
-            predicted_ber=None,
-            flags=("too-few-symbols",),
-            message=f"only {len(z_in)} whole symbols: too few to fit",
+            symbols=len(z_in),
         )
     if m == "ook":
         # The decision threshold depends on the fitted amplitude and noise.
@@ -880,15 +861,18 @@ def _theory_rho(rho_abs: np.ndarray, modulation: str):
     return 0.0
 
 
-def _unmeasured(burst: Burst, flag: str, message: str, link=None) -> BurstResult:
+def _unmeasured(
+    burst: Burst, flag: str, message: str, *, link=None, timing=None, symbols: int = 0
+) -> BurstResult:
+    """The result of a burst that could not be measured (what is known, and why not)."""
     return BurstResult(
         index=burst.index,
         start_sample=burst.start_sample,
         stop_sample=burst.stop_sample,
         power_dbfs=burst.power_dbfs,
-        symbols=0,
+        symbols=symbols,
         link=link,
-        timing=None,
+        timing=timing,
         frame=None,
         fit=None,
         fit_da=None,
@@ -908,24 +892,7 @@ def _measure_burst_safely(capture, burst, profile, layout, detection, rate, spac
             capture, burst, profile, layout, detection, symbol_rate_hz=rate, tone_spacing_hz=spacing
         )
     except MeasurementError as exc:
-        return BurstResult(
-            index=burst.index,
-            start_sample=burst.start_sample,
-            stop_sample=burst.stop_sample,
-            power_dbfs=burst.power_dbfs,
-            symbols=0,
-            link=None,
-            timing=None,
-            frame=None,
-            fit=None,
-            fit_da=None,
-            fit_dd=None,
-            bit_check=None,
-            available_ebn0_db=None,
-            predicted_ber=None,
-            flags=("not-measured",),
-            message=str(exc),
-        )
+        return _unmeasured(burst, "not-measured", str(exc))
 
 
 def _profile_mismatch(
