@@ -404,22 +404,23 @@ def _search_timing(
         if not ok.any():
             break
         grid, edges = grid[ok], edges[ok]
-        e = interval_energies(cum, np.ceil(edges).astype(np.int64))  # (C, K, M)
-        base = e.mean(axis=-1)
-        if e.shape[-1] == 1:
+        # Tones first, (M, C, K): reducing over a short leading axis is fast.
+        e = interval_energies(cum, np.ceil(edges).astype(np.int64), tones_first=True)
+        base = e.mean(axis=0)
+        if e.shape[0] == 1:
             # OOK, one branch: the contrast between "on" and "off" symbols.
             if known is None:
-                score = e[..., 0].var(axis=-1)
+                score = e[0].var(axis=-1)
             else:
-                kk = np.asarray(known[: e.shape[1]])
-                score = (e[..., 0] * np.where(kk >= 0, 2.0 * kk - 1.0, 0.0)).sum(axis=-1)
+                kk = np.asarray(known[: e.shape[2]])
+                score = (e[0] * np.where(kk >= 0, 2.0 * kk - 1.0, 0.0)).sum(axis=-1)
         elif known is None:
-            score = (e.max(axis=-1) - base).sum(axis=-1)
+            score = (e.max(axis=0) - base).sum(axis=-1)
         else:
-            kk = np.asarray(known[: e.shape[1]])
+            kk = np.asarray(known[: e.shape[2]])
             use = kk >= 0
-            idx = np.where(use, kk, 0)
-            own = np.take_along_axis(e, idx[None, :, None].repeat(len(grid), 0), -1)[..., 0]
+            idx = np.broadcast_to(np.where(use, kk, 0)[None, None, :], (1, *e.shape[1:]))
+            own = np.take_along_axis(e, idx, axis=0)[0]
             score = ((own - base) * use).sum(axis=-1)
         best = float(grid[int(np.argmax(score))])
     t_new = t0 + best * p
@@ -543,7 +544,13 @@ def measure_burst(
             np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
         )
     z_all = correlate_symbols(
-        x, fs, link.tone_freqs_hz, timing.t0_samples, timing.period_samples, timing.n_symbols
+        x,
+        fs,
+        link.tone_freqs_hz,
+        timing.t0_samples,
+        timing.period_samples,
+        timing.n_symbols,
+        cumulative=cum,
     )
     gram = template_gram(link.tone_freqs_hz, timing.period_samples, fs)
     m = profile.modulation
@@ -641,7 +648,13 @@ def measure_burst(
             sel = (max(sel[0], 0), min(sel[1], timing.n_symbols))
             known = known[: sel[1] - sel[0]]
         z_all = correlate_symbols(
-            x, fs, link.tone_freqs_hz, timing.t0_samples, timing.period_samples, timing.n_symbols
+            x,
+            fs,
+            link.tone_freqs_hz,
+            timing.t0_samples,
+            timing.period_samples,
+            timing.n_symbols,
+            cumulative=cum,
         )
     z = z_all[sel[0] : sel[1]]
     fit = fit_nda(z, gram, modulation=m)
