@@ -218,8 +218,8 @@ def measure(
     """Eb/N0 with its confidence interval, predicted and measured BER, and margin."""
     from iqstat.measure import measure_capture
     from iqstat.profile import load_profile, override_profile
-    from iqstat.report.jsonio import write_json
-    from iqstat.report.measurement import render_report, report_to_dict
+    from iqstat.report.jsonio import write_text
+    from iqstat.report.measurement import render_report, report_json_pieces
 
     base = load_profile(profile) if profile is not None else None
     prof = override_profile(
@@ -234,7 +234,7 @@ def measure(
     )
     report = measure_capture(cap, prof)
     if json_path is not None:
-        write_json(report_to_dict(report), json_path)
+        write_text(report_json_pieces(report), json_path)
     if json_path != "-":
         render_report(report, Console(highlight=False))
 

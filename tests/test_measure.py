@@ -286,3 +286,18 @@ def test_clipped_capture_is_flagged(tmp_path):
     report = measure_capture(open_capture(meta), profile)
     assert "clipping" in report.summary.flags
     assert report.facts.clipped_fraction > 1e-4
+
+
+def test_streamed_json_equals_the_document():
+    """The CLI writes the report burst by burst; the text parses to report_to_dict's."""
+    from pathlib import Path
+
+    from iqstat.formats.open import open_capture
+    from iqstat.profile import load_profile
+    from iqstat.report.measurement import report_json_pieces
+
+    samples = Path(__file__).resolve().parents[1] / "sample_captures"
+    report = measure_capture(
+        open_capture(samples / "reservoir_drift.sigmf-meta"), load_profile(samples / "link.toml")
+    )
+    assert json.loads("".join(report_json_pieces(report))) == report_to_dict(report)

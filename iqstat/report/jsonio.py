@@ -7,6 +7,7 @@ import math
 import os
 import sys
 import tempfile
+from collections.abc import Iterable
 from pathlib import Path
 
 import numpy as np
@@ -38,9 +39,18 @@ def dumps(obj) -> str:
 
 def write_json(obj, target: str | Path) -> None:
     """Write JSON to a path (atomically, via a temporary file) or to stdout for ``-``."""
-    text = dumps(obj)
+    write_text(iter([dumps(obj)]), target)
+
+
+def write_text(pieces: Iterable[str], target: str | Path) -> None:
+    """Write text pieces to a path (atomically) or to stdout for ``-``, streaming them.
+
+    Nothing is left at ``target`` unless the whole text was written: the pieces go to a
+    temporary file in the same folder that replaces ``target`` at the end.
+    """
     if str(target) == "-":
-        sys.stdout.write(text)
+        for piece in pieces:
+            sys.stdout.write(piece)
         return
     path = Path(target)
     if path.is_dir():
@@ -50,7 +60,8 @@ def write_json(obj, target: str | Path) -> None:
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
+            for piece in pieces:
+                f.write(piece)
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

@@ -6,7 +6,9 @@ Unknown values are ``null``: never omitted, never NaN.
 
 from __future__ import annotations
 
+import json
 import math
+from collections.abc import Iterator
 
 from rich.console import Console
 from rich.markup import escape
@@ -15,7 +17,7 @@ from rich.text import Text
 
 from iqstat import __version__
 from iqstat.measure import BurstResult, MeasurementReport
-from iqstat.report.jsonio import json_safe
+from iqstat.report.jsonio import dumps, json_safe
 
 FORMAT = "iqstat-report"
 FORMAT_VERSION = 1
@@ -52,6 +54,29 @@ FLAG_TEXT = {
 
 def report_to_dict(report: MeasurementReport) -> dict:
     """The JSON document of a measurement (see docs/report-format.md)."""
+    d = _document(report)
+    d["bursts"] = [json_safe(b.to_dict()) for b in report.bursts]
+    return d
+
+
+def report_json_pieces(report: MeasurementReport) -> Iterator[str]:
+    """The same document as :func:`report_to_dict`, as text pieces, one burst at a time.
+
+    A capture with tens of thousands of bursts would otherwise need its whole document and
+    its text in memory at once; each burst is written on one line.
+    """
+    marker = '"__bursts__"'
+    head, tail = dumps({**_document(report), "bursts": "__bursts__"}).split(marker)
+    yield head + "["
+    for i, b in enumerate(report.bursts):
+        yield ("\n    " if i == 0 else ",\n    ") + json.dumps(
+            json_safe(b.to_dict()), allow_nan=False
+        )
+    yield ("\n  ]" if report.bursts else "]") + tail
+
+
+def _document(report: MeasurementReport) -> dict:
+    """Everything of the JSON document but the bursts."""
     f = report.facts
     s = report.summary
     d = {
@@ -77,7 +102,7 @@ def report_to_dict(report: MeasurementReport) -> dict:
         },
         "profile": report.profile.to_dict(),
         "link": report.link.to_dict(),
-        "bursts": [b.to_dict() for b in report.bursts],
+        "bursts": [],
         "summary": s.to_dict(),
     }
     return json_safe(d)
