@@ -43,7 +43,7 @@ seed = 77
 count = {count}
 ebn0_db = {{uniform = [6.0, 20.0]}}
 cfo_hz = {{uniform = [-3000.0, 3000.0]}}
-gap_s = {{uniform = [0.02, 0.06]}}
+gap_s = {{uniform = [{gap_lo}, {gap_hi}]}}
 [impairments]
 clock_offset_ppm = 20.0
 """
@@ -65,14 +65,15 @@ ber = 1e-4
 ENV = dict(os.environ, OMP_NUM_THREADS="1", OPENBLAS_NUM_THREADS="1", MKL_NUM_THREADS="1")
 
 
-def make(dirpath: Path, name: str, n_samples: float) -> Path:
+def make(dirpath: Path, name: str, n_samples: float, gap_s: tuple[float, float]) -> Path:
     meta = dirpath / f"{name}.sigmf-meta"
     if meta.exists():
         return meta
-    # one burst + gap ≈ 0.117 s + 0.04 s ≈ 39 k samples
-    count = max(1, int(n_samples / 39_300))
+    # one burst ≈ 0.117 s (560 symbols) + the mean gap
+    per_burst = (560 / 4800 + 0.5 * (gap_s[0] + gap_s[1])) * 250e3
+    count = max(1, int(n_samples / per_burst))
     sc = dirpath / f"{name}.toml"
-    sc.write_text(SCENARIO.format(count=count))
+    sc.write_text(SCENARIO.format(count=count, gap_lo=gap_s[0], gap_hi=gap_s[1]))
     subprocess.run(
         [sys.executable, "-m", "iqstat.cli", "synth", str(sc), "--out", str(dirpath)],
         check=True,
@@ -127,6 +128,26 @@ def bare_pass(meta: Path) -> float:
     return float(out.stdout.strip())
 
 
+def naive_pass(meta: Path) -> float:
+    """The plainest numpy version: read the whole file, convert, |x|² (whole-array temporaries)."""
+    data = meta.with_suffix(".sigmf-data")
+    code = (
+        "import numpy as np, time\n"
+        "t0 = time.perf_counter()\n"
+        f"x = np.fromfile({str(data)!r}, dtype='<i2').astype(np.float32).view(np.complex64)\n"
+        "p = float((np.abs(x) ** 2).sum())\n"
+        "print(time.perf_counter() - t0)\n"
+    )
+    out = subprocess.run(
+        ["taskset", "-c", "0", sys.executable, "-c", code],
+        check=True,
+        env=ENV,
+        capture_output=True,
+        text=True,
+    )
+    return float(out.stdout.strip())
+
+
 def warm(meta: Path) -> None:
     with open(meta.with_suffix(".sigmf-data"), "rb") as f:
         while f.read(1 << 26):
@@ -138,20 +159,35 @@ def main() -> None:
     ap.add_argument("--dir", default="/tmp/iqstat_bench_measure")
     ap.add_argument("--big-gigabytes", type=float, default=2.0)
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument(
+        "--gap-s",
+        type=float,
+        nargs=2,
+        default=(0.02, 0.06),
+        metavar=("LO", "HI"),
+        help="noise gaps between bursts, uniform in [LO, HI] seconds (default "
+        "0.02 0.06: bursts fill ~75 %% of the capture)",
+    )
     args = ap.parse_args()
+    gap = tuple(args.gap_s)
+    tag = f"g{gap[0]:g}-{gap[1]:g}"
     d = Path(args.dir)
     d.mkdir(parents=True, exist_ok=True)
     profile = d / "link.toml"
     profile.write_text(PROFILE)
-    small, large = make(d, "m10", 10e6), make(d, "m40", 40e6)
+    small, large = make(d, f"m10{tag}", 10e6, gap), make(d, f"m40{tag}", 40e6, gap)
     n10 = small.with_suffix(".sigmf-data").stat().st_size // 4
     n40 = large.with_suffix(".sigmf-data").stat().st_size // 4
     for m in (small, large):
         warm(m)
     t10 = min(run_measure(small, profile) for _ in range(args.repeats))
     t40 = min(run_measure(large, profile) for _ in range(args.repeats))
+    # Before any other child runs: the high-water mark of the children so far is measure's.
+    rss_small = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     b10 = min(bare_pass(small) for _ in range(args.repeats))
     b40 = min(bare_pass(large) for _ in range(args.repeats))
+    w10 = min(naive_pass(small) for _ in range(args.repeats))
+    w40 = min(naive_pass(large) for _ in range(args.repeats))
     t0 = time.perf_counter()
     subprocess.run(
         [sys.executable, "-m", "iqstat.cli", "--version"],
@@ -160,10 +196,13 @@ def main() -> None:
         stdout=subprocess.DEVNULL,
     )
     t_start = time.perf_counter() - t0
-    rss_small = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     marg = (n40 - n10) / (t40 - t10)
     marg_bare = (n40 - n10) / (b40 - b10)
-    print(f"captures: {n10:,} and {n40:,} samples (ci16_le, 250 kS/s, 2-FSK bursts + gaps)")
+    duty = (560 / 4800) / (560 / 4800 + 0.5 * (gap[0] + gap[1]))
+    print(
+        f"captures: {n10:,} and {n40:,} samples (ci16_le, 250 kS/s, 2-FSK bursts of 560 "
+        f"symbols, gaps {gap[0]:g}-{gap[1]:g} s: bursts fill ~{100 * duty:.0f} %)"
+    )
     print(f"iqstat measure: {t10:.2f} s and {t40:.2f} s (one core, best of {args.repeats})")
     print(
         f"marginal throughput: {marg / 1e6:.1f} M samples/s "
@@ -174,10 +213,15 @@ def main() -> None:
         f"{marg_bare / 1e6:.1f} M samples/s"
     )
     print(f"marginal time ratio measure/bare: {(t40 - t10) / (b40 - b10):.2f}")
+    print(
+        f"naive numpy (np.fromfile whole file, astype, |x|^2): {w10:.3f} s and {w40:.3f} s "
+        f"-> marginal {(n40 - n10) / (w40 - w10) / 1e6:.1f} M samples/s; ratio measure/naive "
+        f"{(t40 - t10) / (w40 - w10):.2f}"
+    )
     print(f"start-up (iqstat --version): {t_start:.2f} s")
     print(f"peak RSS (10 M / 40 M runs): {rss_small:.0f} MB")
     if args.big_gigabytes > 0:
-        big = make(d, "big", args.big_gigabytes * 1e9 / 4)
+        big = make(d, f"big{tag}", args.big_gigabytes * 1e9 / 4, gap)
         warm(big)
         cmd = [
             "/usr/bin/time",
