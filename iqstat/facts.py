@@ -9,15 +9,14 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 import numpy as np
-from scipy import stats
 
 from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture
+from iqstat.noise import noise_floor_lowest_cluster
 from iqstat.units import db
 
 WELCH_FFT = 1024
 WELCH_MAX_FRAMES = 1024  # frames averaged at most (≈ 1 M samples), spread over the capture
 FLOOR_FRAME = 256  # samples per short-time power frame of the noise-floor estimate
-FLOOR_QUANTILE = 0.1
 NEAR_FULL_SCALE = 0.99  # a component at or beyond 99 % of full scale counts as clipped
 OCCUPIED_FRACTION = 0.99  # occupied bandwidth: 99 % of the power above the noise floor
 
@@ -71,11 +70,6 @@ def _finite_db(x: float) -> float | None:
     return float(db(x)) if x > 0 and np.isfinite(x) else None
 
 
-def gamma_floor_factor(frame_len: int, quantile: float) -> float:
-    """Quantile of the mean of ``frame_len`` exponential powers of unit mean (METHODS §5)."""
-    return float(stats.gamma.ppf(quantile, frame_len, scale=1.0 / frame_len))
-
-
 def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) -> CaptureFacts:
     """Measure a capture's facts in one streaming pass.
 
@@ -87,11 +81,11 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
 
     Notes
     -----
-    The noise floor is the 10th percentile of 256-sample frame powers divided by the same
-    quantile of their Gamma(256, 1/256) law under pure noise, so it is right even when bursts
-    fill most of the capture. The occupied bandwidth is the band holding 99 % of the spectral
-    power that exceeds the noise floor (the 0.5 %-each-side method of ITU-R SM.328 applied to the
-    excess), reported only when the excess is significant.
+    The noise floor is the lowest cluster of 256-sample frame powers under their
+    Gamma(256, 1/256) law (:func:`iqstat.noise.noise_floor_lowest_cluster`), so it is right
+    even when bursts fill most of the capture. The occupied bandwidth is the band holding
+    99 % of the spectral power that exceeds the noise floor (the 0.5 %-each-side method of
+    ITU-R SM.328 applied to the excess), reported only when the excess is significant.
     """
     n = capture.n_samples
     fs = capture.sample_rate_hz
@@ -146,9 +140,8 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
     floor = None
     if frame_powers:
         fp = np.concatenate(frame_powers)
-        floor = sc * sc * float(np.quantile(fp, FLOOR_QUANTILE)) / gamma_floor_factor(
-            FLOOR_FRAME, FLOOR_QUANTILE
-        )
+        # Robust to bursts filling most of the capture (see iqstat.noise).
+        floor = sc * sc * noise_floor_lowest_cluster(fp, FLOOR_FRAME)
     freqs = np.fft.fftshift(np.fft.fftfreq(WELCH_FFT, 1.0 / fs))
     psd = np.zeros(WELCH_FFT)
     occ_bw = occ_center = None

@@ -11,7 +11,7 @@ import numpy as np
 from scipy import signal
 
 from iqstat.capture import Capture
-from iqstat.facts import compute_facts, gamma_floor_factor
+from iqstat.facts import compute_facts
 from iqstat.formats.open import open_capture
 
 FS = 250e3
@@ -19,14 +19,6 @@ FS = 250e3
 
 def _noise(rng, n, var):
     return (rng.standard_normal(n) + 1j * rng.standard_normal(n)) * np.sqrt(var / 2)
-
-
-def test_gamma_floor_factor_matches_methods_table():
-    # METHODS §5 [computed]: median factor of a Gamma(L, 1/L) mean: 0.918 (L=4), 0.979 (16),
-    # 0.9948 (64).
-    assert abs(gamma_floor_factor(4, 0.5) - 0.918) < 5e-4
-    assert abs(gamma_floor_factor(16, 0.5) - 0.979) < 5e-4
-    assert abs(gamma_floor_factor(64, 0.5) - 0.9948) < 5e-5
 
 
 def test_noise_floor_and_power_of_white_noise(rng):
@@ -58,8 +50,16 @@ def test_spectrum_agrees_with_scipy_welch(rng):
     t = np.arange(n)
     x = _noise(rng, n, 1e-4) + 0.02 * np.exp(2j * np.pi * (12_500 / FS) * t)
     f = compute_facts(Capture.from_array(x, FS))
-    ref_f, ref_p = signal.welch(x, fs=FS, window="hann", nperseg=1024, noverlap=0,
-                                return_onesided=False, scaling="density", detrend=False)
+    ref_f, ref_p = signal.welch(
+        x,
+        fs=FS,
+        window="hann",
+        nperseg=1024,
+        noverlap=0,
+        return_onesided=False,
+        scaling="density",
+        detrend=False,
+    )
     ref_f, ref_p = np.fft.fftshift(ref_f), np.fft.fftshift(ref_p)
     np.testing.assert_allclose(f.spectrum_freq_hz, ref_f)
     # np.hanning is symmetric, scipy's 'hann' periodic: tiny difference in the window only.
@@ -107,8 +107,14 @@ def test_integer_and_float_recordings_give_the_same_figures(tmp_path, rng):
     q.tofile(tmp_path / "a.cs16")
     a = compute_facts(open_capture(tmp_path / "a.cs16", datatype="ci16_le", sample_rate_hz=FS))
     b = compute_facts(Capture.from_array((q[0::2] + 1j * q[1::2]) / 32768, FS))
-    for key in ("mean_power_dbfs", "peak_power_dbfs", "noise_floor_dbfs",
-                "noise_psd_dbfs_per_hz", "occupied_bandwidth_hz", "dc_offset_dbfs"):
+    for key in (
+        "mean_power_dbfs",
+        "peak_power_dbfs",
+        "noise_floor_dbfs",
+        "noise_psd_dbfs_per_hz",
+        "occupied_bandwidth_hz",
+        "dc_offset_dbfs",
+    ):
         assert abs(getattr(a, key) - getattr(b, key)) < 1e-3, key
     np.testing.assert_allclose(a.spectrum_dbfs_per_hz, b.spectrum_dbfs_per_hz, atol=1e-3)
     # A continuous tone is part of every frame: the time-domain floor holds noise + tone.
