@@ -313,7 +313,8 @@ def _unscaled(fit: NoncoherentFit, scale: float) -> NoncoherentFit:
     )
 
 
-def _no_energy(method: str, modulation: str, n: int, priors: np.ndarray) -> NoncoherentFit:
+def _failed_fit(method: str, modulation: str, n: int, priors, message: str) -> NoncoherentFit:
+    """A fit that could not be made: no estimate, the reason in ``message``."""
     return _build(
         method=method,
         modulation=modulation,
@@ -324,12 +325,22 @@ def _no_energy(method: str, modulation: str, n: int, priors: np.ndarray) -> Nonc
         noise_var=None,
         priors=priors,
         converged=False,
-        message="z is zero in every symbol and branch: no signal and no noise to measure",
+        message=message,
         iterations=0,
         log_likelihood=None,
         detection_statistic=None,
         upper95_db=None,
         gof=None,
+    )
+
+
+def _no_energy(method: str, modulation: str, n: int, priors: np.ndarray) -> NoncoherentFit:
+    return _failed_fit(
+        method,
+        modulation,
+        n,
+        priors,
+        "z is zero in every symbol and branch: no signal and no noise to measure",
     )
 
 
@@ -998,22 +1009,12 @@ def _build(
 
 
 def _too_few(method: str, modulation: str, n: int, priors: np.ndarray) -> NoncoherentFit:
-    return _build(
-        method=method,
-        modulation=modulation,
-        n_symbols=n,
-        esn0=None,
-        log_gamma_var=None,
-        amplitude=None,
-        noise_var=None,
-        priors=priors,
-        converged=False,
-        message=f"{n} symbols given; at least {MIN_SYMBOLS} are needed for an Es/N0 estimate",
-        iterations=0,
-        log_likelihood=None,
-        detection_statistic=None,
-        upper95_db=None,
-        gof=None,
+    return _failed_fit(
+        method,
+        modulation,
+        n,
+        priors,
+        f"{n} symbols given; at least {MIN_SYMBOLS} are needed for an Es/N0 estimate",
     )
 
 
@@ -1363,22 +1364,12 @@ def fit_da(
         on = sym == 1
         n_on = int(on.sum())
         if n_on == 0:
-            return _build(
-                method="da-ml",
-                modulation=modulation,
-                n_symbols=n,
-                esn0=None,
-                log_gamma_var=None,
-                amplitude=None,
-                noise_var=None,
-                priors=pi,
-                converged=False,
-                message="no 'on' symbol among the known symbols: the amplitude is not observable",
-                iterations=0,
-                log_likelihood=None,
-                detection_statistic=None,
-                upper95_db=None,
-                gof=None,
+            return _failed_fit(
+                "da-ml",
+                modulation,
+                n,
+                pi,
+                "no 'on' symbol among the known symbols: the amplitude is not observable",
             )
         pi = np.array([1.0 - n_on / n, n_on / n])
         if n_on < n:
