@@ -17,6 +17,7 @@ from iqstat.units import db
 WELCH_FFT = 1024
 WELCH_MAX_FRAMES = 1024  # frames averaged at most (≈ 1 M samples), spread over the capture
 FLOOR_FRAME = 256  # samples per short-time power frame of the noise-floor estimate
+FLOOR_MAX_FRAMES = 1 << 18  # frames the floor estimator sees at most
 NEAR_FULL_SCALE = 0.99  # a component at or beyond 99 % of full scale counts as clipped
 OCCUPIED_FRACTION = 0.99  # occupied bandwidth: 99 % of the power above the noise floor
 
@@ -141,7 +142,12 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
     if frame_powers:
         fp = np.concatenate(frame_powers)
         # Robust to bursts filling most of the capture (see iqstat.noise).
-        floor = sc * sc * noise_floor_lowest_cluster(fp, FLOOR_FRAME)
+        # Long captures: join frames so the estimator sees at most FLOOR_MAX_FRAMES of them
+        # (its fixed-point iterations scan every value; gaps of a few ms remain resolved).
+        k = max(1, -(-len(fp) // FLOOR_MAX_FRAMES))
+        if k > 1:
+            fp = fp[: len(fp) // k * k].reshape(-1, k).mean(axis=1)
+        floor = sc * sc * noise_floor_lowest_cluster(fp, FLOOR_FRAME * k)
     freqs = np.fft.fftshift(np.fft.fftfreq(WELCH_FFT, 1.0 / fs))
     psd = np.zeros(WELCH_FFT)
     occ_bw = occ_center = None

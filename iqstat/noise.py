@@ -8,7 +8,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 from iqstat.errors import ParameterError
 
@@ -58,7 +58,7 @@ def noise_floor_lowest_cluster(frame_power, dof: float) -> float:
         m = int(min(max(1, math.ceil(target / dof)), max(1, pw.size // 8)))
         pm = (cs[m:] - cs[:-m]) / m
         g = m * dof
-        q = float(stats.gamma.ppf(FLOOR_TRUNCATION_QUANTILE, g)) / g
+        q = float(special.gammaincinv(g, FLOOR_TRUNCATION_QUANTILE)) / g  # Gamma(g, 1/g) quantile
         n = float(pm.min())
         if n <= 0:
             continue
@@ -124,7 +124,8 @@ def noise_floor_from_frames(frame_power, frame_len: float, quantile: float = 0.1
         raise ParameterError(f"quantile {quantile!r} must be between 0 and 1 (e.g. 0.1)")
     q_hat = float(np.quantile(p, quantile))
     # Q(q) = σ²·G⁻¹(q; L)/L (Notes)
-    return q_hat / float(stats.gamma.ppf(quantile, frame_len, scale=1.0 / frame_len))
+    # gamma.ppf(q, L, scale=1/L) = P⁻¹(L, q)/L (regularised incomplete gamma inverse)
+    return q_hat / (float(special.gammaincinv(frame_len, quantile)) / frame_len)
 
 
 def threshold_from_floor(floor: float, n_avg: float, pfa: float) -> float:
@@ -150,4 +151,5 @@ def threshold_from_floor(floor: float, n_avg: float, pfa: float) -> float:
         raise ParameterError(f"n_avg {n_avg!r} must be a positive number of samples")
     if not 0.0 < pfa < 1.0:
         raise ParameterError(f"pfa {pfa!r} must be between 0 and 1 (e.g. 1e-6)")
-    return float(floor) * float(stats.gamma.isf(pfa, n_avg, scale=1.0 / n_avg))
+    # gamma.isf(p, L, scale=1/L) = Q⁻¹(L, p)/L
+    return float(floor) * float(special.gammainccinv(n_avg, pfa)) / n_avg
