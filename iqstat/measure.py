@@ -38,7 +38,13 @@ from iqstat.profile import (
     override_profile,
     symbols_to_bits,
 )
-from iqstat.sync import FrameAlignment, SymbolTiming, align_frame, recover_timing
+from iqstat.sync import (
+    FrameAlignment,
+    SymbolTiming,
+    align_frame,
+    recover_timing,
+    refine_timing_known,
+)
 from iqstat.units import db
 
 #: Symbols read beyond each detected edge, so that timing and frame search see whole symbols.
@@ -438,7 +444,7 @@ def _search_timing(
         + ("data-aided" if known is not None else "decision-margin")
         + " search",
     )
-    return moved, -shift
+    return moved, shift
 
 
 def _header_consistent(frame: FrameAlignment, check: BitCheck, profile: LinkProfile) -> bool:
@@ -632,21 +638,21 @@ def measure_burst(
         and frame.found
         and timing.quality.get("line_snr_db", np.inf) < DA_REFINE_LINE_DB
     ):
-        # Known symbols give a sharper timing criterion than the feature line: refine the
-        # grid around its estimate, then correlate again.
-        timing, shift = _search_timing(
-            cum,
+        # Known symbols give a sharper timing criterion than the feature line: correlate the
+        # burst with their waveform (energy criteria are flat for h = 1/2), then again.
+        n_known = int(np.argmin(known >= 0)) if (known < 0).any() else len(known)
+        before = (timing, z_all, gram, sel, known, check)
+        timing, shift = refine_timing_known(
+            x,
+            fs,
             timing,
-            len(x),
-            sel[0],
-            sel[1],
-            known,
-            np.linspace(-0.25, 0.25, TIMING_SEARCH_POINTS),
+            first_symbol=sel[0],
+            symbols=known[:n_known],
+            modulation=m,
+            symbol_rate_hz=link.symbol_rate_hz,
+            tone_spacing_hz=link.tone_spacing_hz,
+            cfo_hz=link.cfo_hz,
         )
-        sel = (sel[0] + shift, sel[1] + shift)
-        if sel[0] < 0 or sel[1] > timing.n_symbols:
-            sel = (max(sel[0], 0), min(sel[1], timing.n_symbols))
-            known = known[: sel[1] - sel[0]]
         z_all = correlate_symbols(
             x,
             fs,
@@ -656,6 +662,22 @@ def measure_burst(
             timing.n_symbols,
             cumulative=cum,
         )
+        gram = template_gram(link.tone_freqs_hz, timing.period_samples, fs)
+        # Decide and check the payload again on the refined grid.
+        hard = (
+            decide_symbols(z_all, first_fit, gram, modulation=m)
+            if m == "ook" and first_fit.amplitude
+            else np.argmax(np.abs(z_all), axis=1)
+        )
+        frame = dataclasses.replace(frame, start_symbol=sel[0] + shift)
+        k1 = _symbols_inside(timing, lo_edge, hi_edge)[1]
+        if frame.start_symbol < 0 or frame.start_symbol + len(header) > timing.n_symbols:
+            # The refined grid puts the frame outside the window: keep the first grid.
+            timing, z_all, gram, sel, known, check = before
+        else:
+            sel, known, check = _frame_symbols(
+                frame, hard, header, n_tones, k1, timing, layout, profile
+            )
     z = z_all[sel[0] : sel[1]]
     fit = fit_nda(z, gram, modulation=m)
     dd = fit_dd(z, gram, modulation=m, gof=False)
