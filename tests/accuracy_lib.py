@@ -20,7 +20,7 @@ from iqstat.formats.open import open_capture
 from iqstat.measure import measure_capture
 from iqstat.profile import profile_from_dict
 from iqstat.synth import scenario_from_dict, write_synthetic
-from iqstat.theory import predicted_ber, tone_correlation
+from iqstat.theory import predicted_ber, ser_ncfsk, tone_correlation
 
 RS = 4800.0
 FS = 250e3  # 52.083 samples per symbol: never an integer
@@ -85,7 +85,7 @@ class PointResult:
     bit_errors: int
     bits_checked: int
     ber_theory: float
-    ber_pvalue: float | None  # two-sided binomial test of the errors at theory's BER
+    ber_pvalue: float | None  # two-sided binomial test at theory's BER (4-FSK: symbols, SER)
 
     @property
     def std_over_crb(self) -> float | None:
@@ -151,7 +151,15 @@ def run_point(
         rho = float(abs(tone_correlation(c["spacing"], 1 / RS)))
     p_th = float(predicted_ber(g, mod, rho_abs=rho))
     pval = None
-    if bits:
+    if bits and mod == "4fsk":
+        # Bit errors of 4-FSK come in symbol errors of 1 or 2 bits (4/3 on average for
+        # orthogonal tones with the Gray map: all wrong tones equally likely), so the bits
+        # are not independent: test the implied symbol errors against the SER instead
+        # (Proakis & Salehi 5th ed. §4.5 [from memory]: P_b = (2/3)·P_s for M = 4).
+        k_sym = int(round(bit_errors * 3 / 4))
+        p_ser = float(ser_ncfsk(g, 4))
+        pval = float(stats.binomtest(k_sym, bits // 2, p_ser).pvalue)
+    elif bits:
         pval = float(stats.binomtest(bit_errors, bits, p_th).pvalue)
     bps = 2 if mod == "4fsk" else 1
     n_mean = float(np.mean(n_sym)) if n_sym else 560.0
