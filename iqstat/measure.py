@@ -24,7 +24,7 @@ from iqstat.correlate import (
     template_gram,
 )
 from iqstat.errors import IqstatError, MeasurementError
-from iqstat.estimate import LinkEstimate, estimate_link, refine_link_across_bursts
+from iqstat.estimate import LinkEstimate, estimate_link, link_with, refine_link_across_bursts
 from iqstat.facts import CaptureFacts, compute_facts
 from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
 from iqstat.formats.open import open_capture
@@ -78,6 +78,8 @@ BURST_FLAGS_RAISED = (
 )
 #: 4-FSK tones whose |ρ| stay below this are treated as orthogonal by the theory.
 NEAR_ORTHOGONAL_RHO = 0.05
+#: A carrier correction from the known symbols smaller than this [Hz] is not applied.
+CFO_REFINE_MIN_HZ = 1.0
 #: Fewest symbols for a fit worth reporting.
 MIN_FIT_SYMBOLS = 20
 #: Fraction of full-scale samples above which a capture is flagged as clipped.
@@ -641,8 +643,8 @@ def measure_burst(
         # Known symbols give a sharper timing criterion than the feature line: correlate the
         # burst with their waveform (energy criteria are flat for h = 1/2), then again.
         n_known = int(np.argmin(known >= 0)) if (known < 0).any() else len(known)
-        before = (timing, z_all, gram, sel, known, check)
-        timing, shift = refine_timing_known(
+        before = (timing, z_all, gram, sel, known, check, link, cum)
+        timing, shift, dcfo = refine_timing_known(
             x,
             fs,
             timing,
@@ -653,6 +655,10 @@ def measure_burst(
             tone_spacing_hz=link.tone_spacing_hz,
             cfo_hz=link.cfo_hz,
         )
+        if abs(dcfo) > CFO_REFINE_MIN_HZ:
+            # The known symbols show a residual carrier offset: retune the correlators.
+            link = link_with(link, cfo_hz=link.cfo_hz + dcfo)
+            cum = mix_cumulative(x, fs, link.tone_freqs_hz)
         z_all = correlate_symbols(
             x,
             fs,
@@ -673,7 +679,7 @@ def measure_burst(
         k1 = _symbols_inside(timing, lo_edge, hi_edge)[1]
         if frame.start_symbol < 0 or frame.start_symbol + len(header) > timing.n_symbols:
             # The refined grid puts the frame outside the window: keep the first grid.
-            timing, z_all, gram, sel, known, check = before
+            timing, z_all, gram, sel, known, check, link, cum = before
         else:
             sel, known, check = _frame_symbols(
                 frame, hard, header, n_tones, k1, timing, layout, profile

@@ -665,8 +665,8 @@ def refine_timing_known(
     symbol_rate_hz: float,
     tone_spacing_hz: float | None,
     cfo_hz: float,
-    block_symbols: int = 16,
-) -> tuple[SymbolTiming, int]:
+    block_symbols: int = 4,
+) -> tuple[SymbolTiming, int, float]:
     """Timing from the known symbols by correlating the burst with their waveform.
 
     Parameters
@@ -684,13 +684,15 @@ def refine_timing_known(
         The link, as estimated.
     block_symbols : int
         Symbols per coherently correlated block (the blocks' energies are summed, so a
-        slow residual carrier phase does not matter).
+        residual carrier offset up to ~fs/(2·block length) only turns their phases, which
+        gives its correction).
 
     Returns
     -------
-    (SymbolTiming, int)
-        The grid with ``t0_samples`` moved by the best lag (within half a symbol;
-        ``n_symbols`` adjusted), and the shift j − k of a symbol's index in the new grid.
+    (SymbolTiming, int, float)
+        The grid with ``t0_samples`` moved by the best lag (within 1.5 symbols;
+        ``n_symbols`` adjusted), the shift j − k of a symbol's index in the new grid, and the
+        residual carrier offset [Hz] the block phases show (add it to ``cfo_hz``).
 
     Notes
     -----
@@ -703,8 +705,8 @@ def refine_timing_known(
     """
     p = timing.period_samples
     n_sym = len(symbols)
-    if n_sym < block_symbols:
-        return timing, 0
+    if n_sym < 4 * block_symbols:
+        return timing, 0, 0.0
     t_start = timing.t0_samples + first_symbol * p
     i0 = int(math.floor(t_start))
     ppm = ((sample_rate_hz / symbol_rate_hz) / p - 1.0) * 1e6
@@ -724,16 +726,29 @@ def refine_timing_known(
     first = 0
     while first < n_blk and i0 + first * nb - h < 0:
         first += 1
-    if n_blk - first < 2:
-        return timing, 0
+    if n_blk - first < 4:
+        return timing, 0, 0.0
     j = np.arange(first, n_blk)
     idx_x = i0 + j[:, None] * nb - h + np.arange(nb + 2 * h)[None, :]
     idx_r = j[:, None] * nb + np.arange(nb)[None, :]
     n_fft = scipy.fft.next_fast_len(nb + 2 * h)
     xs = scipy.fft.fft(x[idx_x], n_fft, axis=1)
     rs = scipy.fft.fft(ref[idx_r], n_fft, axis=1)
-    c = np.abs(scipy.fft.ifft(xs * np.conj(rs), axis=1)[:, : 2 * h + 1]) ** 2
+    cc = scipy.fft.ifft(xs * np.conj(rs), axis=1)[:, : 2 * h + 1]
+    c = np.abs(cc) ** 2
     lag = _peak_lag(c.sum(axis=0)) - h
+    # Carrier: a residual offset turns the blocks' correlation phases at the best lag
+    # linearly; their unwrapped slope (blocks of a few symbols keep it below π per block up
+    # to ~ fs/(2·nb)) is the correction.
+    phases = np.unwrap(np.angle(cc[:, int(round(lag)) + h]))
+    wts = c[:, int(round(lag)) + h]
+    jc = (j + 0.5) * nb
+    jm = np.average(jc, weights=wts)
+    slope_rad = float(
+        np.sum(wts * (jc - jm) * (phases - np.average(phases, weights=wts)))
+        / np.sum(wts * (jc - jm) ** 2)
+    )
+    dcfo_hz = slope_rad * sample_rate_hz / (2 * np.pi)
     # Clock: the lag drifts along the frame when the period is off (a spurious clock offset
     # from a weak line, or a real one on a long frame). Per-block peaks within half a symbol
     # of the overall lag, line-fitted against the block centres, give the drift per sample.
@@ -766,4 +781,4 @@ def refine_timing_known(
         method=timing.method + "+known-waveform",
         message=timing.message + f"; moved {lag / p:+.3f} T by correlating the known symbols",
     )
-    return moved, shift
+    return moved, shift, float(dcfo_hz)
