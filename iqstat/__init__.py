@@ -22,7 +22,7 @@ __version__ = "0.1.0"
 _LAZY = {
     "Capture": "iqstat.capture",
     "open_capture": "iqstat.formats.open",
-    "MeasurementReport": "iqstat.measure",
+    "MeasurementReport": "iqstat.results",
     "measure_file": "iqstat.measure",
     "measure_capture": "iqstat.measure",
     "LinkProfile": "iqstat.profile",

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.fft
@@ -26,9 +25,9 @@ from iqstat.correlate import (
 from iqstat.errors import IqstatError, MeasurementError
 from iqstat.estimate import LinkEstimate, estimate_link, link_with, refine_link_across_bursts
 from iqstat.facts import CaptureFacts, compute_facts
-from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
+from iqstat.fit import decide_symbols, fit_da, fit_dd, fit_nda
 from iqstat.formats.open import open_capture
-from iqstat.patterns import BitCheck, check_known, check_prbs, clopper_pearson, prbs_bits
+from iqstat.patterns import BitCheck, check_known, check_prbs, prbs_bits
 from iqstat.profile import (
     FrameLayout,
     LinkProfile,
@@ -38,6 +37,8 @@ from iqstat.profile import (
     override_profile,
     symbols_to_bits,
 )
+from iqstat.results import BurstResult, LinkSummary, MeasurementReport
+from iqstat.summary import profile_mismatch, summarise
 from iqstat.sync import (
     FrameAlignment,
     SymbolTiming,
@@ -64,26 +65,12 @@ BLIND_SEARCH_LINE_DB = 10.0
 DA_REFINE_LINE_DB = 20.0
 #: Candidates per pass of a timing search.
 TIMING_SEARCH_POINTS = 41
-#: Per-burst flags that also flag the capture when any burst raises them.
-BURST_FLAGS_RAISED = (
-    "sync-not-found",
-    "header-mismatch",
-    "pattern-not-locked",
-    "not-awgn",
-    "detection-loss",
-    "fit-failed",
-    "too-few-symbols",
-    "not-measured",
-    "link-not-estimated",
-)
 #: 4-FSK tones whose |ρ| stay below this are treated as orthogonal by the theory.
 NEAR_ORTHOGONAL_RHO = 0.05
 #: A carrier correction from the known symbols smaller than this [Hz] is not applied.
 CFO_REFINE_MIN_HZ = 1.0
 #: Fewest symbols for a fit worth reporting.
 MIN_FIT_SYMBOLS = 20
-#: Fraction of full-scale samples above which a capture is flagged as clipped.
-CLIPPING_FLAG_FRACTION = 1e-4
 #: An estimated symbol rate further than this from the profile's is flagged.
 RATE_MISMATCH_FRACTION = 0.01
 #: An estimated tone spacing further than this from the profile's is flagged.
@@ -92,166 +79,6 @@ SPACING_MISMATCH_FRACTION = 0.05
 GOF_FLAG_PVALUE = 1e-3
 #: Detection loss (available − detected Eb/N0) above which the burst is flagged.
 DETECTION_LOSS_FLAG_DB = 1.5
-#: Spread of per-burst Eb/N0 (max − min) above which the capture is flagged.
-LEVEL_SPREAD_FLAG_DB = 3.0
-
-
-@dataclass(frozen=True)
-class BurstResult:
-    """Everything measured on one burst.
-
-    ``ebn0_db`` is the headline (maximum likelihood, marginalised over the sent symbols);
-    ``ebn0_db_da`` uses the known symbols (header, and payload where known); ``ebn0_db_dd`` is
-    the decision-directed moment estimate, biased high below about 8 dB, for comparison only.
-    """
-
-    index: int
-    start_sample: int
-    stop_sample: int
-    symbols: int
-    link: LinkEstimate | None
-    timing: SymbolTiming | None
-    frame: FrameAlignment | None
-    fit: NoncoherentFit | None
-    fit_da: NoncoherentFit | None
-    fit_dd: NoncoherentFit | None
-    bit_check: BitCheck | None
-    available_ebn0_db: float | None
-    predicted_ber: float | None
-    power_dbfs: float
-    flags: tuple[str, ...]
-    message: str
-
-    @property
-    def ebn0_db(self) -> float | None:
-        return self.fit.ebn0_db if self.fit is not None and self.fit.converged else None
-
-    @property
-    def ebn0(self) -> float | None:
-        v = self.ebn0_db
-        return None if v is None else 10.0 ** (v / 10.0)
-
-    @property
-    def detection_loss_db(self) -> float | None:
-        if self.available_ebn0_db is None or self.ebn0_db is None:
-            return None
-        return self.available_ebn0_db - self.ebn0_db
-
-    @property
-    def cfo_hz(self) -> float | None:
-        return None if self.link is None else self.link.cfo_hz
-
-    def to_dict(self) -> dict:
-        fit = self.fit
-        bc = self.bit_check
-        counted = bc is not None and bc.locked
-        return {
-            "index": self.index,
-            "start_sample": self.start_sample,
-            "stop_sample": self.stop_sample,
-            "symbols": self.symbols,
-            "cfo_hz": self.cfo_hz,
-            "symbol_rate_hz": None if self.link is None else self.link.symbol_rate_hz,
-            "tone_spacing_hz": None if self.link is None else self.link.tone_spacing_hz,
-            "clock_offset_ppm": None if self.timing is None else self.timing.clock_offset_ppm,
-            "timing_offset_samples": None if self.timing is None else self.timing.t0_samples,
-            "power_dbfs": self.power_dbfs,
-            "ebn0_db": self.ebn0_db,
-            "ebn0_db_ci95": None if fit is None or not fit.converged else fit.ebn0_db_ci95,
-            "esn0_db": None if fit is None or not fit.converged else fit.esn0_db,
-            "ebn0_db_da": _fit_ebn0(self.fit_da),
-            "ebn0_db_dd": _fit_ebn0(self.fit_dd),
-            "available_ebn0_db": self.available_ebn0_db,
-            "detection_loss_db": self.detection_loss_db,
-            "predicted_ber": self.predicted_ber,
-            "bit_errors": bc.bit_errors if counted else None,
-            "bits_checked": bc.bits_checked if counted else None,
-            "measured_ber": bc.ber if counted else None,
-            "measured_ber_ci95": bc.ber_ci95 if counted else None,
-            "frame_found": None if self.frame is None else self.frame.found,
-            "frame_start_symbol": None if self.frame is None else self.frame.start_symbol,
-            "header_bit_errors": None if self.frame is None else self.frame.bit_errors,
-            "gof_pvalue": None if fit is None else fit.gof_pvalue,
-            "flags": list(self.flags),
-            "message": self.message,
-            "fit": None if fit is None else fit.to_dict(),
-            "fit_da": None if self.fit_da is None else self.fit_da.to_dict(),
-            "fit_dd": None if self.fit_dd is None else self.fit_dd.to_dict(),
-            "link": None if self.link is None else self.link.to_dict(),
-            "timing": None if self.timing is None else self.timing.to_dict(),
-            "frame": None if self.frame is None else self.frame.to_dict(),
-            "bit_check": None if bc is None else bc.to_dict(),
-        }
-
-
-def _fit_ebn0(fit: NoncoherentFit | None) -> float | None:
-    return fit.ebn0_db if fit is not None and fit.converged else None
-
-
-@dataclass(frozen=True)
-class LinkSummary:
-    """The link's parameters as used, and where each came from."""
-
-    modulation: str
-    symbol_rate_hz: float | None
-    symbol_rate_source: str
-    tone_spacing_hz: float | None
-    tone_spacing_source: str
-    modulation_index: float | None
-    tone_correlation: float | None
-    bit_rate_hz: float | None
-
-    def to_dict(self) -> dict:
-        return dict(self.__dict__)
-
-
-@dataclass(frozen=True)
-class Summary:
-    """The capture's headline figures."""
-
-    bursts: int
-    bursts_measured: int
-    symbols: int
-    ebn0_db: float | None
-    ebn0_db_ci95: tuple[float, float] | None
-    ebn0_db_min: float | None
-    ebn0_db_max: float | None
-    ebn0_db_std: float | None
-    esn0_db: float | None
-    ebn0_db_da: float | None
-    ebn0_db_dd: float | None
-    available_ebn0_db: float | None
-    detection_loss_db: float | None
-    predicted_ber: float | None
-    measured_ber: float | None
-    measured_ber_ci95: tuple[float, float] | None
-    bit_errors: int | None
-    bits_checked: int | None
-    bursts_checked: int
-    required_ber: float | None
-    required_ebn0_db: float | None
-    margin_db: float | None
-    worst_burst_margin_db: float | None
-    flags: tuple[str, ...]
-    message: str
-
-    def to_dict(self) -> dict:
-        d = dict(self.__dict__)
-        d["flags"] = list(self.flags)
-        return d
-
-
-@dataclass(frozen=True)
-class MeasurementReport:
-    """The full result of measuring one capture."""
-
-    facts: CaptureFacts
-    profile: LinkProfile
-    link: LinkSummary
-    detection: BurstDetection
-    bursts: tuple[BurstResult, ...]
-    summary: Summary
-    warnings: tuple[str, ...] = field(default=())
 
 
 def _link_summary(profile: LinkProfile, links: list[LinkEstimate], rho: float | None):
@@ -756,134 +583,6 @@ def _available_ebn0_db(
     return float(db(c / (n0 * bit_rate_hz)))
 
 
-def _weighted_ebn0(results: list[BurstResult]):
-    """Symbol-weighted mean of per-burst linear Eb/N0, its 95 % interval and the spread."""
-    ok = [r for r in results if r.ebn0_db is not None]
-    if not ok:
-        return None, None, None, None, None
-    w = np.array([r.symbols for r in ok], dtype=float)
-    g = np.array([r.ebn0 for r in ok])
-    mean = float(np.sum(w * g) / w.sum())
-    # Variance of each burst's estimate from its interval (Wald, symmetric in dB).
-    var = []
-    for r in ok:
-        lo, hi = r.fit.ebn0_db_ci95 if r.fit.ebn0_db_ci95 else (r.ebn0_db, r.ebn0_db)
-        sd_db = (hi - lo) / (2 * 1.959964)
-        var.append((r.ebn0 * math.log(10) / 10 * sd_db) ** 2)
-    var_mean = float(np.sum(w**2 * np.array(var)) / w.sum() ** 2)
-    sd_db = 10 / math.log(10) * math.sqrt(var_mean) / mean
-    mean_db = float(db(mean))
-    ci = (mean_db - 1.959964 * sd_db, mean_db + 1.959964 * sd_db)
-    d = np.array([r.ebn0_db for r in ok])
-    std = float(np.std(d, ddof=1)) if len(d) > 1 else None
-    return mean_db, ci, float(d.min()), float(d.max()), std
-
-
-def _summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
-    flags: list[str] = []
-    m = profile.modulation
-    mean_db, ci, lo, hi, std = _weighted_ebn0(results)
-    ok = [r for r in results if r.ebn0_db is not None]
-    symbols = sum(r.symbols for r in ok)
-    pred = None
-    if ok:
-        pred = float(
-            theory.mean_ber_over_bursts(
-                np.array([r.ebn0 for r in ok]),
-                np.array([r.symbols for r in ok], dtype=float),
-                m,
-                rho_abs=rho,
-            )
-        )
-    checked = [r for r in results if r.bit_check is not None and r.bit_check.locked]
-    errors = sum(r.bit_check.bit_errors for r in checked) if checked else None
-    n_bits = sum(r.bit_check.bits_checked for r in checked) if checked else None
-    meas = ci_meas = None
-    if n_bits:
-        meas = errors / n_bits
-        ci_meas = clopper_pearson(errors, n_bits)
-    req = marg = worst = None
-    if profile.required_ber is not None:
-        try:
-            req = float(theory.required_ebn0_db(profile.required_ber, m, rho_abs=rho))
-        except IqstatError:
-            req = None
-        if req is not None and mean_db is not None:
-            marg = mean_db - req
-            worst = lo - req
-            if marg < 0:
-                flags.append("below-requirement")
-            elif worst < 0:
-                flags.append("some-bursts-below-requirement")
-    esn0_db = None if mean_db is None else mean_db + float(db(profile.bits_per_symbol))
-    da = [r.fit_da.ebn0_db for r in ok if r.fit_da is not None and r.fit_da.converged]
-    dd = [r.fit_dd.ebn0_db for r in ok if r.fit_dd is not None and r.fit_dd.converged]
-    av = [r.available_ebn0_db for r in ok if r.available_ebn0_db is not None]
-    avail = _mean_db(av, [r.symbols for r in ok if r.available_ebn0_db is not None])
-    loss = None if (avail is None or mean_db is None) else avail - mean_db
-    if not results:
-        flags.append("no-bursts")
-    elif not ok:
-        flags.append("nothing-measured")
-    if facts.clipped_fraction is not None and facts.clipped_fraction > CLIPPING_FLAG_FRACTION:
-        flags.append("clipping")
-    if not facts.is_complex:
-        flags.append("real-valued-capture")
-    for fl in BURST_FLAGS_RAISED:
-        if any(fl in r.flags for r in results):
-            flags.append(fl)
-    if lo is not None and hi - lo > LEVEL_SPREAD_FLAG_DB:
-        flags.append("level-spread")
-    if meas is not None and pred is not None and n_bits:
-        # Measured errors far outside what the fitted Eb/N0 predicts point at something
-        # other than white noise (interference, fading, bit slips).
-        p_lo = stats.binom.cdf(errors, n_bits, pred)
-        p_hi = stats.binom.sf(errors - 1, n_bits, pred)
-        if min(p_lo, p_hi) < 1e-4:
-            flags.append("ber-disagrees-with-ebn0")
-    if not results:
-        message = detection.message
-    elif not ok:
-        message = f"{len(results)} burst(s) found but none could be measured"
-    else:
-        message = f"{len(ok)} of {len(results)} burst(s) measured"
-    return Summary(
-        bursts=len(results),
-        bursts_measured=len(ok),
-        symbols=symbols,
-        ebn0_db=mean_db,
-        ebn0_db_ci95=ci,
-        ebn0_db_min=lo,
-        ebn0_db_max=hi,
-        ebn0_db_std=std,
-        esn0_db=esn0_db,
-        ebn0_db_da=_mean_db(da, None),
-        ebn0_db_dd=_mean_db(dd, None),
-        available_ebn0_db=avail,
-        detection_loss_db=loss,
-        predicted_ber=pred,
-        measured_ber=meas,
-        measured_ber_ci95=ci_meas,
-        bit_errors=errors,
-        bits_checked=n_bits,
-        bursts_checked=len(checked),
-        required_ber=profile.required_ber,
-        required_ebn0_db=req,
-        margin_db=marg,
-        worst_burst_margin_db=worst,
-        flags=tuple(dict.fromkeys(flags)),
-        message=message,
-    )
-
-
-def _mean_db(values_db, weights) -> float | None:
-    if not values_db:
-        return None
-    v = 10 ** (np.asarray(values_db, dtype=float) / 10)
-    w = np.ones_like(v) if weights is None else np.asarray(weights, dtype=float)
-    return float(db(np.sum(w * v) / np.sum(w)))
-
-
 def _theory_rho(rho_abs: np.ndarray, modulation: str):
     """Tone correlation in the form theory takes: |ρ| for 2-FSK, the |ρ| matrix for 4-FSK
     (union bound over tone pairs when the tones are not orthogonal), 0 for OOK and
@@ -934,31 +633,6 @@ def _measure_burst_safely(capture, burst, profile, layout, detection, rate, spac
         )
     except MeasurementError as exc:
         return _unmeasured(burst, "not-measured", str(exc))
-
-
-def _profile_mismatch(
-    results: list[BurstResult], rate_flags: tuple[str, ...], layout: FrameLayout
-) -> str | None:
-    """Why the profile evidently does not describe the capture, or None.
-
-    Evidence: the capture's blind symbol rate or tone spacing contradicts the profile's; or,
-    among the measured bursts, most fail the energy-law test while the frame is found in
-    fewer than half; or most frames match their header far worse than their payload.
-    """
-    if rate_flags:
-        return ", ".join(f.replace("-", " ") for f in rate_flags)
-    measured = [r for r in results if r.fit is not None]
-    if not measured:
-        return None
-    n = len(measured)
-    not_awgn = sum("not-awgn" in r.flags for r in measured)
-    framed = sum(r.frame is not None and r.frame.found for r in measured)
-    header_bad = sum("header-mismatch" in r.flags for r in measured)
-    if layout.n_header_bits and not_awgn >= 0.5 * n and framed < 0.5 * n:
-        return "branch energies do not follow the model and the frame is rarely found"
-    if header_bad >= 0.5 * n:
-        return "headers match far worse than payloads"
-    return None
 
 
 def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]:
@@ -1069,10 +743,10 @@ def measure_capture(
         rho_display = float(rho_mat[0, 1])
         rho_theory = _theory_rho(rho_mat, profile.modulation)
     link_sum = _link_summary(profile, good_links, rho_display)
-    summary = _summarise(results, profile, link_sum, facts, detection, rho_theory)
+    summary = summarise(results, profile, link_sum, facts, detection, rho_theory)
     if mismatch:
         summary = dataclasses.replace(summary, flags=tuple(dict.fromkeys(summary.flags + mismatch)))
-    reason = _profile_mismatch(results, mismatch, layout)
+    reason = profile_mismatch(results, mismatch, layout)
     if reason is not None and summary.ebn0_db is not None:
         # The model the figures rest on does not describe this capture: report what was seen
         # per burst, but no headline figure.

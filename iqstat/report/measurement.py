@@ -16,8 +16,8 @@ from rich.table import Table
 from rich.text import Text
 
 from iqstat import __version__
-from iqstat.measure import BurstResult, MeasurementReport
 from iqstat.report.jsonio import dumps, json_safe
+from iqstat.results import BurstResult, MeasurementReport
 
 FORMAT = "iqstat-report"
 FORMAT_VERSION = 1
