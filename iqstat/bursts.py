@@ -863,8 +863,9 @@ def detect_bursts(
     n_frames = capture.n_samples // L
     if n_frames < 8:
         raise MeasurementError(
-            f"capture has {capture.n_samples} samples, too few for burst detection with "
-            f"frame_samples={L} (needs 8 frames); use a smaller frame_samples or a longer capture"
+            f"capture has {capture.n_samples} samples ({1e3 * capture.n_samples / fs:.1f} ms): "
+            f"too short to find bursts in, which needs at least {8 * L} samples (8 frames of "
+            f"{L}); record longer"
         )
 
     survey = _survey_band(capture, L) if capture.is_complex else None
@@ -995,7 +996,11 @@ def detect_bursts(
             f"in-band threshold {_db(thr):.1f} dBFS"
         )
     else:
-        message = f"no bursts above the floor of {floor_dbfs:.1f} dBFS"
+        message = (
+            f"no bursts above the floor of {floor_dbfs:.1f} dBFS"
+            if math.isfinite(floor_dbfs)
+            else "no bursts: the capture holds only zeros (no signal and no noise)"
+        )
     return BurstDetection(
         bursts=tuple(bursts),
         noise_floor_dbfs=floor_dbfs,

@@ -301,3 +301,15 @@ def test_streamed_json_equals_the_document():
         open_capture(samples / "reservoir_drift.sigmf-meta"), load_profile(samples / "link.toml")
     )
     assert json.loads("".join(report_json_pieces(report))) == report_to_dict(report)
+
+
+def test_all_zero_and_too_short_captures():
+    profile = profile_from_dict(
+        {"link": {"modulation": "2fsk", "symbol_rate": RS, "tone_spacing": RS}}
+    )
+    report = measure_capture(Capture.from_array(np.zeros(100_000, np.complex64), FS), profile)
+    assert "no-bursts" in report.summary.flags
+    assert "only zeros" in report.summary.message
+    json.dumps(report_to_dict(report), allow_nan=False)
+    with pytest.raises(Exception, match="too short to find bursts"):
+        measure_capture(Capture.from_array(np.zeros(1000, np.complex64) + 0.01, FS), profile)
