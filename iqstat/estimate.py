@@ -67,6 +67,8 @@ BLIND_RATE_RANGE = (1.0 / 1000.0, 1.0 / 4.0)
 _RATE_SCAN_RATIO = 1.3
 #: Powers tried for the line search (p·h must be close to an integer).
 _LINE_POWERS = (1, 2)
+#: Lines sought next to the energy search's carrier within ± this many symbol rates.
+LINE_NEAR_REACH_SYMBOLS = 0.1
 
 
 # --------------------------------------------------------------------------------------------
@@ -739,6 +741,46 @@ def _energy_search(
     return _ToneFit(cfo, spacing, 0, None, "energy-search")
 
 
+def _lines_near(b: _Burst, p: int, guess: _ToneFit, rate_hz: float) -> _ToneFit | None:
+    """The energy search's carrier refined by the p-th-power lines found right next to it.
+
+    Where the lines are too weak to find in the whole window (0–2 dB at h = ½), they can
+    still be found within the energy search's flat top: the line powers of all M tones at a
+    common shift are summed over shifts of ±``LINE_NEAR_REACH_SYMBOLS``·Rs·p, and the best
+    shift is kept only when its sum is improbable for noise over that many shifts (a Gamma(M)
+    tail below 1e-3 for the largest of them).
+    """
+    offsets = tone_offsets_hz(b.modulation, guess.spacing_hz)
+    sig_half = float(offsets[-1]) + rate_hz if b.m > 1 else rate_hz
+    spec = _power_spectrum_for_lines(b, p, guess.cfo_hz, sig_half + rate_hz)
+    pw = b.power if p == 1 else spec.real**2 + spec.imag**2
+    reach = max(1, int(round(LINE_NEAR_REACH_SYMBOLS * rate_hz * p / b.df_hz)))
+    shifts = np.arange(-reach, reach + 1)
+    centres = np.round(p * (guess.cfo_hz + offsets) / b.df_hz).astype(np.int64)
+    idx = (centres[:, None] + shifts[None, :]) % b.n  # (M, shifts)
+    total = pw[idx].sum(axis=0)
+    # Noise level per bin: the median of a wide neighbourhood of each line (ln 2·mean).
+    wide = (centres[:, None] + np.arange(-8 * reach, 8 * reach + 1)[None, :]) % b.n
+    mean_noise = float(np.median(pw[wide])) / math.log(2.0)
+    if not mean_noise > 0:
+        return None
+    m = len(offsets)
+    threshold = float(special.gammainccinv(m, 1e-3 / len(shifts)))  # Gamma(M, 1) tail
+    best = int(np.argmax(total))
+    if total[best] / mean_noise < threshold:
+        return None
+    freqs = []
+    for c, off in zip(centres, offsets, strict=True):
+        k = int((c + shifts[best]) % b.n)
+        fk = interpolate_peak_bin(spec, k) * b.df_hz
+        pred = p * (guess.cfo_hz + off)
+        fk = fk + b.fs * round((pred - fk) / b.fs)  # representative nearest the prediction
+        freqs.append(fk / p)
+    cfo = float(np.mean(np.asarray(freqs) - offsets))
+    line_db = 10 * math.log10(total[best] / (m * mean_noise))
+    return _ToneFit(cfo, guess.spacing_hz, p, line_db, f"{guess.method}+lines-near")
+
+
 def _fit_tones(
     b: _Burst, center_hz: float, spacing_hz: float | None, rate_hz: float, spacing_known: bool
 ) -> _ToneFit:
@@ -759,7 +801,14 @@ def _fit_tones(
         fit = _fit_lines(b, p, center_hz, guess, rate_hz, spacing_known)
         if fit is not None:
             return fit
-    return _energy_search(b, center_hz, spacing_hz, rate_hz, spacing_known)
+    coarse = _energy_search(b, center_hz, spacing_hz, rate_hz, spacing_known)
+    for p in _LINE_POWERS:
+        ph = p * coarse.spacing_hz / rate_hz
+        if round(ph) >= 1 and abs(ph - round(ph)) <= 0.02:
+            near = _lines_near(b, p, coarse, rate_hz)
+            if near is not None:
+                return near
+    return coarse
 
 
 def _signal_width(m: int, spacing_hz: float | None, rate_hz: float) -> float:
