@@ -276,6 +276,20 @@ def _search_timing(
     return moved, shift
 
 
+def _bank(x, fs, link: LinkEstimate, timing: SymbolTiming, cum):
+    """Correlator outputs of every symbol of the grid, and the templates' Gram matrix."""
+    z = correlate_symbols(
+        x,
+        fs,
+        link.tone_freqs_hz,
+        timing.t0_samples,
+        timing.period_samples,
+        timing.n_symbols,
+        cumulative=cum,
+    )
+    return z, template_gram(link.tone_freqs_hz, timing.period_samples, fs)
+
+
 def _header_consistent(frame: FrameAlignment, check: BitCheck, profile: LinkProfile) -> bool:
     """Whether the header's bit errors are plausible at the payload's measured error rate.
 
@@ -378,16 +392,7 @@ def measure_burst(
             None,
             np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
         )
-    z_all = correlate_symbols(
-        x,
-        fs,
-        link.tone_freqs_hz,
-        timing.t0_samples,
-        timing.period_samples,
-        timing.n_symbols,
-        cumulative=cum,
-    )
-    gram = template_gram(link.tone_freqs_hz, timing.period_samples, fs)
+    z_all, gram = _bank(x, fs, link, timing, cum)
     m = profile.modulation
     # Symbols within the detected burst (a symbol's worth of slack at each detected edge).
     k0, k1 = _symbols_inside(timing, lo_edge, hi_edge)
@@ -486,16 +491,7 @@ def measure_burst(
             # The known symbols show a residual carrier offset: retune the correlators.
             link = link_with(link, cfo_hz=link.cfo_hz + dcfo)
             cum = mix_cumulative(x, fs, link.tone_freqs_hz)
-        z_all = correlate_symbols(
-            x,
-            fs,
-            link.tone_freqs_hz,
-            timing.t0_samples,
-            timing.period_samples,
-            timing.n_symbols,
-            cumulative=cum,
-        )
-        gram = template_gram(link.tone_freqs_hz, timing.period_samples, fs)
+        z_all, gram = _bank(x, fs, link, timing, cum)
         # Decide and check the payload again on the refined grid.
         hard = (
             decide_symbols(z_all, first_fit, gram, modulation=m)
