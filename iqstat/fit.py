@@ -65,6 +65,7 @@ _Z975 = 1.959963984540054  # scipy.stats.norm.ppf(0.975)
 # likelihood-ratio test of A = 0, a parameter on the boundary (50:50 mixture of chi2_0 and
 # chi2_1; Self & Liang, J. Amer. Statist. Assoc. 82(398):605-610, 1987).
 _CHI2_1_Q90 = 2.705543454095404
+_CHI2_1_Q95 = 3.841458820694124  # chi2(1).ppf(0.95): the two-sided 95 % profile interval
 _LOG_GAMMA_FLOOR = math.log(1e-4)  # γ below this (−40 dB) is taken as the boundary A = 0
 _NEWTON_TOL = 1e-9  # Newton decrement (log-likelihood units) at which we stop
 _MAX_NEWTON = 100
@@ -140,7 +141,8 @@ class NoncoherentFit:
     detection_statistic : float or None
         2·(ℓ̂ − ℓ₀), the likelihood ratio against "noise only"; None for DD.
     ci_method : str
-        How the interval was made (``"wald-log-observed-info"`` or ``"none"``).
+        How the interval was made (``"profile-likelihood"`` below 6 dB,
+        ``"wald-log-observed-info"``, or ``"none"``).
     gof_statistic, gof_pvalue : float or None
         Kolmogorov–Smirnov statistic and p-value of the probability-integral transforms.
     gof_test : str
@@ -566,6 +568,10 @@ def _maximise(mix: _Mixture, x0: np.ndarray, tol: float = _NEWTON_TOL) -> _Optim
     )
 
 
+#: Below this Es/N0 [dB] the interval is the profile-likelihood one (the Wald one above).
+PROFILE_CI_BELOW_DB = 6.0
+
+
 def _profile_log_likelihood(
     mix: _Mixture, log_gamma_on: float, beta0: float
 ) -> tuple[float, float]:
@@ -974,13 +980,17 @@ def _build(
     detection_statistic: float | None,
     upper95_db: float | None,
     gof: tuple[float, float, int] | None,
+    profile_ci_db: tuple[float, float] | None = None,
 ) -> NoncoherentFit:
     esn0 = _finite_or_none(esn0)
     esn0_db = _finite_or_none(_db(esn0)) if esn0 is not None else None
     ci = None
-    if esn0_db is not None and log_gamma_var is not None and log_gamma_var > 0:
+    ci_method = "none"
+    if esn0_db is not None and profile_ci_db is not None:
+        ci, ci_method = profile_ci_db, "profile-likelihood"
+    elif esn0_db is not None and log_gamma_var is not None and log_gamma_var > 0:
         half = _Z975 * math.sqrt(log_gamma_var) * 10.0 / math.log(10.0)  # dB per neper
-        ci = (esn0_db - half, esn0_db + half)
+        ci, ci_method = (esn0_db - half, esn0_db + half), "wald-log-observed-info"
     shift = 10.0 * math.log10(BITS_PER_SYMBOL[modulation])
     return NoncoherentFit(
         method=method,
@@ -1000,7 +1010,7 @@ def _build(
         iterations=int(iterations),
         log_likelihood=_finite_or_none(log_likelihood),
         detection_statistic=_finite_or_none(detection_statistic),
-        ci_method="wald-log-observed-info" if ci is not None else "none",
+        ci_method=ci_method,
         gof_statistic=None if gof is None else _finite_or_none(gof[0]),
         gof_pvalue=None if gof is None else _finite_or_none(gof[1]),
         gof_test="ks-pit-branchwise" if gof is not None else "none",
@@ -1092,6 +1102,9 @@ def _ml_result(
             converged, message = False, bad
     if converged:
         message = f"converged in {opt.iterations} Newton iterations"
+    profile_ci = None
+    if converged and not mix.p_on_free and _db(esn0) < PROFILE_CI_BELOW_DB:
+        profile_ci = _profile_interval_db(mix, ll_hat, x, var_log_gamma, energy_weight)
     gof = None
     if run_gof:  # at the boundary this tests the noise-only model (A = 0)
         gof = check_energy_laws(
@@ -1119,7 +1132,47 @@ def _ml_result(
         detection_statistic=lr,
         upper95_db=upper,
         gof=gof,
+        profile_ci_db=profile_ci,
     )
+
+
+def _profile_interval_db(
+    mix: _Mixture, ll_hat: float, x: np.ndarray, var_log_gamma: float, energy_weight: float
+) -> tuple[float, float] | None:
+    """95 % profile-likelihood interval of Es/N0 [dB]: 2·(ℓ̂ − ℓ_p(γ)) = χ²₁(0.95) = 3.841.
+
+    Near 0 dB the likelihood in log γ is skewed (a weak signal and a small rise of N0 look
+    alike), so the Wald interval under-covers; the profile interval follows the actual
+    shape. None when an end cannot be bracketed (the Wald interval is then used).
+    """
+    lg_hat = 2.0 * x[0] - x[1]  # log γ_on = 2·log A − log N0
+    target = ll_hat - 0.5 * _CHI2_1_Q95
+
+    beta = [x[1]]  # warm start: the profiled log N0 of the previous evaluation
+
+    def excess(lg: float) -> float:
+        ll, beta[0] = _profile_log_likelihood(mix, lg, beta[0])
+        return ll - target
+
+    step = max(_Z975 * math.sqrt(var_log_gamma), 1e-3)
+    ends = []
+    for sign in (-1.0, 1.0):
+        inner, outer = lg_hat, lg_hat + sign * step
+        for _ in range(8):
+            if excess(outer) < 0:
+                break
+            inner, outer = outer, outer + sign * step
+            step *= 1.5
+        else:
+            return None
+        try:
+            ends.append(
+                optimize.brentq(excess, min(inner, outer), max(inner, outer), xtol=1e-3)
+            )  # 0.004 dB
+        except ValueError:
+            return None
+    lo, hi = (10.0 / math.log(10.0) * e + _db(energy_weight) for e in ends)
+    return (float(lo), float(hi))
 
 
 def _upper_bound_db(mix: _Mixture, ll_max: float, x: np.ndarray, energy_weight: float):

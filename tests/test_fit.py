@@ -706,3 +706,23 @@ def test_gof_statistic_equals_scipy_kstest(modulation, n):
     ref = max(stats.kstest(u[:, j], "uniform").statistic for j in range(m))
     assert n_values == n * m
     assert stat == pytest.approx(ref, rel=1e-12, abs=0)
+
+
+def test_profile_likelihood_interval_at_low_esn0():
+    # Below 6 dB the interval is the profile-likelihood one (2·Δℓ = χ²₁(0.95) = 3.841,
+    # Wilks), which follows the skew of the likelihood in log γ; above, the Wald one.
+    rng = np.random.default_rng(77)
+
+    def outputs(n, es_db):
+        a = np.sqrt(10 ** (es_db / 10))
+        z = (rng.standard_normal((n, 2)) + 1j * rng.standard_normal((n, 2))) / np.sqrt(2)
+        s = rng.integers(0, 2, n)
+        z[np.arange(n), s] += a * np.exp(2j * np.pi * rng.random(n))
+        return z
+
+    low = fit_nda(outputs(2000, 1.0), modulation="2fsk", gof=False)
+    assert low.ci_method == "profile-likelihood"
+    lo, hi = low.esn0_db_ci95
+    assert lo < low.esn0_db < hi
+    high = fit_nda(outputs(2000, 10.0), modulation="2fsk", gof=False)
+    assert high.ci_method == "wald-log-observed-info"
