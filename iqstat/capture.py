@@ -7,6 +7,7 @@ samples (NaN, Inf) are erasures: they read as 0 and are counted.
 
 from __future__ import annotations
 
+import datetime
 import mmap
 from collections.abc import Iterator
 from dataclasses import dataclass, field
@@ -190,6 +191,21 @@ class Capture:
         starts = [s.sample_start for s in self.segments]
         i = int(np.searchsorted(starts, sample, side="right")) - 1
         return self.segments[max(i, 0)]
+
+    def sample_datetime(self, sample: int) -> str | None:
+        """UTC time of sample ``sample`` (RFC 3339, ``Z``) from its segment's ``core:datetime``.
+
+        None when the segment has no time. Fractional seconds are given to the microsecond.
+        """
+        seg = self.segment_of(sample)
+        if seg.datetime is None:
+            return None
+        try:
+            t0 = datetime.datetime.fromisoformat(seg.datetime.replace("Z", "+00:00"))
+        except ValueError:
+            return None
+        t = t0 + datetime.timedelta(seconds=(sample - seg.sample_start) / self.sample_rate_hz)
+        return t.astimezone(datetime.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
     # -- sample access --------------------------------------------------------------------
     def _map_components(self, index: int, first_item: int, n_items: int) -> np.ndarray:

@@ -624,11 +624,12 @@ def _unmeasured(
 def _measure_burst_safely(capture, burst, profile, layout, detection, rate, spacing):
     """:func:`measure_burst`, with a burst that cannot be measured reported, not raised."""
     try:
-        return measure_burst(
+        result = measure_burst(
             capture, burst, profile, layout, detection, symbol_rate_hz=rate, tone_spacing_hz=spacing
         )
     except MeasurementError as exc:
-        return _unmeasured(burst, "not-measured", str(exc))
+        result = _unmeasured(burst, "not-measured", str(exc))
+    return dataclasses.replace(result, start_time=capture.sample_datetime(burst.start_sample))
 
 
 def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]:

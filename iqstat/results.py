@@ -42,6 +42,7 @@ class BurstResult:
     power_dbfs: float
     flags: tuple[str, ...]
     message: str
+    start_time: str | None = None  # UTC time of start_sample (RFC 3339), if recorded
 
     @property
     def ebn0_db(self) -> float | None:
@@ -70,6 +71,7 @@ class BurstResult:
             "index": self.index,
             "start_sample": self.start_sample,
             "stop_sample": self.stop_sample,
+            "start_time": self.start_time,
             "symbols": self.symbols,
             "cfo_hz": self.cfo_hz,
             "symbol_rate_hz": None if self.link is None else self.link.symbol_rate_hz,

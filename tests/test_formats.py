@@ -113,6 +113,10 @@ def test_multi_segment_frequencies_and_times(tmp_path, rng):
     assert cap.segment_of(399).frequency_hz == 868.1e6
     assert cap.segment_of(400).frequency_hz == 868.3e6
     assert cap.segment_of(999).datetime == "2026-05-01T10:00:01Z"
+    # A sample's time: its segment's core:datetime plus (sample − sample_start)/fs.
+    assert cap.sample_datetime(400) == "2026-05-01T10:00:01.000000Z"
+    assert cap.sample_datetime(400 + 125_000) == "2026-05-01T10:00:01.500000Z"
+    assert cap.sample_datetime(399) == "2026-05-01T10:00:00.001596Z"
     ref = sigmf.fromfile(str(meta)).read_samples()
     np.testing.assert_array_equal(cap.read(), ref.astype(np.complex64))
 

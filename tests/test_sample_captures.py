@@ -64,6 +64,11 @@ def test_measure_sample_capture_cli_and_api(tmp_path, name):
     assert s["bursts"] == len(sent)
     assert lo - 0.3 <= truth_db <= hi + 0.3, (s["ebn0_db"], truth_db)
     assert s["bits_checked"] >= 0.9 * len(sent) * 400
+    # Burst times from the recording's core:datetime (UTC) plus start_sample/fs.
+    meta = json.loads((SAMPLES / f"{name}.sigmf-meta").read_text())
+    t0 = meta["captures"][0]["core:datetime"]
+    first = d["bursts"][0]
+    assert first["start_time"].startswith(t0[:16])
     # The notebook API gives the same figure.
     rep = iqstat.measure_file(SAMPLES / f"{name}.sigmf-meta", profile=SAMPLES / "link.toml")
     assert rep.summary.ebn0_db == pytest.approx(s["ebn0_db"], abs=1e-9)
