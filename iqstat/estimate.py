@@ -44,6 +44,7 @@ from scipy import special
 from scipy.signal import zoom_fft
 
 from iqstat.errors import MeasurementError, ParameterError
+from iqstat.units import check_positive
 
 Modulation = Literal["2fsk", "4fsk", "ook"]
 Source = Literal["profile", "estimated"]
@@ -220,22 +221,12 @@ def _n_tones(modulation: str) -> int:
     raise ParameterError(f"modulation {modulation!r} is not known; use one of {', '.join(N_TONES)}")
 
 
-def _positive(name: str, value, hint: str) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} {value!r} is not a number; {hint}") from None
-    if not math.isfinite(v) or v <= 0:
-        raise ParameterError(f"{name} {value!r} must be a positive finite number; {hint}")
-    return v
-
-
 def _check_rates(
     modulation: str, fs: float, symbol_rate_hz, tone_spacing_hz
 ) -> tuple[float | None, float | None]:
     rs = None
     if symbol_rate_hz is not None:
-        rs = _positive("symbol_rate_hz", symbol_rate_hz, "give the symbol rate in Bd")
+        rs = check_positive("symbol_rate_hz", symbol_rate_hz, "give the symbol rate in Bd")
         if rs > fs / 2:
             raise ParameterError(
                 f"symbol_rate_hz {symbol_rate_hz!r} exceeds half the sample rate {fs:g} Hz; "
@@ -248,7 +239,7 @@ def _check_rates(
                 f"tone_spacing_hz {tone_spacing_hz!r} applies to FSK only; pass None for ook"
             )
     elif tone_spacing_hz is not None:
-        df = _positive("tone_spacing_hz", tone_spacing_hz, "give the tone spacing in Hz")
+        df = check_positive("tone_spacing_hz", tone_spacing_hz, "give the tone spacing in Hz")
         span = (N_TONES[modulation] - 1) * df
         if span >= fs:
             raise ParameterError(
@@ -264,7 +255,7 @@ class _Burst:
     def __init__(self, x, sample_rate_hz, modulation: str):
         self.modulation = modulation
         self.m = _n_tones(modulation)
-        self.fs = _positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
+        self.fs = check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
         arr = np.asarray(x)
         if arr.ndim != 1:
             raise ParameterError(f"burst samples must be one-dimensional, got shape {arr.shape}")

@@ -412,20 +412,25 @@ def load_profile(path: str | os.PathLike) -> LinkProfile:
         key, wrong type or invalid value.
     """
     p = os.fspath(path)
+    return profile_from_dict(read_toml(p, "profile"), source=p)
+
+
+def read_toml(path: str | os.PathLike, what: str) -> dict:
+    """Parse a TOML file; ProfileError naming ``what`` ("profile", "scenario") on any problem."""
+    p = os.fspath(path)
     if not os.path.exists(p):
-        raise ProfileError(f"profile file {p} not found; check the path")
+        raise ProfileError(f"{what} file {p} not found; check the path")
     if os.path.isdir(p):
-        raise ProfileError(f"profile file {p} is a directory; give the path of a .toml file")
+        raise ProfileError(f"{what} file {p} is a directory; give the path of a .toml file")
     try:
         with open(p, "rb") as fh:
-            doc = tomllib.load(fh)
+            return tomllib.load(fh)
     except tomllib.TOMLDecodeError as e:
-        raise ProfileError(f"profile file {p}: TOML syntax error: {e}") from None
+        raise ProfileError(f"{what} file {p}: TOML syntax error: {e}") from None
     except UnicodeDecodeError as e:
-        raise ProfileError(f"profile file {p} is not UTF-8 text ({e.reason})") from None
+        raise ProfileError(f"{what} file {p} is not UTF-8 text ({e.reason})") from None
     except OSError as e:
-        raise ProfileError(f"profile file {p} cannot be read: {e.strerror}") from None
-    return profile_from_dict(doc, source=p)
+        raise ProfileError(f"{what} file {p} cannot be read: {e.strerror}") from None
 
 
 def _toml_value(v: Any) -> str:

@@ -76,3 +76,14 @@ def ebn0_db_to_cn0_dbhz(ebn0_db: float, bit_rate_hz: float) -> float:
 def cn0_dbhz_to_ebn0_db(cn0_dbhz: float, bit_rate_hz: float) -> float:
     """Eb/N0 [dB] = C/N0 [dB-Hz] − 10·log10(R_b)."""
     return cn0_dbhz - 10.0 * math.log10(bit_rate_hz)
+
+
+def check_positive(name: str, value, hint: str) -> float:
+    """``value`` as a positive finite float, or ParameterError naming ``name`` and the fix."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise ParameterError(f"{name} {value!r} is not a number; {hint}") from None
+    if not math.isfinite(v) or v <= 0:
+        raise ParameterError(f"{name} {value!r} must be a positive finite number; {hint}")
+    return v

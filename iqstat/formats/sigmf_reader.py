@@ -123,19 +123,24 @@ def parse_metadata(text: str, label: str) -> dict:
         raise CaptureError(f"metadata {label} is not SigMF: missing top-level {', '.join(missing)}")
     if "core:datatype" not in meta["global"]:
         raise CaptureError(f'metadata {label} lacks global core:datatype (e.g. "ci16_le")')
+    validate_metadata(meta, f"metadata {label}")
+    return meta
+
+
+def validate_metadata(meta: dict, what: str) -> None:
+    """The sigmf library's schema check; CaptureError "<what> fails SigMF validation at …".
+
+    The library warns (DeprecationWarning) about undeclared extension namespaces; a recording
+    from another tool may have them, and they do not affect reading, so that is silenced.
+    """
     with warnings.catch_warnings():
-        # The library warns (DeprecationWarning) about undeclared extension namespaces; a
-        # recording from another tool may have them, and they do not affect reading.
         warnings.simplefilter("ignore", DeprecationWarning)
         try:
             sigmf.validate.validate(meta)
         except jsonschema.exceptions.ValidationError as exc:
             where = "/".join(str(p) for p in exc.absolute_path) or "top level"
             first = str(exc.message).splitlines()[0][:160]
-            raise CaptureError(
-                f"metadata {label} fails SigMF validation at {where}: {first}"
-            ) from None
-    return meta
+            raise CaptureError(f"{what} fails SigMF validation at {where}: {first}") from None
 
 
 def _data_file_source(meta_path: Path, glob: dict) -> _DataSource:

@@ -24,17 +24,16 @@ import json
 import os
 import re
 import tempfile
-import warnings
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 
-import jsonschema
 import numpy as np
 import sigmf
 import sigmf.validate
 
 from iqstat.errors import CaptureError, ParameterError
 from iqstat.formats.datatypes import DataType, encode_components, parse_datatype
+from iqstat.formats.sigmf_reader import validate_metadata
 
 META_EXT = ".sigmf-meta"
 DATA_EXT = ".sigmf-data"
@@ -244,16 +243,7 @@ def build_metadata(
         "annotations": _check_annotations(_jsonable(list(annotations))),
     }
     _check_namespaces(meta)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", DeprecationWarning)
-        try:
-            sigmf.SigMFFile(metadata=meta).validate()
-        except jsonschema.exceptions.ValidationError as exc:
-            where = "/".join(str(p) for p in exc.absolute_path) or "top level"
-            first = str(exc.message).splitlines()[0][:160]
-            raise CaptureError(
-                f"metadata to be written fails SigMF validation at {where}: {first}"
-            ) from None
+    validate_metadata(meta, "metadata to be written")
     return meta
 
 

@@ -25,6 +25,7 @@ import numpy as np
 from scipy.special import ndtr
 
 from iqstat.errors import ParameterError
+from iqstat.units import check_positive
 
 Modulation = Literal["2fsk", "4fsk", "ook"]
 OokShape = Literal["rect", "raised-cosine"]
@@ -34,16 +35,6 @@ ALPHABET_SIZE: dict[str, int] = {"2fsk": 2, "4fsk": 4, "ook": 2}
 
 #: Gaussian tails beyond this many standard deviations are treated as zero (Φ(−9) ≈ 1e-19).
 _GAUSS_SPAN_SIGMAS = 9.0
-
-
-def _check_positive(name: str, value: float, hint: str) -> float:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ParameterError(f"{name} {value!r} is not a number; {hint}") from None
-    if not math.isfinite(v) or v <= 0:
-        raise ParameterError(f"{name} {value!r} must be a positive finite number; {hint}")
-    return v
 
 
 def _check_finite(name: str, value: float) -> float:
@@ -75,8 +66,8 @@ def symbol_period_samples(
     float
         Samples per symbol, generally not an integer.
     """
-    fs = _check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
-    rs = _check_positive("symbol_rate_hz", symbol_rate_hz, "give the symbol rate in Bd")
+    fs = check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
+    rs = check_positive("symbol_rate_hz", symbol_rate_hz, "give the symbol rate in Bd")
     ppm = _check_finite("clock_offset_ppm", clock_offset_ppm)
     if abs(ppm) >= 1e5:
         raise ParameterError(
@@ -275,7 +266,7 @@ def modulate(
             f"modulation {modulation!r} is not known; use one of {', '.join(ALPHABET_SIZE)}"
         )
     m_size = ALPHABET_SIZE[modulation]
-    fs = _check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
+    fs = check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
     period = symbol_period_samples(fs, symbol_rate_hz, clock_offset_ppm)
     if period < 1.0:
         raise ParameterError(
@@ -330,9 +321,9 @@ def modulate(
                 f"tone_spacing_hz is required for {modulation}; give the spacing of "
                 "adjacent tones in Hz"
             )
-        spacing = _check_positive("tone_spacing_hz", tone_spacing_hz, "give it in Hz")
+        spacing = check_positive("tone_spacing_hz", tone_spacing_hz, "give it in Hz")
         if bt is not None:
-            bt = _check_positive("bt", bt, "use e.g. 0.5, or None for a rectangular pulse")
+            bt = check_positive("bt", bt, "use e.g. 0.5, or None for a rectangular pulse")
         levels = sym.astype(np.float64) - (m_size - 1) / 2.0
         out = np.zeros(n_out, dtype=np.complex128)
         inside = t_rel >= 0.0

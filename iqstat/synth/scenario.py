@@ -14,14 +14,13 @@ import difflib
 import math
 import os
 import re
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
 
 from iqstat.errors import IqstatError, ProfileError
 from iqstat.formats.datatypes import parse_datatype
-from iqstat.profile import LinkProfile, profile_from_dict
+from iqstat.profile import LinkProfile, profile_from_dict, read_toml
 from iqstat.units import parse_quantity
 
 #: Keys of the scenario's own tables (and of the interferer sub-table).
@@ -405,15 +404,4 @@ def load_scenario(path: str | os.PathLike) -> Scenario:
         Missing or unreadable file, TOML syntax error, or an invalid scenario.
     """
     p = Path(path)
-    if not p.is_file():
-        raise ProfileError(f"scenario file {p} not found; check the path")
-    try:
-        with open(p, "rb") as fh:
-            doc = tomllib.load(fh)
-    except tomllib.TOMLDecodeError as e:
-        raise ProfileError(f"scenario file {p}: TOML syntax error: {e}") from None
-    except UnicodeDecodeError as e:
-        raise ProfileError(f"scenario file {p} is not UTF-8 text ({e.reason})") from None
-    except OSError as e:
-        raise ProfileError(f"scenario file {p} cannot be read: {e.strerror}") from None
-    return scenario_from_dict(doc, source=str(p), name=p.stem)
+    return scenario_from_dict(read_toml(p, "scenario"), source=str(p), name=p.stem)
