@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Sequence
 
 import numpy as np
 import scipy.fft
@@ -25,7 +26,7 @@ from iqstat.correlate import (
 from iqstat.errors import IqstatError, MeasurementError
 from iqstat.estimate import LinkEstimate, estimate_link, link_with, refine_link_across_bursts
 from iqstat.facts import CaptureFacts, compute_facts
-from iqstat.fit import decide_symbols, fit_da, fit_dd, fit_nda
+from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
 from iqstat.formats.open import open_capture
 from iqstat.patterns import BitCheck, check_known, check_prbs, prbs_bits
 from iqstat.profile import (
@@ -79,6 +80,10 @@ SPACING_MISMATCH_FRACTION = 0.05
 GOF_FLAG_PVALUE = 1e-3
 #: Detection loss (available − detected Eb/N0) above which the burst is flagged.
 DETECTION_LOSS_FLAG_DB = 1.5
+#: Bursts measured together (each stage runs over the batch): at most this many …
+BATCH_BURSTS = 64
+#: … and about this many samples in their windows (bounds the batch's memory).
+BATCH_SAMPLES = 1 << 20
 
 
 def _link_summary(profile: LinkProfile, links: list[LinkEstimate], rho: float | None):
@@ -112,8 +117,8 @@ def _link_summary(profile: LinkProfile, links: list[LinkEstimate], rho: float | 
     )
 
 
-def _read_burst(capture: Capture, burst: Burst, margin: int) -> tuple[int, np.ndarray]:
-    """The burst's samples with ``margin`` more on each side, as ``(first index, samples)``.
+def _window(capture: Capture, burst: Burst, margin: int) -> tuple[int, int]:
+    """The burst's sample range with ``margin`` more on each side, as ``(first, stop)``.
 
     The window is widened to a length with small prime factors, so that every FFT the later
     stages take of it is fast (an arbitrary length can be prime and cost 10× more).
@@ -123,7 +128,31 @@ def _read_burst(capture: Capture, burst: Burst, margin: int) -> tuple[int, np.nd
     n = min(scipy.fft.next_fast_len(b - a), capture.n_samples)
     b = min(capture.n_samples, a + n)
     a = max(0, b - n)
+    return a, b
+
+
+def _read_burst(capture: Capture, burst: Burst, margin: int) -> tuple[int, np.ndarray]:
+    """The burst's window (see :func:`_window`) as ``(first index, samples)``."""
+    a, b = _window(capture, burst, margin)
     return a, capture.read(a, b - a)
+
+
+def _read_bursts(
+    capture: Capture, bursts: Sequence[Burst], margin: int
+) -> list[tuple[int, np.ndarray]]:
+    """The windows of consecutive bursts; one read of their whole span where they are dense.
+
+    Windows may overlap (close bursts); they are views of one array then, and no stage
+    writes into its samples.
+    """
+    spans = [_window(capture, b, margin) for b in bursts]
+    if not spans:
+        return []
+    lo, hi = spans[0][0], max(b for _, b in spans)
+    if hi - lo > 2 * sum(b - a for a, b in spans):
+        return [(a, capture.read(a, b - a)) for a, b in spans]
+    block = capture.read(lo, hi - lo)
+    return [(a, block[a - lo : b - lo]) for a, b in spans]
 
 
 def _blind_rates(capture, detection, profile, margin) -> tuple[float | None, float | None]:
@@ -333,6 +362,360 @@ def _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile):
     return (start, stop), known, check
 
 
+@dataclasses.dataclass
+class _Work:
+    """One burst's state while its batch moves through the stages (internal, mutable).
+
+    ``result`` is set when the burst leaves the chain early (it could not be measured); later
+    stages skip it.
+    """
+
+    burst: Burst
+    x0: int
+    x: np.ndarray
+    lo_edge: float = 0.0
+    hi_edge: float = 0.0
+    flags: list[str] = dataclasses.field(default_factory=list)
+    result: BurstResult | None = None
+    link: LinkEstimate | None = None
+    cum: np.ndarray | None = None
+    timing: SymbolTiming | None = None
+    z_all: np.ndarray | None = None
+    gram: np.ndarray | None = None
+    k0: int = 0
+    k1: int = 0
+    first_fit: NoncoherentFit | None = None
+    hard: np.ndarray | None = None
+    frame: FrameAlignment | None = None
+    sel: tuple[int, int] = (0, 0)
+    known: np.ndarray | None = None
+    check: BitCheck | None = None
+    fit: NoncoherentFit | None = None
+    fit_da: NoncoherentFit | None = None
+    fit_dd: NoncoherentFit | None = None
+
+
+@dataclasses.dataclass(frozen=True)
+class _Context:
+    """What every stage of a batch needs besides the bursts (internal)."""
+
+    fs: float
+    profile: LinkProfile
+    layout: FrameLayout
+    detection: BurstDetection
+    header: np.ndarray
+    header_error: str | None
+    symbol_rate_hz: float
+    tone_spacing_hz: float | None
+
+
+def _active(works: list[_Work]) -> list[_Work]:
+    return [w for w in works if w.result is None]
+
+
+def _each(works: list[_Work], step) -> None:
+    """Apply a per-burst step to the bursts still in the chain; an error ends that burst only."""
+    for w in _active(works):
+        try:
+            step(w)
+        except MeasurementError as exc:
+            w.result = _unmeasured(w.burst, "not-measured", str(exc))
+
+
+def _batched(works: list[_Work], stage) -> None:
+    """Apply a batched stage; if it fails, run it burst by burst so one bad burst ends alone.
+
+    A stage computes all its outputs before it assigns any, so a retry starts clean.
+    """
+    act = _active(works)
+    if not act:
+        return
+    try:
+        stage(act)
+    except MeasurementError:
+        _each(act, lambda w: stage([w]))
+
+
+def _stage_link(works: list[_Work], ctx: _Context) -> None:
+    def step(w: _Work) -> None:
+        try:
+            est = estimate_link(
+                w.x,
+                ctx.fs,
+                modulation=ctx.profile.modulation,
+                symbol_rate_hz=ctx.symbol_rate_hz,
+                tone_spacing_hz=ctx.tone_spacing_hz,
+            )
+        except MeasurementError:
+            w.result = _unmeasured(
+                w.burst,
+                "link-not-estimated",
+                "carrier and rates could not be estimated on this burst",
+            )
+            return
+        w.link = _as_estimated(est, ctx.profile)
+
+    _each(works, step)
+
+
+def _stage_timing(works: list[_Work], ctx: _Context) -> None:
+    """Tone mixing, symbol timing (searched blind where the symbol-rate line is weak), bank."""
+
+    def step(w: _Work) -> None:
+        link = w.link
+        cum = mix_cumulative(w.x, ctx.fs, link.tone_freqs_hz)
+        timing = recover_timing(
+            w.x, ctx.fs, link.symbol_rate_hz, link.tone_freqs_hz, cumulative=cum
+        )
+        sps = ctx.fs / ctx.symbol_rate_hz
+        lo = w.burst.start_sample - w.x0 - 0.5 * sps
+        hi = w.burst.stop_sample - w.x0 + 0.5 * sps
+        if timing.quality.get("line_snr_db", np.inf) < BLIND_SEARCH_LINE_DB:
+            # No usable symbol-rate line (weak burst, or h = 1/2 whose feature line is faint):
+            # search the timing phase directly for the largest decision margin.
+            k0, k1 = _symbols_inside(timing, lo, hi)
+            timing, _ = _search_timing(
+                cum,
+                timing,
+                len(w.x),
+                k0,
+                k1,
+                None,
+                np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
+            )
+        z_all, gram = _bank(w.x, ctx.fs, link, timing, cum)
+        # Symbols within the detected burst (a symbol's worth of slack at each detected edge).
+        k0, k1 = _symbols_inside(timing, lo, hi)
+        w.cum, w.timing, w.z_all, w.gram = cum, timing, z_all, gram
+        w.lo_edge, w.hi_edge, w.k0, w.k1 = lo, hi, k0, k1
+        if k1 - k0 < MIN_FIT_SYMBOLS:
+            w.result = _unmeasured(
+                w.burst,
+                "too-few-symbols",
+                f"only {k1 - k0} whole symbols: too few to fit",
+                link=link,
+                timing=timing,
+                symbols=k1 - k0,
+            )
+
+    _each(works, step)
+
+
+def _hard_decisions(w: _Work, modulation: str) -> np.ndarray:
+    if modulation == "ook":
+        if w.first_fit.amplitude:
+            return decide_symbols(w.z_all, w.first_fit, w.gram, modulation=modulation)
+        return np.zeros(len(w.z_all), dtype=np.int64)
+    return np.argmax(np.abs(w.z_all), axis=1)  # largest-energy decision
+
+
+def _stage_decide(works: list[_Work], ctx: _Context) -> None:
+    m = ctx.profile.modulation
+    if m == "ook":
+        # The decision threshold depends on the fitted amplitude and noise.
+        def first(batch: list[_Work]) -> None:
+            fits = [fit_nda(w.z_all[w.k0 : w.k1], w.gram, modulation=m, gof=False) for w in batch]
+            for w, f in zip(batch, fits, strict=True):
+                w.first_fit = f
+
+        _batched(works, first)
+    _each(works, lambda w: setattr(w, "hard", _hard_decisions(w, m)))
+
+
+def _find_frame(w: _Work, ctx: _Context) -> None:
+    """Frame alignment on the header (a looser match confirmed by the payload), payload check."""
+    profile, layout, header = ctx.profile, ctx.layout, ctx.header
+    m = profile.modulation
+    hard, z_all, k1, timing = w.hard, w.z_all, w.k1, w.timing
+    if not len(header):
+        if profile.payload_kind != "unknown":
+            w.check = _check_payload(symbols_to_bits(hard[w.k0 : w.k1], m), layout, profile)
+        w.sel = (w.k0, w.k1)
+        return
+    # Search the whole read window: a detected edge can be a symbol or two off, and a header
+    # that starts before it must still be found.
+    n_tones = 2 if m == "ook" else z_all.shape[1]
+    soft = np.abs(z_all) ** 2 if m != "ook" else None
+    frame = align_frame(hard, header, soft=soft, n_tones=n_tones, detect_inverted=m != "ook")
+    framed = None
+    if frame.found:
+        framed = _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile)
+        if (
+            framed[2] is not None
+            and framed[2].locked
+            and not _header_consistent(frame, framed[2], profile)
+        ):
+            w.flags.append("header-mismatch")
+    elif profile.payload_kind != "unknown":
+        # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a looser
+        # match only when the payload pattern then locks (its own false-lock probability is
+        # 1e-6), which confirms the position.
+        loose = align_frame(
+            hard,
+            header,
+            soft=soft,
+            n_tones=n_tones,
+            detect_inverted=m != "ook",
+            max_errors=int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol),
+        )
+        if loose.found:
+            trial = _frame_symbols(loose, hard, header, n_tones, k1, timing, layout, profile)
+            if (
+                trial[2] is not None
+                and trial[2].locked
+                and _header_consistent(loose, trial[2], profile)
+            ):
+                frame = dataclasses.replace(
+                    loose, message=loose.message + "; confirmed by the payload pattern"
+                )
+                framed = trial
+    w.frame = frame
+    if framed is not None:
+        w.sel, w.known, w.check = framed
+    else:
+        w.sel = (w.k0, w.k1)
+        w.flags.append("sync-not-found")
+
+
+def _refine_on_known(w: _Work, ctx: _Context) -> None:
+    """Known symbols give a sharper timing criterion than the feature line: correlate the
+    burst with their waveform (energy criteria are flat for h = 1/2), then again."""
+    if (
+        w.known is None
+        or w.frame is None
+        or not w.frame.found
+        or w.timing.quality.get("line_snr_db", np.inf) >= DA_REFINE_LINE_DB
+    ):
+        return
+    fs, m, header = ctx.fs, ctx.profile.modulation, ctx.header
+    known, sel, link = w.known, w.sel, w.link
+    n_known = int(np.argmin(known >= 0)) if (known < 0).any() else len(known)
+    timing, shift, dcfo = refine_timing_known(
+        w.x,
+        fs,
+        w.timing,
+        first_symbol=sel[0],
+        symbols=known[:n_known],
+        modulation=m,
+        symbol_rate_hz=link.symbol_rate_hz,
+        tone_spacing_hz=link.tone_spacing_hz,
+        cfo_hz=link.cfo_hz,
+    )
+    cum = w.cum
+    if abs(dcfo) > CFO_REFINE_MIN_HZ:
+        # The known symbols show a residual carrier offset: retune the correlators.
+        link = link_with(link, cfo_hz=link.cfo_hz + dcfo)
+        cum = mix_cumulative(w.x, fs, link.tone_freqs_hz)
+    frame = dataclasses.replace(w.frame, start_symbol=sel[0] + shift)
+    if frame.start_symbol < 0 or frame.start_symbol + len(header) > timing.n_symbols:
+        return  # the refined grid puts the frame outside the window: keep the first grid
+    z_all, gram = _bank(w.x, fs, link, timing, cum)
+    # Decide and check the payload again on the refined grid.
+    probe = dataclasses.replace(w, z_all=z_all, gram=gram)
+    hard = _hard_decisions(probe, m)
+    k1 = _symbols_inside(timing, w.lo_edge, w.hi_edge)[1]
+    n_tones = 2 if m == "ook" else z_all.shape[1]
+    sel, known, check = _frame_symbols(
+        frame, hard, header, n_tones, k1, timing, ctx.layout, ctx.profile
+    )
+    w.timing, w.link, w.cum, w.z_all, w.gram, w.hard = timing, link, cum, z_all, gram, hard
+    w.frame, w.k1, w.sel, w.known, w.check = frame, k1, sel, known, check
+
+
+def _stage_fit(works: list[_Work], ctx: _Context) -> None:
+    """The NDA (headline), decision-directed and data-aided fits of the batch."""
+    m = ctx.profile.modulation
+
+    def fits(batch: list[_Work]) -> None:
+        zs = [w.z_all[w.sel[0] : w.sel[1]] for w in batch]
+        grams = [w.gram for w in batch]
+        nda = [fit_nda(z, g, modulation=m) for z, g in zip(zs, grams, strict=True)]
+        dd = [fit_dd(z, g, modulation=m, gof=False) for z, g in zip(zs, grams, strict=True)]
+        aided = []
+        for w, z in zip(batch, zs, strict=True):
+            if w.known is not None:
+                mask = w.known >= 0
+                if mask.sum() >= MIN_FIT_SYMBOLS:
+                    aided.append((w, z[mask], w.known[mask]))
+        da = [fit_da(z, s, w.gram, modulation=m, gof=False) for w, z, s in aided]
+        for w, f, g in zip(batch, nda, dd, strict=True):
+            w.fit, w.fit_dd, w.fit_da = f, g, None
+        for (w, _, _), f in zip(aided, da, strict=True):
+            w.fit_da = f
+
+    _batched(works, fits)
+
+
+def _finish(w: _Work, ctx: _Context) -> None:
+    """Flags, predicted BER and available Eb/N0: the burst's result."""
+    m, fit, flags = ctx.profile.modulation, w.fit, w.flags
+    if w.check is not None and not w.check.locked:
+        flags.append("pattern-not-locked")
+    if not fit.converged:
+        flags.append("fit-failed")
+    elif fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
+        flags.append("not-awgn")
+    pred = None
+    if fit.converged and fit.ebn0_db is not None:
+        rho = _theory_rho(np.abs(w.gram), m)
+        pred = float(theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho))
+    b = w.burst
+    avail = _available_ebn0_db(
+        w.x[int(b.start_sample - w.x0) : int(b.stop_sample - w.x0)],
+        ctx.detection,
+        w.link,
+        w.link.symbol_rate_hz * ctx.profile.bits_per_symbol,
+    )
+    res = BurstResult(
+        index=b.index,
+        start_sample=b.start_sample,
+        stop_sample=b.stop_sample,
+        power_dbfs=b.power_dbfs,
+        symbols=w.sel[1] - w.sel[0],
+        link=w.link,
+        timing=w.timing,
+        frame=w.frame,
+        fit=fit,
+        fit_da=w.fit_da,
+        fit_dd=w.fit_dd,
+        bit_check=w.check,
+        available_ebn0_db=avail,
+        predicted_ber=pred,
+        flags=(),
+        message=fit.message,
+    )
+    loss = res.detection_loss_db
+    if loss is not None and loss > DETECTION_LOSS_FLAG_DB:
+        flags.append("detection-loss")
+    w.result = dataclasses.replace(res, flags=tuple(flags))
+
+
+def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> list[BurstResult]:
+    """Every stage of the chain over a batch of bursts; one result per burst, in order."""
+    if ctx.header_error is not None:
+        return [
+            dataclasses.replace(
+                _unmeasured(b, "not-measured", ctx.header_error),
+                start_time=capture.sample_datetime(b.start_sample),
+            )
+            for b in bursts
+        ]
+    margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * ctx.fs / ctx.symbol_rate_hz))
+    windows = _read_bursts(capture, bursts, margin)
+    works = [_Work(burst=b, x0=a, x=x) for b, (a, x) in zip(bursts, windows, strict=True)]
+    _stage_link(works, ctx)
+    _stage_timing(works, ctx)
+    _stage_decide(works, ctx)
+    _each(works, lambda w: _find_frame(w, ctx))
+    _each(works, lambda w: _refine_on_known(w, ctx))
+    _stage_fit(works, ctx)
+    _each(works, lambda w: _finish(w, ctx))
+    return [
+        dataclasses.replace(w.result, start_time=capture.sample_datetime(w.burst.start_sample))
+        for w in works
+    ]
+
+
 def measure_burst(
     capture: Capture,
     burst: Burst,
@@ -346,210 +729,42 @@ def measure_burst(
     """Estimate the carrier, synchronise, correlate, fit and check one burst.
 
     ``symbol_rate_hz`` and ``tone_spacing_hz`` are the link's (from the profile, or refined
-    across bursts by :func:`measure_capture` when the profile lacks them).
+    across bursts by :func:`measure_capture` when the profile lacks them). A burst that cannot
+    be measured gives a result that says why (its flags and message), not an exception.
     """
-    flags: list[str] = []
-    base = dict(
-        index=burst.index,
-        start_sample=burst.start_sample,
-        stop_sample=burst.stop_sample,
-        power_dbfs=burst.power_dbfs,
-    )
-    fs = capture.sample_rate_hz
-    sps = fs / symbol_rate_hz
-    margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * sps))
-    x0, x = _read_burst(capture, burst, margin)
+    ctx = _context(capture, profile, layout, detection, symbol_rate_hz, tone_spacing_hz)
+    return _measure_batch(capture, [burst], ctx)[0]
+
+
+def _context(capture, profile, layout, detection, symbol_rate_hz, tone_spacing_hz) -> _Context:
     try:
-        link = _as_estimated(
-            estimate_link(
-                x,
-                fs,
-                modulation=profile.modulation,
-                symbol_rate_hz=symbol_rate_hz,
-                tone_spacing_hz=tone_spacing_hz,
-            ),
-            profile,
-        )
-    except MeasurementError:
-        link = None
-    if link is None:
-        return _unmeasured(
-            burst, "link-not-estimated", "carrier and rates could not be estimated on this burst"
-        )
-    cum = mix_cumulative(x, fs, link.tone_freqs_hz)
-    timing = recover_timing(x, fs, link.symbol_rate_hz, link.tone_freqs_hz, cumulative=cum)
-    lo_edge, hi_edge = burst.start_sample - x0 - 0.5 * sps, burst.stop_sample - x0 + 0.5 * sps
-    if timing.quality.get("line_snr_db", np.inf) < BLIND_SEARCH_LINE_DB:
-        # No usable symbol-rate line (weak burst, or h = 1/2 whose feature line is faint):
-        # search the timing phase directly for the largest decision margin.
-        k0, k1 = _symbols_inside(timing, lo_edge, hi_edge)
-        timing, _ = _search_timing(
-            cum,
-            timing,
-            len(x),
-            k0,
-            k1,
-            None,
-            np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
-        )
-    z_all, gram = _bank(x, fs, link, timing, cum)
-    m = profile.modulation
-    # Symbols within the detected burst (a symbol's worth of slack at each detected edge).
-    k0, k1 = _symbols_inside(timing, lo_edge, hi_edge)
-    z_in = z_all[k0:k1]
-    if len(z_in) < MIN_FIT_SYMBOLS:
-        return _unmeasured(
-            burst,
-            "too-few-symbols",
-            f"only {len(z_in)} whole symbols: too few to fit",
-            link=link,
-            timing=timing,
-            symbols=len(z_in),
-        )
-    if m == "ook":
-        # The decision threshold depends on the fitted amplitude and noise.
-        first_fit = fit_nda(z_in, gram, modulation=m, gof=False)
-        hard = (
-            decide_symbols(z_all, first_fit, gram, modulation=m)
-            if first_fit.amplitude
-            else np.zeros(len(z_all), dtype=np.int64)
-        )
-    else:
-        hard = np.argmax(np.abs(z_all), axis=1)  # largest-energy decision
-    header = _header_symbols(layout, m)
-    frame = None
-    sel = (k0, k1)
-    known = None
-    check = None
-    if len(header):
-        # Search the whole read window: a detected edge can be a symbol or two off, and a
-        # header that starts before it must still be found.
-        n_tones = 2 if m == "ook" else z_all.shape[1]
-        soft = np.abs(z_all) ** 2 if m != "ook" else None
-        frame = align_frame(hard, header, soft=soft, n_tones=n_tones, detect_inverted=m != "ook")
-        framed = None
-        if frame.found:
-            framed = _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile)
-            if (
-                framed[2] is not None
-                and framed[2].locked
-                and not _header_consistent(frame, framed[2], profile)
-            ):
-                flags.append("header-mismatch")
-        elif profile.payload_kind != "unknown":
-            # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a
-            # looser match only when the payload pattern then locks (its own false-lock
-            # probability is 1e-6), which confirms the position.
-            loose = align_frame(
-                hard,
-                header,
-                soft=soft,
-                n_tones=n_tones,
-                detect_inverted=m != "ook",
-                max_errors=int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol),
-            )
-            if loose.found:
-                trial = _frame_symbols(loose, hard, header, n_tones, k1, timing, layout, profile)
-                if (
-                    trial[2] is not None
-                    and trial[2].locked
-                    and _header_consistent(loose, trial[2], profile)
-                ):
-                    frame = dataclasses.replace(
-                        loose, message=loose.message + "; confirmed by the payload pattern"
-                    )
-                    framed = trial
-        if framed is not None:
-            sel, known, check = framed
-        else:
-            flags.append("sync-not-found")
-    elif profile.payload_kind != "unknown":
-        bits = symbols_to_bits(hard[k0:k1], m)
-        check = _check_payload(bits, layout, profile)
-    if (
-        known is not None
-        and frame is not None
-        and frame.found
-        and timing.quality.get("line_snr_db", np.inf) < DA_REFINE_LINE_DB
-    ):
-        # Known symbols give a sharper timing criterion than the feature line: correlate the
-        # burst with their waveform (energy criteria are flat for h = 1/2), then again.
-        n_known = int(np.argmin(known >= 0)) if (known < 0).any() else len(known)
-        before = (timing, z_all, gram, sel, known, check, link, cum)
-        timing, shift, dcfo = refine_timing_known(
-            x,
-            fs,
-            timing,
-            first_symbol=sel[0],
-            symbols=known[:n_known],
-            modulation=m,
-            symbol_rate_hz=link.symbol_rate_hz,
-            tone_spacing_hz=link.tone_spacing_hz,
-            cfo_hz=link.cfo_hz,
-        )
-        if abs(dcfo) > CFO_REFINE_MIN_HZ:
-            # The known symbols show a residual carrier offset: retune the correlators.
-            link = link_with(link, cfo_hz=link.cfo_hz + dcfo)
-            cum = mix_cumulative(x, fs, link.tone_freqs_hz)
-        z_all, gram = _bank(x, fs, link, timing, cum)
-        # Decide and check the payload again on the refined grid.
-        hard = (
-            decide_symbols(z_all, first_fit, gram, modulation=m)
-            if m == "ook" and first_fit.amplitude
-            else np.argmax(np.abs(z_all), axis=1)
-        )
-        frame = dataclasses.replace(frame, start_symbol=sel[0] + shift)
-        k1 = _symbols_inside(timing, lo_edge, hi_edge)[1]
-        if frame.start_symbol < 0 or frame.start_symbol + len(header) > timing.n_symbols:
-            # The refined grid puts the frame outside the window: keep the first grid.
-            timing, z_all, gram, sel, known, check, link, cum = before
-        else:
-            sel, known, check = _frame_symbols(
-                frame, hard, header, n_tones, k1, timing, layout, profile
-            )
-    z = z_all[sel[0] : sel[1]]
-    fit = fit_nda(z, gram, modulation=m)
-    dd = fit_dd(z, gram, modulation=m, gof=False)
-    da = None
-    if known is not None:
-        mask = known >= 0
-        if mask.sum() >= MIN_FIT_SYMBOLS:
-            da = fit_da(z[mask], known[mask], gram, modulation=m, gof=False)
-    if check is not None and not check.locked:
-        flags.append("pattern-not-locked")
-    if not fit.converged:
-        flags.append("fit-failed")
-    elif fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
-        flags.append("not-awgn")
-    rho = _theory_rho(np.abs(gram), m)
-    pred = None
-    if fit.converged and fit.ebn0_db is not None:
-        pred = float(theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho))
-    avail = _available_ebn0_db(
-        x[int(burst.start_sample - x0) : int(burst.stop_sample - x0)],
-        detection,
-        link,
-        link.symbol_rate_hz * profile.bits_per_symbol,
+        header, error = _header_symbols(layout, profile.modulation), None
+    except MeasurementError as exc:
+        header, error = np.zeros(0, dtype=np.int64), str(exc)
+    return _Context(
+        fs=capture.sample_rate_hz,
+        profile=profile,
+        layout=layout,
+        detection=detection,
+        header=header,
+        header_error=error,
+        symbol_rate_hz=symbol_rate_hz,
+        tone_spacing_hz=tone_spacing_hz,
     )
-    res = BurstResult(
-        **base,
-        symbols=len(z),
-        link=link,
-        timing=timing,
-        frame=frame,
-        fit=fit,
-        fit_da=da,
-        fit_dd=dd,
-        bit_check=check,
-        available_ebn0_db=avail,
-        predicted_ber=pred,
-        flags=(),
-        message=fit.message,
-    )
-    loss = res.detection_loss_db
-    if loss is not None and loss > DETECTION_LOSS_FLAG_DB:
-        flags.append("detection-loss")
-    return BurstResult(**{**res.__dict__, "flags": tuple(flags)})
+
+
+def _batches(bursts: Sequence[Burst], margin: int) -> list[list[Burst]]:
+    """Consecutive bursts in groups of at most BATCH_BURSTS and about BATCH_SAMPLES samples."""
+    out: list[list[Burst]] = [[]]
+    total = 0
+    for b in bursts:
+        n = b.n_samples + 2 * margin
+        if out[-1] and (len(out[-1]) >= BATCH_BURSTS or total + n > BATCH_SAMPLES):
+            out.append([])
+            total = 0
+        out[-1].append(b)
+        total += n
+    return out if out[0] else []
 
 
 def _available_ebn0_db(
@@ -619,17 +834,6 @@ def _unmeasured(
         flags=(flag,),
         message=message,
     )
-
-
-def _measure_burst_safely(capture, burst, profile, layout, detection, rate, spacing):
-    """:func:`measure_burst`, with a burst that cannot be measured reported, not raised."""
-    try:
-        result = measure_burst(
-            capture, burst, profile, layout, detection, symbol_rate_hz=rate, tone_spacing_hz=spacing
-        )
-    except MeasurementError as exc:
-        result = _unmeasured(burst, "not-measured", str(exc))
-    return dataclasses.replace(result, start_time=capture.sample_datetime(burst.start_sample))
 
 
 def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]:
@@ -714,9 +918,11 @@ def measure_capture(
     if blind and detection.bursts:
         rate, spacing = _blind_rates(capture, detection, profile, margin)
     if rate is not None:
+        ctx = _context(capture, profile, layout, detection, rate, spacing)
         results = [
-            _measure_burst_safely(capture, b, profile, layout, detection, rate, spacing)
-            for b in detection.bursts
+            r
+            for batch in _batches(detection.bursts, margin)
+            for r in _measure_batch(capture, batch, ctx)
         ]
     else:
         results = [
