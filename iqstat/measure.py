@@ -393,6 +393,7 @@ class _Work:
     fit: NoncoherentFit | None = None
     fit_da: NoncoherentFit | None = None
     fit_dd: NoncoherentFit | None = None
+    available_ebn0_db: float | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -646,6 +647,17 @@ def _stage_fit(works: list[_Work], ctx: _Context) -> None:
     _batched(works, fits)
 
 
+def _stage_available(batch: list[_Work], ctx: _Context) -> None:
+    avail = _available_ebn0_db(
+        [w.x[int(w.burst.start_sample - w.x0) : int(w.burst.stop_sample - w.x0)] for w in batch],
+        ctx.detection,
+        [w.link for w in batch],
+        ctx.profile.bits_per_symbol,
+    )
+    for w, a in zip(batch, avail, strict=True):
+        w.available_ebn0_db = a
+
+
 def _finish(w: _Work, ctx: _Context) -> None:
     """Flags, predicted BER and available Eb/N0: the burst's result."""
     m, fit, flags = ctx.profile.modulation, w.fit, w.flags
@@ -660,12 +672,6 @@ def _finish(w: _Work, ctx: _Context) -> None:
         rho = _theory_rho(np.abs(w.gram), m)
         pred = float(theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho))
     b = w.burst
-    avail = _available_ebn0_db(
-        w.x[int(b.start_sample - w.x0) : int(b.stop_sample - w.x0)],
-        ctx.detection,
-        w.link,
-        w.link.symbol_rate_hz * ctx.profile.bits_per_symbol,
-    )
     res = BurstResult(
         index=b.index,
         start_sample=b.start_sample,
@@ -679,7 +685,7 @@ def _finish(w: _Work, ctx: _Context) -> None:
         fit_da=w.fit_da,
         fit_dd=w.fit_dd,
         bit_check=w.check,
-        available_ebn0_db=avail,
+        available_ebn0_db=w.available_ebn0_db,
         predicted_ber=pred,
         flags=(),
         message=fit.message,
@@ -709,6 +715,7 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     _each(works, lambda w: _find_frame(w, ctx))
     _each(works, lambda w: _refine_on_known(w, ctx))
     _stage_fit(works, ctx)
+    _batched(works, lambda batch: _stage_available(batch, ctx))
     _each(works, lambda w: _finish(w, ctx))
     return [
         dataclasses.replace(w.result, start_time=capture.sample_datetime(w.burst.start_sample))
@@ -768,30 +775,43 @@ def _batches(bursts: Sequence[Burst], margin: int) -> list[list[Burst]]:
 
 
 def _available_ebn0_db(
-    x: np.ndarray, detection: BurstDetection, link: LinkEstimate, bit_rate_hz: float
-) -> float | None:
+    segments: Sequence[np.ndarray],
+    detection: BurstDetection,
+    links: Sequence[LinkEstimate],
+    bits_per_symbol: int,
+) -> list[float | None]:
     """Eb/N0 from power alone: (burst power − noise power) / (N0 · bit rate) (METHODS §9).
 
-    Measured in the signal's band (outer tones ± AVAILABLE_BAND_SYMBOLS symbol rates), not the
-    full capture band: at 52 samples per bit the full-band SNR is ~17 dB below Eb/N0, and a 1 %
-    error of the gap noise would move the result by half a dB.
+    One value per burst segment (its detected samples). Measured in the signal's band (outer
+    tones ± AVAILABLE_BAND_SYMBOLS symbol rates), not the full capture band: at 52 samples per
+    bit the full-band SNR is ~17 dB below Eb/N0, and a 1 % error of the gap noise would move
+    the result by half a dB. The segments of a batch share one FFT length (zero padding).
     """
-    n = len(x)
-    if n == 0 or not np.isfinite(detection.noise_psd_db_per_hz):
-        return None
-    fs = link.sample_rate_hz
-    nfft = scipy.fft.next_fast_len(n)
-    # Zero padding: Σ_k |X_k|² = nfft·Σ|x|², so the band's mean power is Σ_band |X|²/(n·nfft).
-    spec = np.abs(scipy.fft.fft(x, nfft)) ** 2 / (n * nfft)
-    f = np.fft.fftfreq(nfft, 1.0 / fs)
-    half = AVAILABLE_BAND_SYMBOLS * link.symbol_rate_hz
-    lo, hi = min(link.tone_freqs_hz) - half, max(link.tone_freqs_hz) + half
-    sel = (f >= lo) & (f <= hi)
+    out: list[float | None] = [None] * len(segments)
     n0 = 10.0 ** (detection.noise_psd_db_per_hz / 10.0)
-    c = float(spec[sel].sum()) - n0 * fs * sel.sum() / nfft
-    if c <= 0 or n0 <= 0:
-        return None
-    return float(db(c / (n0 * bit_rate_hz)))
+    use = [i for i, x in enumerate(segments) if len(x)]
+    if not use or not np.isfinite(detection.noise_psd_db_per_hz) or n0 <= 0:
+        return out
+    fs = links[use[0]].sample_rate_hz
+    n = np.array([len(segments[i]) for i in use], dtype=np.float64)
+    nfft = scipy.fft.next_fast_len(int(n.max()))
+    block = np.zeros((len(use), nfft), dtype=np.complex64)
+    for row, i in enumerate(use):
+        block[row, : len(segments[i])] = segments[i]
+    # Zero padding: Σ_k |X_k|² = nfft·Σ|x|², so the band's mean power is Σ_band |X|²/(n·nfft).
+    spec = scipy.fft.fft(block, axis=1)
+    spec = (spec.real**2 + spec.imag**2) / (n[:, None] * nfft)
+    f = np.fft.fftfreq(nfft, 1.0 / fs)
+    lo = np.array([min(links[i].tone_freqs_hz) for i in use])
+    hi = np.array([max(links[i].tone_freqs_hz) for i in use])
+    half = AVAILABLE_BAND_SYMBOLS * np.array([links[i].symbol_rate_hz for i in use])
+    sel = (f[None, :] >= (lo - half)[:, None]) & (f[None, :] <= (hi + half)[:, None])
+    c = (spec * sel).sum(axis=1) - n0 * fs * sel.sum(axis=1) / nfft
+    bit_rate = np.array([links[i].symbol_rate_hz for i in use]) * bits_per_symbol
+    for row, i in enumerate(use):
+        if c[row] > 0:
+            out[i] = float(db(c[row] / (n0 * bit_rate[row])))
+    return out
 
 
 def _theory_rho(rho_abs: np.ndarray, modulation: str):
