@@ -24,7 +24,9 @@ from iqstat.patterns import (
     PRBS_PERIOD,
     BitCheck,
     check_known,
+    check_known_many,
     check_prbs,
+    check_prbs_many,
     clopper_pearson,
     prbs_bits,
 )
@@ -320,3 +322,123 @@ def test_clopper_pearson_edges_and_errors():
         with pytest.raises(ParameterError):
             clopper_pearson(**bad)
     assert issubclass(ParameterError, IqstatError)
+
+
+# ------------------------------------------------------------------------- batches of bursts
+
+
+def _mixed_prbs_batch(name: str, seed: int):
+    """Bursts of different lengths and error rates with a degenerate one in the middle.
+
+    Returns the bit arrays and, per burst, (phase, inverted, injected flips) or None where the
+    burst must not lock (empty, too short, random bits).
+    """
+    rng = np.random.default_rng(seed)
+    P = PRBS_PERIOD[name]
+    bursts, truth = [], []
+    for i in range(12):
+        if i == 5:
+            bursts.append(np.zeros(0, np.uint8))  # degenerate: no bits
+            truth.append(None)
+            continue
+        if i == 6:
+            bursts.append(rng.integers(0, 2, 700).astype(np.uint8))  # noise, no pattern
+            truth.append(None)
+            continue
+        if i == 7:
+            bursts.append(prbs_bits(name, 12, 3))  # too few bits to lock
+            truth.append(None)
+            continue
+        n = int(rng.integers(300, 2500))
+        phase = int(rng.integers(P))
+        inverted = bool(i % 4 == 3)
+        flips = rng.random(n) < (0.0, 0.003, 0.05, 0.15)[i % 4]
+        b = prbs_bits(name, n, phase) ^ flips.astype(np.uint8)
+        bursts.append(1 - b if inverted else b)
+        truth.append((phase, inverted, int(flips.sum())))
+    return bursts, truth
+
+
+@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("allow_inverted", [True, False])
+def test_check_prbs_many_equals_one_at_a_time(name, allow_inverted):
+    bursts, truth = _mixed_prbs_batch(name, 21 + REGISTER[name])
+    many = check_prbs_many(bursts, name, allow_inverted=allow_inverted)
+    assert len(many) == len(bursts)
+    for b, got, tr in zip(bursts, many, truth, strict=True):
+        assert got == check_prbs(b, name, allow_inverted=allow_inverted)
+        if tr is None or (tr[1] and not allow_inverted):
+            assert not got.locked and got.ber is None
+            continue
+        # Facts of the construction: the injected phase, polarity and number of flips.
+        assert got.locked and (got.phase, got.inverted, got.bit_errors) == tr
+        assert got.bits_checked == b.size
+        assert got.ber_ci95 == pytest.approx(clopper_pearson(tr[2], b.size))
+
+
+def test_check_prbs_many_batch_order_and_slices_do_not_matter():
+    # Each burst's result depends on that burst only: any subset, in any order, gives the same
+    # results (the pn15 fold is processed in blocks of bursts; 40 bursts cross a block edge).
+    bursts, _ = _mixed_prbs_batch("pn15", 5)
+    bursts = (bursts * 4)[:40]
+    full = check_prbs_many(bursts, "pn15")
+    order = np.random.default_rng(2).permutation(len(bursts))
+    shuffled = check_prbs_many([bursts[i] for i in order], "pn15")
+    assert [full[i] for i in order] == shuffled
+    assert check_prbs_many([], "pn9") == []
+
+
+def test_check_known_many_equals_one_at_a_time():
+    rng = np.random.default_rng(31)
+    ref = rng.integers(0, 2, 400).astype(np.uint8)
+    bursts, expect = [], []
+    for i, (n, p) in enumerate([(400, 0.0), (250, 0.01), (0, 0.0), (399, 0.5), (600, 0.02)]):
+        sent = np.concatenate([ref, rng.integers(0, 2, max(0, n - 400))])[:n].astype(np.uint8)
+        flips = rng.random(n) < p
+        got = sent ^ flips.astype(np.uint8)
+        if i == 4:
+            got = 1 - got
+        bursts.append(got)
+        expect.append(int(flips[:400].sum()))
+    many = check_known_many(bursts, ref)
+    for b, got in zip(bursts, many, strict=True):
+        assert got == check_known(b, ref)
+    assert [r.locked for r in many] == [True, True, False, False, True]
+    assert [r.bit_errors for r in many if r.locked] == [expect[0], expect[1], expect[4]]
+    assert (
+        many[4].inverted and many[4].bits_checked == 400 and "first 400 of 600" in many[4].message
+    )
+    assert many[2].message == "no received bits to compare"
+    as_is = check_known_many(bursts, ref, allow_inverted=False)
+    for r, b in zip(as_is, bursts, strict=True):
+        assert r == check_known(b, ref, allow_inverted=False)
+
+
+def test_batch_bad_bits_name_the_burst():
+    good = prbs_bits("pn9", 100)
+    with pytest.raises(ParameterError, match=r"bits_list\[2\] must hold only 0 and 1, found 3"):
+        check_prbs_many([good, good, np.array([0, 1, 3])], "pn9")
+    with pytest.raises(ParameterError, match=r"bits_list\[1\] must be a 1-D"):
+        check_known_many([good, np.zeros((2, 2), np.uint8)], good)
+    with pytest.raises(ParameterError, match="list of 1-D bit arrays"):
+        check_prbs_many(np.zeros((3, 100), np.uint8), "pn9")
+
+
+def test_clopper_pearson_arrays_match_scipy_binomtest():
+    # Vectorised call: each element equals the scalar call and scipy's exact interval
+    # (Clopper & Pearson 1934 via scipy.stats.binomtest, agreement to its solver's 1e-6).
+    k = np.array([0, 1, 3, 10, 0, 7, 50])
+    n = np.array([0, 1, 10, 10, 1000, 50, 1000])
+    lo, hi = clopper_pearson(k, n, 0.9)
+    assert lo.shape == hi.shape == (7,)
+    for i in range(7):
+        assert (lo[i], hi[i]) == clopper_pearson(int(k[i]), int(n[i]), 0.9)
+        if n[i]:
+            ref = scipy.stats.binomtest(int(k[i]), int(n[i])).proportion_ci(0.9, method="exact")
+            assert (lo[i], hi[i]) == pytest.approx((ref.low, ref.high), rel=1e-6, abs=1e-15)
+    lo2, hi2 = clopper_pearson(np.array([[0], [5]]), np.array([10, 20]))  # broadcasting
+    assert lo2.shape == (2, 2) and hi2[1, 1] == clopper_pearson(5, 20)[1]
+    with pytest.raises(ParameterError, match="whole numbers"):
+        clopper_pearson(np.array([1.0, 2.0]), np.array([5, 5]))
+    with pytest.raises(ParameterError, match="k=6, n=5"):
+        clopper_pearson(np.array([1, 6]), np.array([5, 5]))
