@@ -800,13 +800,18 @@ def _available_ebn0_db(
         block[row, : len(segments[i])] = segments[i]
     # Zero padding: Σ_k |X_k|² = nfft·Σ|x|², so the band's mean power is Σ_band |X|²/(n·nfft).
     spec = scipy.fft.fft(block, axis=1)
-    spec = (spec.real**2 + spec.imag**2) / (n[:, None] * nfft)
-    f = np.fft.fftfreq(nfft, 1.0 / fs)
-    lo = np.array([min(links[i].tone_freqs_hz) for i in use])
-    hi = np.array([max(links[i].tone_freqs_hz) for i in use])
     half = AVAILABLE_BAND_SYMBOLS * np.array([links[i].symbol_rate_hz for i in use])
-    sel = (f[None, :] >= (lo - half)[:, None]) & (f[None, :] <= (hi + half)[:, None])
-    c = (spec * sel).sum(axis=1) - n0 * fs * sel.sum(axis=1) / nfft
+    lo = np.array([min(links[i].tone_freqs_hz) for i in use]) - half
+    hi = np.array([max(links[i].tone_freqs_hz) for i in use]) + half
+    # Only the bins of the batch's bands (a few percent of the spectrum) are squared and summed.
+    f = np.fft.fftfreq(nfft, 1.0 / fs)
+    cols = np.flatnonzero((f >= lo.min()) & (f <= hi.max()))
+    band = spec[:, cols]
+    power = (band.real.astype(np.float64) ** 2 + band.imag.astype(np.float64) ** 2) / (
+        n[:, None] * nfft
+    )
+    sel = (f[cols][None, :] >= lo[:, None]) & (f[cols][None, :] <= hi[:, None])
+    c = (power * sel).sum(axis=1) - n0 * fs * sel.sum(axis=1) / nfft
     bit_rate = np.array([links[i].symbol_rate_hz for i in use]) * bits_per_symbol
     for row, i in enumerate(use):
         if c[row] > 0:
