@@ -14,9 +14,25 @@ import numpy as np
 
 from iqstat.errors import ParameterError
 
+_PLAIN = (str, int, bool, type(None))
+
 
 def json_safe(obj):
     """Recursively convert to JSON-safe values: NaN/Inf → None, numpy → Python, tuples → lists."""
+    t = type(obj)
+    if t is float:
+        return obj if math.isfinite(obj) else None
+    if t in _PLAIN:
+        return obj
+    if t is dict:
+        return {str(k): json_safe(v) for k, v in obj.items()}
+    if t is list or t is tuple:
+        return [json_safe(v) for v in obj]
+    return _json_safe_other(obj)
+
+
+def _json_safe_other(obj):
+    """:func:`json_safe` for the less common types (numpy values, subclasses)."""
     if isinstance(obj, dict):
         return {str(k): json_safe(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
