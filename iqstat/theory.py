@@ -537,9 +537,12 @@ def _pairwise_error_nc(esn0: np.ndarray, rho_abs: np.ndarray) -> np.ndarray:
     # 1 − sqrt(1 − r²) written as r²/(1 + sqrt(1 − r²)) to keep digits for small r
     a = np.sqrt(0.5 * g * r**2 / (1.0 + root))
     b = np.sqrt(0.5 * g * (1.0 + root))
-    q_ab = _marcum_q1_pair(a, b)[0]
-    q_ba_c = _marcum_q1_pair(b, a)[1]
-    return 0.5 * (q_ab + q_ba_c)  # eq. (1)
+    # Q1(a, b) and 1 − Q1(b, a) of every element in one vectorised quadrature call
+    n = a.size
+    q, qc = _marcum_q1_pair(
+        np.concatenate([a.ravel(), b.ravel()]), np.concatenate([b.ravel(), a.ravel()])
+    )
+    return (0.5 * (q[:n] + qc[n:])).reshape(a.shape)  # eq. (1)
 
 
 def ber_ncbfsk_nonorthogonal(ebn0: ArrayLike, rho_abs: ArrayLike):
@@ -613,7 +616,6 @@ def ber_ncfsk_union_bound(
             f"rho_abs_matrix has shape {r.shape}; it must be square (M, M), one row per tone"
         )
     m = _check_m(r.shape[0], "rho_abs_matrix size M")
-    k = int(np.log2(m))
     if not np.allclose(r, r.T, rtol=0, atol=1e-12):
         raise ParameterError("rho_abs_matrix is not symmetric; |ρ_ij| must equal |ρ_ji|")
     if tone_bits is None:
@@ -629,13 +631,32 @@ def ber_ncfsk_union_bound(
                 f"tone_bits={tone_bits!r} is not a permutation of 0..{m - 1}; give one integer "
                 "bit label per tone, lowest tone first"
             )
+    return _finish(_union_bound(gb, r, labels), gb)
+
+
+def _pair_weights(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(i, j, weight) of every unordered tone pair i < j in eq. (1) of the union bound."""
+    m = labels.size
+    k = int(np.log2(m))
     xor = labels[:, None] ^ labels[None, :]
     dist = np.array([[bin(int(v)).count("1") for v in row] for row in xor], dtype=np.float64)
     iu, ju = np.triu_indices(m, 1)
     weights = (dist[iu, ju] * 2.0) / (m * k)  # each unordered pair counted for i→j and j→i
-    p2 = _pairwise_error_nc(k * gb[..., None], r[iu, ju])  # (..., n_pairs)
+    return iu, ju, weights
+
+
+def _union_bound(gb: np.ndarray, r: np.ndarray, labels: np.ndarray) -> np.ndarray:
+    """Union bound (1) of :func:`ber_ncfsk_union_bound` for validated inputs.
+
+    ``r`` has shape (..., M, M), its leading axes broadcast against ``gb`` (one matrix for
+    all values, or one per value).
+    """
+    m = labels.size
+    k = int(np.log2(m))
+    iu, ju, weights = _pair_weights(labels)
+    p2 = _pairwise_error_nc(k * gb[..., None], r[..., iu, ju])  # (..., n_pairs)
     bound = np.sum(weights * p2, axis=-1)  # eq. (1)
-    return _finish(np.minimum(bound, 0.5), gb)
+    return np.minimum(bound, 0.5)
 
 
 # --------------------------------------------------------------------------------------------
@@ -810,23 +831,28 @@ def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float | Arra
     Parameters
     ----------
     ebn0 : float or array_like
-        Eb/N0, linear, >= 0 (for OOK the average-energy Eb).
+        Eb/N0, linear, >= 0 (for OOK the average-energy Eb). An array holds, e.g., one value per
+        burst; the result has its shape.
     modulation : {"2fsk", "4fsk", "ook"}
         The link's modulation.
-    rho_abs : float or array_like of shape (4, 4)
+    rho_abs : float, array_like, or array_like of shape (..., 4, 4)
         Largest magnitude of the correlation between two tone templates over one symbol, in
         [0, 1] (``abs(tone_correlation(spacing, T))`` for the adjacent pair). FSK only; must be
-        0 for OOK. For 4fsk a full (4, 4) matrix of |ρ_ij| is also accepted (e.g.
-        ``abs(tone_correlation_matrix(4, spacing, T))``) and gives a tighter bound.
+        0 for OOK. One number for every Eb/N0 value, or an array that broadcasts to the shape
+        of ``ebn0`` (one |ρ| per burst). For 4fsk an array whose last two axes are (4, 4) is
+        a matrix of |ρ_ij| (e.g. ``abs(tone_correlation_matrix(4, spacing, T))``), which gives
+        a tighter bound; a stack of them, shape (n, 4, 4) against ``ebn0`` of shape (n,),
+        gives one matrix per burst.
 
     Returns
     -------
     float or ndarray
-        P_b.
+        P_b: a float when ``ebn0`` is a scalar and ``rho_abs`` one number or one matrix, else
+        an array of the shape of ``ebn0``.
 
     Notes
     -----
-    What is computed, exactly:
+    What is computed, exactly, per element:
 
     - ``2fsk``, rho_abs <= 1e-6: ½·exp(−γ_b/2) (:func:`ber_ncfsk`, exact).
     - ``2fsk``, rho_abs > 1e-6: Stein's formula (:func:`ber_ncbfsk_nonorthogonal`, exact).
@@ -840,40 +866,61 @@ def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float | Arra
       below ~6 dB, vanishing at high Eb/N0). A 4fsk matrix whose off-diagonal entries are all
       <= 1e-6 gives the exact orthogonal result.
     - ``ook``: envelope detection with the optimum threshold (:func:`ber_ook`, exact).
+
+    A batch is evaluated with one vectorised Marcum-Q quadrature for all its non-orthogonal
+    elements (no loop over elements), so the per-burst call and the batched call agree.
     """
     modulation = _check_modulation(modulation)
     r_arr = _as_rho_abs(rho_abs)
     gb = _as_ebn0(ebn0)
-    if r_arr.ndim != 0:
-        if modulation != "4fsk" or r_arr.shape != (4, 4):
-            raise ParameterError(
-                f"rho_abs has shape {r_arr.shape} for {modulation}; give one number in [0, 1] "
-                "(a (4, 4) matrix is accepted for 4fsk only)"
-            )
-        off_diagonal = r_arr[~np.eye(4, dtype=bool)]
-        if np.all(off_diagonal <= ORTHOGONAL_RHO_ABS):
-            return ber_ncfsk(gb, 4)
-        return ber_ncfsk_union_bound(gb, r_arr)
-    r = float(r_arr)
+    matrix = modulation == "4fsk" and r_arr.ndim >= 2 and r_arr.shape[-2:] == (4, 4)
+    lead = r_arr.shape[:-2] if matrix else r_arr.shape
+    try:
+        fits = np.broadcast_shapes(lead, gb.shape) == gb.shape
+    except ValueError:
+        fits = False
+    if not fits:
+        raise ParameterError(
+            f"rho_abs has shape {r_arr.shape} for {modulation} but ebn0 has shape {gb.shape}; "
+            "give one number in [0, 1] or one per Eb/N0 value (a (4, 4) matrix, or a stack "
+            "of them, is accepted for 4fsk only)"
+        )
     if modulation == "2fsk":
-        if r <= ORTHOGONAL_RHO_ABS:
-            return ber_ncfsk(gb, 2)
-        return ber_ncbfsk_nonorthogonal(gb, r)
+        r = np.broadcast_to(r_arr, gb.shape)
+        out = np.array(0.5 * np.exp(-0.5 * gb), dtype=np.float64)  # ber_ncfsk for M = 2
+        leaky = r > ORTHOGONAL_RHO_ABS
+        if np.any(leaky):
+            out[leaky] = _pairwise_error_nc(gb[leaky], r[leaky])  # Stein's formula
+        return _finish(out, gb, np.empty(lead))
     if modulation == "4fsk":
-        if r <= ORTHOGONAL_RHO_ABS:
-            return ber_ncfsk(gb, 4)
-        rho_matrix = np.full((4, 4), r)
-        np.fill_diagonal(rho_matrix, 1.0)
-        return ber_ncfsk_union_bound(gb, rho_matrix)
+        eye = np.eye(4, dtype=bool)
+        if matrix:
+            if not np.allclose(r_arr, np.swapaxes(r_arr, -1, -2), rtol=0, atol=1e-12):
+                raise ParameterError("rho_abs_matrix is not symmetric; |ρ_ij| must equal |ρ_ji|")
+            leaky = np.any(r_arr[..., ~eye] > ORTHOGONAL_RHO_ABS, axis=-1)
+            mats = r_arr
+        else:
+            leaky = r_arr > ORTHOGONAL_RHO_ABS
+            mats = np.where(eye, 1.0, r_arr[..., None, None])
+        leaky = np.broadcast_to(leaky, gb.shape)
+        out = np.array(ber_ncfsk(gb, 4), dtype=np.float64)
+        if np.any(leaky):
+            mats = np.broadcast_to(mats, gb.shape + (4, 4))
+            out[leaky] = _union_bound(gb[leaky], mats[leaky], _GRAY_4)
+        return _finish(out, gb, np.empty(lead))
     if modulation == "ook":
-        if r != 0.0:
+        if np.any(r_arr != 0.0):
             raise ParameterError(
                 f"rho_abs={rho_abs!r} given for ook; tone correlation applies to FSK only, pass 0"
             )
-        return ber_ook(gb)
+        return _finish(np.asarray(ber_ook(gb), dtype=np.float64), gb, np.empty(lead))
     raise ParameterError(  # unreachable after _check_modulation; kept as the dispatch's end
         f"modulation={modulation!r} is not supported; choose one of {', '.join(MODULATIONS)}"
     )
+
+
+#: Gray labels of the four 4fsk tones, lowest first (00, 01, 11, 10).
+_GRAY_4 = np.arange(4) ^ (np.arange(4) >> 1)
 
 
 def required_ebn0_db(
