@@ -170,9 +170,19 @@ def correlate_symbols(
 
     the phase of c_k reduced modulo one cycle before scaling by 2π.
     """
-    a = check_samples(x)
-    fs = _check_rate("sample_rate_hz", sample_rate_hz)
-    f = check_tone_freqs(tone_freqs_hz, fs)
+    return correlate_symbols_many(
+        [x],
+        sample_rate_hz,
+        [tone_freqs_hz],
+        [t0_samples],
+        [period_samples],
+        [n_symbols],
+        cumulatives=None if cumulative is None else [cumulative],
+    )[0]
+
+
+def _check_grid(t0_samples, period_samples, n_symbols, n_samples: int) -> tuple:
+    """Validate one symbol grid against a burst of n_samples; return (t0, P, n, b)."""
     p = _check_period(period_samples)
     try:
         t0 = float(t0_samples)
@@ -188,41 +198,120 @@ def correlate_symbols(
         raise ParameterError(
             f"t0_samples {t0_samples!r} starts before x[0]; use t0 > -1 (shift by whole periods)"
         )
-    if b[-1] > a.size:
+    if b[-1] > n_samples:
         raise ParameterError(
             f"n_symbols {n_sym} with t0 {t0:g} and period {p:g} needs {int(b[-1])} samples but "
-            f"x has {a.size}; use n_symbols <= {max(0, math.floor((a.size - t0) / p))}"
+            f"x has {n_samples}; use n_symbols <= {max(0, math.floor((n_samples - t0) / p))}"
         )
-    out = np.empty((n_sym, f.size), dtype=np.complex128)
-    if n_sym == 0:
-        return out
-    nk = np.diff(b)
-    if cumulative is not None:
-        cum = _check_cumulative(cumulative, f.size, a.size)
-        centre = b[:-1] + (nk - 1) / 2.0
-        for i, row in enumerate(cum):  # M <= 4 tones
-            s = row[b]
-            d = s[1:] - s[:-1]
-            d *= np.exp(2j * np.pi * np.mod((f[i] / fs) * centre, 1.0))  # eq. (2)
-            d /= np.sqrt(nk)
-            out[:, i] = d
-        return out
+    return t0, p, n_sym, b
+
+
+def correlate_symbols_many(
+    xs: Sequence[np.ndarray],
+    sample_rate_hz: float,
+    tone_freqs_list: Sequence[Sequence[float]],
+    t0s_samples: Sequence[float],
+    periods_samples: Sequence[float],
+    n_symbols_list: Sequence[int],
+    *,
+    cumulatives: Sequence[np.ndarray] | None = None,
+) -> list[np.ndarray]:
+    """:func:`correlate_symbols` of a batch of bursts, in a fixed number of numpy calls.
+
+    Parameters
+    ----------
+    xs : sequence of B ndarrays, shapes (n_b,)
+        The bursts' samples (ragged).
+    sample_rate_hz : float
+        Sample rate fs [Hz], common to the batch.
+    tone_freqs_list : sequence of B sequences of float
+        Each burst's tones [Hz], lowest first; all bursts of a batch have the same count M.
+    t0s_samples, periods_samples, n_symbols_list : sequences of length B
+        Each burst's grid (see :func:`correlate_symbols`).
+    cumulatives : sequence of B ndarrays, optional
+        :func:`mix_cumulative_many` of the same bursts and tones (or one
+        :func:`mix_cumulative` per burst): the sums are then differences of it, eq. (2) of
+        :func:`correlate_symbols`.
+
+    Returns
+    -------
+    list of B ndarrays of complex128, shapes (n_symbols_b, M)
+        The same numbers :func:`correlate_symbols` gives for each burst alone.
+
+    Notes
+    -----
+    With running sums, all bursts' symbol boundaries are gathered at once from the batch's
+    padded sum buffer, one gather per tone. Without them, the symbols of all bursts are
+    gathered into one zero-padded (symbols × max N_k) array, multiplied per burst (a stacked
+    matmul) by that burst's (max N_k, M) table of conjugate templates, eq. (1).
+    """
+    fs = _check_rate("sample_rate_hz", sample_rate_hz)
+    n_b = len(xs)
+    if (
+        not (len(tone_freqs_list) == len(t0s_samples) == len(periods_samples) == n_b)
+        or len(n_symbols_list) != n_b
+    ):
+        raise ParameterError(
+            f"xs has {n_b} bursts but tone_freqs_list, t0s_samples, periods_samples and "
+            "n_symbols_list have "
+            f"{[len(tone_freqs_list), len(t0s_samples), len(periods_samples), len(n_symbols_list)]}"
+            " entries; give one of each per burst"
+        )
+    if n_b == 0:
+        return []
+    arrays = [check_samples(x) for x in xs]
+    freqs = _check_tone_list(tone_freqs_list, fs)
+    m = freqs.shape[1]
+    grids = [
+        _check_grid(t, p, k, a.size)
+        for t, p, k, a in zip(t0s_samples, periods_samples, n_symbols_list, arrays, strict=True)
+    ]
+    counts = np.array([g[2] for g in grids], dtype=np.int64)
+    offs = np.concatenate([[0], np.cumsum(counts)])
+    total = int(offs[-1])
+    bnd = [g[3] for g in grids]
+    if total == 0:
+        return [np.empty((0, m), dtype=np.complex128) for _ in range(n_b)]
+    burst_of = np.repeat(np.arange(n_b), counts)  # burst of each symbol, all bursts in a row
+    starts = np.concatenate([b[:-1] for b in bnd])
+    nk = np.concatenate([np.diff(b) for b in bnd])
+    out = np.empty((total, m), dtype=np.complex128)
+    if cumulatives is not None:
+        if len(cumulatives) != n_b:
+            raise ParameterError(
+                f"cumulatives has {len(cumulatives)} entries for {n_b} bursts; give one each"
+            )
+        buf, rows = batch_buffer(cumulatives, m, [a.size for a in arrays])
+        width = buf.shape[2]
+        flat = buf.reshape(-1)
+        base = (rows[burst_of] * m * width)[:, None] + width * np.arange(m)[None, :]
+        s0 = flat[base + starts[:, None]]
+        d = flat[base + (starts + nk)[:, None]]
+        d -= s0
+        centre = starts + (nk - 1) / 2.0
+        d *= unit_phasors(freqs[burst_of] / fs * centre[:, None])  # eq. (2)
+        d /= np.sqrt(nk)[:, None]
+        out[:] = d
+        return [out[offs[i] : offs[i + 1]] for i in range(n_b)]
     n_max = int(nk.max())
-    m = np.arange(n_max)
-    w = 2.0 * np.pi * f / fs
-    for k0 in range(0, n_sym, _BLOCK_SYMBOLS):  # blocks of thousands of symbols, not symbols
-        k1 = min(n_sym, k0 + _BLOCK_SYMBOLS)
+    mm = np.arange(n_max)
+    # Template tables (B, max N_k, M) and the centre offsets (N_k − 1)/2: eq. (1).
+    w = 2.0 * np.pi * freqs / fs  # (B, M)
+    tables = np.exp(-1j * mm[None, :, None] * w[:, None, :])
+    x_all = np.concatenate(arrays)
+    x_off = np.concatenate([[0], np.cumsum([a.size for a in arrays])])
+    for k0 in range(0, total, _BLOCK_SYMBOLS):  # blocks of thousands of symbols, not bursts
+        k1 = min(total, k0 + _BLOCK_SYMBOLS)
         nb = nk[k0:k1]
-        idx = b[k0:k1, None] + m[None, :]
-        seg = a[np.minimum(idx, a.size - 1)]
-        seg[m[None, :] >= nb[:, None]] = 0.0
-        # Phase of the template relative to each symbol's centre c_k: eq. (1). The centre
-        # offset (N_k − 1)/2 takes only two values, so the table is built for each.
-        z = seg @ np.exp(-1j * np.outer(m, w))
-        z *= np.exp(1j * np.outer((nb - 1) / 2.0, w))
+        bo = burst_of[k0:k1]
+        idx = (x_off[bo] + starts[k0:k1])[:, None] + mm[None, :]
+        seg = x_all[np.minimum(idx, x_all.size - 1)].astype(np.complex128)
+        seg[mm[None, :] >= nb[:, None]] = 0.0
+        z = np.matmul(seg[:, None, :], tables[bo])[:, 0, :]
+        z *= np.exp(1j * ((nb - 1) / 2.0)[:, None] * w[bo])
         z /= np.sqrt(nb)[:, None]
         out[k0:k1] = z
-    return out
+    return [out[offs[i] : offs[i + 1]] for i in range(n_b)]
 
 
 def branch_energies(z: np.ndarray) -> np.ndarray:
@@ -335,15 +424,136 @@ def mix_cumulative(
         Pass it to :func:`correlate_symbols` and :func:`~iqstat.sync.recover_timing` as
         ``cumulative=`` to mix a burst once for both.
     """
-    a = check_samples(x)
-    fs = _check_rate("sample_rate_hz", sample_rate_hz)
-    f = check_tone_freqs(tone_freqs_hz, fs)
-    out = np.empty((f.size, a.size + 1), dtype=np.complex128)
-    out[:, 0] = 0.0
-    mixed = tone_phasors(f / fs, a.size)
-    mixed *= a  # all M tones in one pass (the phasor table is a fresh array)
-    np.cumsum(mixed, axis=1, out=out[:, 1:])
+    return mix_cumulative_many([x], sample_rate_hz, [tone_freqs_hz])[0]
+
+
+def unit_phasors(cycles: np.ndarray) -> np.ndarray:
+    """exp(j2π·c) for an array of phases c in cycles, complex128, same shape.
+
+    The phase is reduced modulo one cycle before it is scaled by 2π (so a phase of 1e4
+    cycles keeps its 1e-16 relative rounding), and the phasor is built from cos and sin
+    (numpy's vectorised float64 kernels, cheaper than the complex exponential).
+    """
+    ph = np.mod(cycles, 1.0)
+    ph *= 2.0 * np.pi
+    out = np.empty(ph.shape, dtype=np.complex128)
+    np.cos(ph, out=out.real)
+    np.sin(ph, out=out.imag)
     return out
+
+
+def _check_tone_list(tone_freqs_list: Sequence[Sequence[float]], fs: float) -> np.ndarray:
+    """Validate one tone list per burst, all of the same length M; return float64 (B, M)."""
+    rows = [check_tone_freqs(f, fs) for f in tone_freqs_list]
+    sizes = {r.size for r in rows}
+    if len(sizes) > 1:
+        raise ParameterError(
+            f"tone_freqs_list holds bursts with {sorted(sizes)} tones; a batch needs one "
+            "tone count (split the batch by modulation)"
+        )
+    return np.stack(rows) if rows else np.zeros((0, 1))
+
+
+def _phasor_block(n_max: int) -> tuple[int, int]:
+    """Block length L ≈ √n and block count Q (Q·L >= n) of the phasor tables."""
+    block = max(1, math.isqrt(max(n_max, 1)))
+    return block, -(-max(n_max, 1) // block)
+
+
+def mix_cumulative_many(
+    xs: Sequence[np.ndarray],
+    sample_rate_hz: float,
+    tone_freqs_list: Sequence[Sequence[float]],
+) -> list[np.ndarray]:
+    """:func:`mix_cumulative` of a batch of bursts, one padded buffer for all.
+
+    Parameters
+    ----------
+    xs : sequence of B ndarrays, shapes (n_b,)
+        The bursts' samples (ragged).
+    sample_rate_hz : float
+        Sample rate fs [Hz].
+    tone_freqs_list : sequence of B sequences of float
+        Each burst's tones [Hz]; the same count M for every burst.
+
+    Returns
+    -------
+    list of B ndarrays of complex128, shapes (M, n_b + 1)
+        S_b[i, n] = Σ_{m<n} x_b[m]·exp(−j2πf_{b,i} m/fs), S_b[i, 0] = 0. Each is a view
+        ``buf[b, :, :n_b + 1]`` of one (B, M, W) buffer (W >= max n_b + 1, the sums held
+        constant past each burst's end); :func:`~iqstat.sync.recover_timing_many` and
+        :func:`correlate_symbols_many` recognise such views and gather from the buffer in
+        one call. Peak temporaries: none beyond the buffer (the mixing and the running sums
+        are done in place).
+
+    Notes
+    -----
+    The phasors e^{−j2πc(qL + l)} = e^{−j2πcqL}·e^{−j2πcl} are built as the outer product of
+    two short tables per burst and tone (L ≈ √n, see :func:`tone_phasors`), written straight
+    into the buffer; each burst is then multiplied in (one call per burst, the rows being
+    ragged) and the running sums taken along the buffer's last axis in one call.
+    """
+    fs = _check_rate("sample_rate_hz", sample_rate_hz)
+    if len(tone_freqs_list) != len(xs):
+        raise ParameterError(
+            f"xs has {len(xs)} bursts but tone_freqs_list has {len(tone_freqs_list)} entries; "
+            "give one tone list per burst"
+        )
+    if len(xs) == 0:
+        return []
+    arrays = [check_samples(x) for x in xs]
+    freqs = _check_tone_list(tone_freqs_list, fs)
+    n_b, m = freqs.shape
+    n = np.array([a.size for a in arrays])
+    block, n_blocks = _phasor_block(int(n.max()))
+    buf = np.empty((n_b, m, 1 + n_blocks * block), dtype=np.complex128)
+    buf[:, :, 0] = 0.0
+    body = buf[:, :, 1:].reshape(n_b, m, n_blocks, block)  # a view: the last axis is split
+    c = freqs / fs
+    within = unit_phasors(-c[:, :, None] * np.arange(block))
+    starts = unit_phasors(-c[:, :, None] * (np.arange(n_blocks) * block))
+    np.multiply(starts[:, :, :, None], within[:, :, None, :], out=body)
+    flat = buf[:, :, 1:]
+    for b, a in enumerate(arrays):  # ragged rows: one product (and one fill) per burst
+        flat[b, :, : a.size] *= a
+        flat[b, :, a.size :] = 0.0
+    np.cumsum(flat, axis=2, out=flat)
+    return [buf[b, :, : a.size + 1] for b, a in enumerate(arrays)]
+
+
+def batch_buffer(
+    cumulatives: Sequence[np.ndarray], n_tones: int, n_samples: Sequence[int]
+) -> tuple[np.ndarray, np.ndarray]:
+    """One (R, M, W) buffer holding every burst's running sums, and each burst's row in it.
+
+    ``cumulatives[b] == buf[rows[b], :, :n_b + 1]``, and ``buf[rows[b], :, n_b + 1:]`` holds
+    the last sum (no samples past the end). Views made by :func:`mix_cumulative_many` are
+    used in place (no copy); other arrays are validated and copied into a new buffer laid
+    out as :func:`mix_cumulative_many` would lay it out.
+    """
+    pairs = zip(cumulatives, n_samples, strict=True)
+    cums = [_check_cumulative(c, n_tones, int(k)) for c, k in pairs]
+    base = cums[0].base
+    if (
+        isinstance(base, np.ndarray)
+        and base.ndim == 3
+        and base.flags.c_contiguous
+        and base.dtype == np.complex128
+        and base.shape[1] == n_tones
+        and all(c.base is base and c.strides == base.strides[1:] for c in cums)
+    ):
+        step = base.strides[0]
+        origin = base.__array_interface__["data"][0]
+        offs = [c.__array_interface__["data"][0] - origin for c in cums]
+        if all(o % step == 0 for o in offs):
+            return base, np.array([o // step for o in offs], dtype=np.int64)
+    n_max = max(int(k) for k in n_samples)
+    block, n_blocks = _phasor_block(n_max)
+    buf = np.empty((len(cums), n_tones, 1 + n_blocks * block), dtype=np.complex128)
+    for b, (c, k) in enumerate(zip(cums, n_samples, strict=True)):  # copies: arrays made one by one
+        buf[b, :, : k + 1] = c
+        buf[b, :, k + 1 :] = c[:, -1:]
+    return buf, np.arange(len(cums), dtype=np.int64)
 
 
 def _check_cumulative(cumulative: np.ndarray, n_tones: int, n_samples: int) -> np.ndarray:
