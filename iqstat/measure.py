@@ -28,7 +28,7 @@ from iqstat.estimate import LinkEstimate, estimate_link, link_with, refine_link_
 from iqstat.facts import CaptureFacts, compute_facts
 from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
 from iqstat.formats.open import open_capture
-from iqstat.patterns import BitCheck, check_known, check_prbs, prbs_bits
+from iqstat.patterns import BitCheck, check_known_many, check_prbs_many, prbs_bits
 from iqstat.profile import (
     FrameLayout,
     LinkProfile,
@@ -214,13 +214,21 @@ def _symbols_inside(timing: SymbolTiming, lo: float, hi: float) -> tuple[int, in
     return k0, max(k0, k1)
 
 
-def _check_payload(bits: np.ndarray, layout: FrameLayout, profile: LinkProfile):
+def _check_payload_many(bits_list: Sequence[np.ndarray], layout: FrameLayout, profile: LinkProfile):
+    """Payload checks of several bursts (None where nothing is known or there are no bits)."""
+    out: list[BitCheck | None] = [None] * len(bits_list)
     kind = profile.payload_kind
-    if kind == "unknown" or len(bits) == 0:
-        return None
+    use = [i for i, b in enumerate(bits_list) if len(b)]
+    if kind == "unknown" or not use:
+        return out
+    bits = [bits_list[i] for i in use]
     if kind in ("pn9", "pn15"):
-        return check_prbs(bits, kind)
-    return check_known(bits, layout.payload_bits)
+        checks = check_prbs_many(bits, kind)
+    else:
+        checks = check_known_many(bits, layout.payload_bits)
+    for i, c in zip(use, checks, strict=True):
+        out[i] = c
+    return out
 
 
 def _known_payload_symbols(check: BitCheck | None, layout, profile, n_bits: int):
@@ -319,47 +327,64 @@ def _bank(x, fs, link: LinkEstimate, timing: SymbolTiming, cum):
     return z, template_gram(link.tone_freqs_hz, timing.period_samples, fs)
 
 
-def _header_consistent(frame: FrameAlignment, check: BitCheck, profile: LinkProfile) -> bool:
-    """Whether the header's bit errors are plausible at the payload's measured error rate.
+def _header_consistent_many(
+    frames: Sequence[FrameAlignment], checks: Sequence[BitCheck], profile: LinkProfile
+) -> np.ndarray:
+    """Whether each header's bit errors are plausible at its payload's measured error rate.
 
     A header matched with many errors while the payload is nearly error-free means the
     profile's preamble or sync word is not what was sent (or the position is a sidelobe):
     P(X ≥ header errors) under Binomial(header bits, payload BER) below 1e-5 rejects it.
     """
-    if frame.bit_errors is None or not check.bits_checked:
-        return True
-    n_bits = frame.header_bits
-    p = max((check.bit_errors + 0.5) / (check.bits_checked + 1), 1e-6)
-    return float(stats.binom.sf(frame.bit_errors - 1, n_bits, p)) >= HEADER_CONSISTENCY_P
+    ok = np.ones(len(frames), dtype=bool)
+    test = [
+        i
+        for i, (f, c) in enumerate(zip(frames, checks, strict=True))
+        if f.bit_errors is not None and c.bits_checked
+    ]
+    if test:
+        errors = np.array([frames[i].bit_errors for i in test], dtype=np.float64)
+        n_bits = np.array([frames[i].header_bits for i in test], dtype=np.float64)
+        p = np.array([(checks[i].bit_errors + 0.5) / (checks[i].bits_checked + 1) for i in test])
+        p = np.maximum(p, 1e-6)
+        ok[test] = stats.binom.sf(errors - 1, n_bits, p) >= HEADER_CONSISTENCY_P
+    return ok
 
 
-def _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile):
-    """Symbols of the frame found at ``frame``: (selection, known symbols, payload check)."""
+def _frame_symbols_many(items, n_tones: int, header, layout: FrameLayout, profile: LinkProfile):
+    """Symbols of the frames found: per ``(frame, hard decisions, k1, timing)`` item, the
+    ``(selection, known symbols, payload check)`` of that burst."""
     m = profile.modulation
-    start = frame.start_symbol
     n_payload_sym = None
     if layout.payload_length is not None:
         n_payload_sym = layout.payload_length // profile.bits_per_symbol
-    stop = (
-        k1 if n_payload_sym is None else min(timing.n_symbols, start + len(header) + n_payload_sym)
-    )
-    stop = max(stop, start)
-
-    # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions, apply
-    # it to the known symbols.
-    def flip(t):
-        return n_tones - 1 - t if frame.inverted else t
-
-    known = np.full(stop - start, -1, dtype=np.int64)
-    known[: len(header)] = flip(header)[: stop - start]
-    payload_syms = flip(hard[start + len(header) : stop])
-    bits = symbols_to_bits(payload_syms, m)
-    check = _check_payload(bits, layout, profile)
-    ref = _known_payload_symbols(check, layout, profile, len(bits))
-    if ref is not None:
-        n_ref = min(len(ref), len(known) - len(header))
-        known[len(header) : len(header) + n_ref] = flip(ref[:n_ref])
-    return (start, stop), known, check
+    plans = []
+    for frame, hard, k1, timing in items:
+        start = frame.start_symbol
+        stop = (
+            k1
+            if n_payload_sym is None
+            else min(timing.n_symbols, start + len(header) + n_payload_sym)
+        )
+        stop = max(stop, start)
+        # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions,
+        # apply it to the known symbols.
+        sign = frame.inverted
+        known = np.full(stop - start, -1, dtype=np.int64)
+        known[: len(header)] = (n_tones - 1 - header if sign else header)[: stop - start]
+        payload = hard[start + len(header) : stop]
+        bits = symbols_to_bits(n_tones - 1 - payload if sign else payload, m)
+        plans.append((start, stop, known, bits, sign))
+    checks = _check_payload_many([p[3] for p in plans], layout, profile)
+    out = []
+    for (start, stop, known, bits, sign), check in zip(plans, checks, strict=True):
+        ref = _known_payload_symbols(check, layout, profile, len(bits))
+        if ref is not None:
+            n_ref = min(len(ref), len(known) - len(header))
+            ref = ref[:n_ref]
+            known[len(header) : len(header) + n_ref] = n_tones - 1 - ref if sign else ref
+        out.append(((start, stop), known, check))
+    return out
 
 
 @dataclasses.dataclass
@@ -523,59 +548,88 @@ def _stage_decide(works: list[_Work], ctx: _Context) -> None:
     _each(works, lambda w: setattr(w, "hard", _hard_decisions(w, m)))
 
 
-def _find_frame(w: _Work, ctx: _Context) -> None:
+def _stage_frame(batch: list[_Work], ctx: _Context) -> None:
     """Frame alignment on the header (a looser match confirmed by the payload), payload check."""
     profile, layout, header = ctx.profile, ctx.layout, ctx.header
     m = profile.modulation
-    hard, z_all, k1, timing = w.hard, w.z_all, w.k1, w.timing
+    # Per burst: (frame, selection, known symbols, payload check, flags to add).
+    outcome: dict[int, tuple] = {}
     if not len(header):
+        checks = [None] * len(batch)
         if profile.payload_kind != "unknown":
-            w.check = _check_payload(symbols_to_bits(hard[w.k0 : w.k1], m), layout, profile)
-        w.sel = (w.k0, w.k1)
-        return
-    # Search the whole read window: a detected edge can be a symbol or two off, and a header
-    # that starts before it must still be found.
-    n_tones = 2 if m == "ook" else z_all.shape[1]
-    soft = np.abs(z_all) ** 2 if m != "ook" else None
-    frame = align_frame(hard, header, soft=soft, n_tones=n_tones, detect_inverted=m != "ook")
-    framed = None
-    if frame.found:
-        framed = _frame_symbols(frame, hard, header, n_tones, k1, timing, layout, profile)
-        if (
-            framed[2] is not None
-            and framed[2].locked
-            and not _header_consistent(frame, framed[2], profile)
-        ):
-            w.flags.append("header-mismatch")
-    elif profile.payload_kind != "unknown":
-        # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a looser
-        # match only when the payload pattern then locks (its own false-lock probability is
-        # 1e-6), which confirms the position.
-        loose = align_frame(
-            hard,
-            header,
-            soft=soft,
-            n_tones=n_tones,
-            detect_inverted=m != "ook",
-            max_errors=int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol),
-        )
-        if loose.found:
-            trial = _frame_symbols(loose, hard, header, n_tones, k1, timing, layout, profile)
-            if (
-                trial[2] is not None
-                and trial[2].locked
-                and _header_consistent(loose, trial[2], profile)
-            ):
-                frame = dataclasses.replace(
-                    loose, message=loose.message + "; confirmed by the payload pattern"
-                )
-                framed = trial
-    w.frame = frame
-    if framed is not None:
-        w.sel, w.known, w.check = framed
+            checks = _check_payload_many(
+                [symbols_to_bits(w.hard[w.k0 : w.k1], m) for w in batch], layout, profile
+            )
+        for i, (w, c) in enumerate(zip(batch, checks, strict=True)):
+            outcome[i] = (None, (w.k0, w.k1), None, c, ())
     else:
-        w.sel = (w.k0, w.k1)
-        w.flags.append("sync-not-found")
+        # Search the whole read window: a detected edge can be a symbol or two off, and a
+        # header that starts before it must still be found.
+        n_tones = 2 if m == "ook" else batch[0].z_all.shape[1]
+        softs = [None if m == "ook" else np.abs(w.z_all) ** 2 for w in batch]
+
+        def align(ws, idx, **kw):
+            return [
+                align_frame(
+                    ws[i].hard,
+                    header,
+                    soft=softs[i],
+                    n_tones=n_tones,
+                    detect_inverted=m != "ook",
+                    **kw,
+                )
+                for i in idx
+            ]
+
+        frames = align(batch, range(len(batch)))
+        found = [i for i, f in enumerate(frames) if f.found]
+        framed = _frame_symbols_many(
+            [(frames[i], batch[i].hard, batch[i].k1, batch[i].timing) for i in found],
+            n_tones,
+            header,
+            layout,
+            profile,
+        )
+        locked = [j for j, fr in enumerate(framed) if fr[2] is not None and fr[2].locked]
+        consistent = _header_consistent_many(
+            [frames[found[j]] for j in locked], [framed[j][2] for j in locked], profile
+        )
+        bad = {found[j] for j, ok in zip(locked, consistent, strict=True) if not ok}
+        for i, fr in zip(found, framed, strict=True):
+            outcome[i] = (frames[i], *fr, ("header-mismatch",) if i in bad else ())
+        rest = [i for i, f in enumerate(frames) if not f.found]
+        if rest and profile.payload_kind != "unknown":
+            # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a
+            # looser match only when the payload pattern then locks (its own false-lock
+            # probability is 1e-6), which confirms the position.
+            max_errors = int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol)
+            loose = dict(zip(rest, align(batch, rest, max_errors=max_errors), strict=True))
+            cand = [i for i in rest if loose[i].found]
+            trials = _frame_symbols_many(
+                [(loose[i], batch[i].hard, batch[i].k1, batch[i].timing) for i in cand],
+                n_tones,
+                header,
+                layout,
+                profile,
+            )
+            good = [j for j, tr in enumerate(trials) if tr[2] is not None and tr[2].locked]
+            consistent = _header_consistent_many(
+                [loose[cand[j]] for j in good], [trials[j][2] for j in good], profile
+            )
+            for j, ok in zip(good, consistent, strict=True):
+                if ok:
+                    i = cand[j]
+                    frame = dataclasses.replace(
+                        loose[i], message=loose[i].message + "; confirmed by the payload pattern"
+                    )
+                    outcome[i] = (frame, *trials[j], ())
+        for i in rest:
+            if i not in outcome:
+                w = batch[i]
+                outcome[i] = (frames[i], (w.k0, w.k1), None, None, ("sync-not-found",))
+    for i, w in enumerate(batch):
+        w.frame, w.sel, w.known, w.check, more = outcome[i]
+        w.flags.extend(more)
 
 
 def _refine_on_known(w: _Work, ctx: _Context) -> None:
@@ -616,8 +670,8 @@ def _refine_on_known(w: _Work, ctx: _Context) -> None:
     hard = _hard_decisions(probe, m)
     k1 = _symbols_inside(timing, w.lo_edge, w.hi_edge)[1]
     n_tones = 2 if m == "ook" else z_all.shape[1]
-    sel, known, check = _frame_symbols(
-        frame, hard, header, n_tones, k1, timing, ctx.layout, ctx.profile
+    ((sel, known, check),) = _frame_symbols_many(
+        [(frame, hard, k1, timing)], n_tones, header, ctx.layout, ctx.profile
     )
     w.timing, w.link, w.cum, w.z_all, w.gram, w.hard = timing, link, cum, z_all, gram, hard
     w.frame, w.k1, w.sel, w.known, w.check = frame, k1, sel, known, check
@@ -712,7 +766,7 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     _stage_link(works, ctx)
     _stage_timing(works, ctx)
     _stage_decide(works, ctx)
-    _each(works, lambda w: _find_frame(w, ctx))
+    _batched(works, lambda batch: _stage_frame(batch, ctx))
     _each(works, lambda w: _refine_on_known(w, ctx))
     _stage_fit(works, ctx)
     _batched(works, lambda batch: _stage_available(batch, ctx))
