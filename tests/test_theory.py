@@ -680,3 +680,70 @@ def test_bad_input_raises_parameter_error(call, fragment):
     msg = str(info.value)
     assert fragment in msg, msg
     assert "\n" not in msg
+
+
+# --------------------------------------------------------------------------------------------
+# batches: one value per burst
+# --------------------------------------------------------------------------------------------
+
+
+def test_predicted_ber_batch_2fsk_one_rho_per_burst(ref):
+    # Stein 1964 rows (mpmath, 40 digits) mixed with orthogonal and degenerate bursts in one
+    # batch: Eb/N0 = 0 (P_b = ½ whatever ρ), |ρ| = 1 (indistinguishable tones, ½), 1000 dB (0).
+    rows = ref["stein"]
+    g = [undb(float(r["ebn0_db"])) for r in rows] + [0.0, undb(10.0), 1e100, undb(12.0)]
+    rho = [float(r["rho_abs"]) for r in rows] + [0.4, 1.0, 0.3, 0.0]
+    got = th.predicted_ber(np.array(g), "2fsk", rho_abs=np.array(rho))
+    assert got.shape == (len(g),)
+    for i, row in enumerate(rows):
+        assert got[i] == pytest.approx(f(row["ber"]), rel=REL_CLOSED_FORM, abs=0)
+    n = len(rows)
+    assert got[n] == pytest.approx(0.5, rel=1e-12) and got[n + 1] == pytest.approx(0.5, rel=1e-12)
+    assert got[n + 2] == 0.0
+    assert got[n + 3] == pytest.approx(f(ref["ber_table"]["nc_bfsk"]["12"]), rel=REL_CLOSED_FORM)
+    # each element equals the one-burst call (the same core; 1e-12 leaves room for BLAS order)
+    for gi, ri, v in zip(g, rho, got, strict=True):
+        assert th.predicted_ber(gi, "2fsk", rho_abs=ri) == pytest.approx(v, rel=1e-12, abs=0)
+    # a shared |ρ| broadcasts; a |ρ| array that would enlarge the result is refused
+    shared = th.predicted_ber(np.array(g[:n]), "2fsk", rho_abs=0.3)
+    assert shared[0] == pytest.approx(f(rows[0]["ber"]), rel=REL_CLOSED_FORM, abs=0)
+    with pytest.raises(ParameterError, match="one per Eb/N0 value"):
+        th.predicted_ber(np.ones(3), "2fsk", rho_abs=np.full(4, 0.1))
+
+
+def test_predicted_ber_batch_4fsk_matrix_per_burst(ref):
+    # Union bound at h = ½ (mpmath reference) for two bursts, orthogonal tones (exact 4-FSK,
+    # METHODS §1 table) for the others, a scalar-|ρ| batch against its per-burst calls.
+    r_half = np.abs(th.tone_correlation_matrix(4, 0.5, 1.0))
+    stack = np.array([r_half, np.eye(4), r_half, np.eye(4)])
+    g = undb(np.array([10.0, 8.0, 14.0, 12.0]))
+    got = th.predicted_ber(g, "4fsk", rho_abs=stack)
+    u = ref["union_4fsk_h_half"]
+    assert got[0] == pytest.approx(f(u["10"]), rel=REL_CLOSED_FORM, abs=0)
+    assert got[2] == pytest.approx(f(u["14"]), rel=REL_CLOSED_FORM, abs=0)
+    assert got[1] == pytest.approx(f(ref["ber_table"]["nc_4fsk"]["8"]), rel=REL_CLOSED_FORM)
+    assert got[3] == pytest.approx(f(ref["ber_table"]["nc_4fsk"]["12"]), rel=REL_CLOSED_FORM)
+    rho = np.array([0.0, 0.2, 2 / np.pi, 1e-7])
+    many = th.predicted_ber(g, "4fsk", rho_abs=rho)
+    for gi, ri, v in zip(g, rho, many, strict=True):
+        assert th.predicted_ber(gi, "4fsk", rho_abs=ri) == pytest.approx(v, rel=1e-12, abs=0)
+    with pytest.raises(ParameterError, match="not symmetric"):
+        th.predicted_ber(g, "4fsk", rho_abs=np.triu(stack))
+
+
+def test_ook_batch_thresholds_and_ber(ref):
+    # Optimum thresholds (mpmath root of e^{−a²/2}·I0(ab) = 1, Annamalai & Bhargava 1999) and
+    # the BER table, solved for all bursts at once, with Eb/N0 = 0 (threshold √2) in between.
+    d = ["6", "10", "14"]
+    g = np.array([undb(float(d[0])), 0.0, undb(float(d[1])), undb(float(d[2]))])
+    b = th.ook_threshold(g)
+    assert b[1] == pytest.approx(np.sqrt(2.0), rel=1e-12)
+    for i, key in zip([0, 2, 3], d, strict=True):
+        assert b[i] == pytest.approx(f(ref["ook_threshold"][key]), rel=1e-12, abs=0)
+    ber = th.predicted_ber(np.array([undb(4.0), 0.0, undb(8.0), undb(12.0)]), "ook")
+    # Eb/N0 = 0: b = √2, a = 0, P_b = ½[e^{−1} + 1 − Q1(0, √2)] = ½ exactly (Q1(0, b) = e^{−b²/2})
+    assert ber[1] == pytest.approx(0.5, rel=1e-12)
+    for i, key in zip([0, 2, 3], ["4", "8", "12"], strict=True):
+        assert ber[i] == pytest.approx(
+            f(ref["ber_table"]["nc_ook_optimum"][key]), rel=REL_CLOSED_FORM, abs=0
+        )
