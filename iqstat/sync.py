@@ -16,6 +16,7 @@ import functools
 import math
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
+from typing import Literal
 
 import numpy as np
 import scipy.fft
@@ -23,14 +24,13 @@ import scipy.signal
 import scipy.stats
 
 from iqstat.correlate import (
-    _check_cumulative,
     _check_rate,
+    _check_tone_list,
+    batch_buffer,
     check_samples,
-    check_tone_freqs,
-    interval_energies,
-    mix_cumulative,
+    mix_cumulative_many,
     symbol_boundaries,
-    tone_phasors,
+    unit_phasors,
 )
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.synth.modulator import modulate
@@ -126,50 +126,169 @@ def _plain(v):
 
 
 def _whole_symbols(n_samples: int, t0: float, period: float) -> int:
-    """Largest n with t0 + n·P <= n_samples (symbol n−1 ends inside x)."""
+    """Largest n with t0 + n·P <= n_samples (symbol n−1 ends inside x).
+
+    ``math.ceil(t0 + n * period)`` is the same double as the last entry of
+    :func:`~iqstat.correlate.symbol_boundaries` (same operations in the same order).
+    """
     n = max(0, math.floor((n_samples - t0) / period))
-    while n > 0 and symbol_boundaries(t0, period, n)[-1] > n_samples:
+    while n > 0 and math.ceil(t0 + float(n) * period) > n_samples:
         n -= 1
     return n
 
 
-def _coarse_timing(
-    feat: np.ndarray, period0: float, window: int, track_clock: bool
-) -> tuple[float, float, int, float, float, float, str]:
-    """Timing from the symbol-rate line of the feature (Oerder & Meyr), clock from its drift.
+def _weighted_lines(
+    x: np.ndarray, y: np.ndarray, w: np.ndarray, n_used: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Weighted least-squares lines y_b ≈ c_b + s_b·x, one per row; weight 0 = not used.
 
-    Returns t0, period, blocks used, rms residual of the block fit [samples], standard error
-    of the clock offset [ppm], line SNR [dB] and a status line.
+    Parameters: x (n,), y and w (B, n), n_used (B,) the points used per row (for the n − 2
+    degrees of freedom). Returns slope, intercept, weighted rms residual and the standard
+    error of the slope per row, with the residual variance estimated from the fit,
+    Σw·r²/(n − 2) (what np.polyfit(x, y, 1, w=√w, cov=True) gives). A row without weight,
+    or whose points share one x, gets slope 0, intercept the (weighted) mean, rms NaN and
+    standard error ∞.
     """
-    e = feat - feat.mean()
-    # Line strength against the spectral floor of the feature (rfft bins around the line;
-    # only those bins are squared).
-    n_fft = scipy.fft.next_fast_len(e.size, real=True)
-    spec = scipy.fft.rfft(e, n_fft)
-    k_line = n_fft / period0
-    kk = int(round(k_line))
-    lo, hi = max(1, kk - 200), min(spec.size, kk + 201)
-    neigh = np.r_[spec[lo : max(lo, kk - 3)], spec[min(hi, kk + 4) : hi]]
-    neigh = neigh.real**2 + neigh.imag**2
-    block = int(round(CLOCK_BLOCK_SYMBOLS * period0))
-    n_blocks = e.size // block if track_clock else 0
-    # e·e^{−j2πn/P0} once: the block sums below and the whole-burst coefficient share it.
-    prod = e * tone_phasors(np.array([1.0 / period0]), e.size)[0]
-    x_all = complex(prod.sum())
-    floor = np.median(neigh) if neigh.size else np.nan
-    line_snr_db = 10 * math.log10(abs(x_all) ** 2 / floor) if floor > 0 else float("inf")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sw = w.sum(axis=1)
+        xm = (w * x).sum(axis=1) / sw
+        ym = (w * y).sum(axis=1) / sw
+        dx = x - xm[:, None]
+        sxx = (w * dx * dx).sum(axis=1)
+        s = (w * dx * (y - ym[:, None])).sum(axis=1) / sxx
+        c = ym - s * xm
+        r = y - (c[:, None] + s[:, None] * x)
+        ssr = (w * r * r).sum(axis=1)
+        rms = np.sqrt(ssr / sw)
+        se = np.sqrt(np.maximum(ssr / (n_used - 2), 0.0) / sxx)
+    used = n_used > 0
+    plain = np.where(used, (y * (np.arange(y.shape[1]) < n_used[:, None])).sum(axis=1), 0.0)
+    no_w = ~(sw > 0)
+    flat = ~no_w & ~(sxx > 0)
+    s = np.where(no_w | flat, 0.0, s)
+    c = np.where(no_w, plain / np.maximum(n_used, 1), np.where(flat, ym, c))
+    rms = np.where(no_w | flat, np.nan, rms)
+    se = np.where(no_w | flat, np.inf, se)
+    return s, c, rms, se
 
-    # Peak of the feature ↔ window aligned with a symbol: n = t0 + k·P + (P − L + 1)/2.
-    shift = (period0 - window + 1) / 2.0
-    if n_blocks >= MIN_CLOCK_BLOCKS:
-        xb = prod[: n_blocks * block].reshape(n_blocks, block).sum(axis=1)
-        # Position of the feature peaks modulo P0, in samples; it drifts as (P − P0)/P per
-        # sample when P != P0 (block-wise line phase, unwrapped and line-fitted: METHODS §4).
-        off = -np.unwrap(np.angle(xb)) / (2 * np.pi) * period0
-        centre = np.arange(n_blocks, dtype=np.float64) * block + block // 2
-        w = np.abs(xb)
-        s, c, rms, se = _weighted_line(centre, off, w)
-        se_ppm = se * 1e6
+
+def _weighted_line(
+    x: np.ndarray, y: np.ndarray, w: np.ndarray
+) -> tuple[float, float, float, float]:
+    """One weighted least-squares line y ≈ c + s·x (see :func:`_weighted_lines`)."""
+    s, c, rms, se = _weighted_lines(
+        np.asarray(x, dtype=np.float64),
+        np.asarray(y, dtype=np.float64)[None, :],
+        np.asarray(w, dtype=np.float64)[None, :],
+        np.array([np.size(x)]),
+    )
+    return float(s[0]), float(c[0]), float(rms[0]), float(se[0])
+
+
+#: Temporaries of the batched timing stages are kept below about this many bytes per chunk.
+_CHUNK_BYTES = 24 << 20
+
+
+def _chunks(ids: np.ndarray, bytes_each: int):
+    """Consecutive pieces of ids whose temporaries stay below _CHUNK_BYTES."""
+    step = max(1, _CHUNK_BYTES // max(1, bytes_each))
+    for i in range(0, ids.size, step):
+        yield ids[i : i + step]
+
+
+def _rows_of(buf: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """buf[rows], a view when the rows are consecutive."""
+    if rows.size and np.all(np.diff(rows) == 1):
+        return buf[rows[0] : rows[-1] + 1]
+    return buf[rows]
+
+
+def _coarse_many(
+    sub: np.ndarray, n: np.ndarray, period0: float, window: int, track_clock: bool
+) -> dict:
+    """Symbol-rate line of the feature (Oerder & Meyr) and the block clock fit, per burst.
+
+    ``sub`` is (Bc, M, W) running sums, n the bursts' sample counts. Returns arrays per burst:
+    peak energy of the feature (0 = no energy), line SNR [dB], line phase coefficient, block
+    count, slope s, intercept, rms and slope standard error of the block fit.
+    """
+    bc, m, width = sub.shape
+    block = int(round(CLOCK_BLOCK_SYMBOLS * period0))
+    f_len = width - window
+    q_tot = -(-f_len // block)
+    ne = n + 1 - window  # valid feature samples per burst
+    e = np.zeros((bc, q_tot * block))
+    ev = e[:, :f_len]
+    for i in range(m):  # M <= 4 tones: E[n] = max_i |S_i[n + L] − S_i[n]|² (step 1)
+        d = sub[:, i, window:] - sub[:, i, :-window]
+        if i == 0:
+            np.square(d.real, out=ev)
+            ev += d.imag**2
+        else:
+            pw = d.real**2
+            pw += d.imag**2
+            np.maximum(ev, pw, out=ev)
+    valid = np.arange(e.shape[1]) < ne[:, None]
+    e *= valid  # partial windows past each burst's end
+    peak = e.max(axis=1)
+    e -= (e.sum(axis=1) / ne)[:, None]
+    e *= valid
+    # Line strength against the spectral floor of the feature: rfft bins around the line,
+    # one transform per FFT length (bursts of similar length share it).
+    floor = np.full(bc, np.nan)
+    n_fft = np.array([scipy.fft.next_fast_len(int(k), real=True) for k in ne])
+    for nf in np.unique(n_fft):
+        sel = np.nonzero(n_fft == nf)[0]
+        kk = int(round(nf / period0))
+        n_bins = nf // 2 + 1
+        lo, hi = max(1, kk - 200), min(n_bins, kk + 201)
+        bins = np.r_[np.arange(lo, max(lo, kk - 3)), np.arange(min(hi, kk + 4), hi)]
+        if bins.size == 0:
+            continue
+        seg = e[sel, : min(int(nf), e.shape[1])]
+        spec = scipy.fft.rfft(seg, int(nf), axis=1)[:, bins]
+        floor[sel] = np.median(spec.real**2 + spec.imag**2, axis=1)
+    # Block sums of E[n]·e^{−j2πn/P0}: e^{−j2πn/P0} = e^{−j2πqB/P0}·e^{−j2πl/P0}, n = qB + l,
+    # so they are one real matrix product with the (B, 2) within-block table (step 2).
+    within = unit_phasors(-np.arange(block) / period0)
+    cs = np.stack([within.real, within.imag], axis=1)
+    r = e.reshape(bc * q_tot, block) @ cs
+    xq = (r[:, 0] + 1j * r[:, 1]).reshape(bc, q_tot)
+    xq *= unit_phasors(-(np.arange(q_tot) * block) / period0)
+    x_all = xq.sum(axis=1)
+    with np.errstate(divide="ignore"):
+        line_snr = np.where(
+            floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf
+        )
+    n_blocks = ne // block if track_clock else np.zeros(bc, dtype=np.int64)
+    fit = n_blocks >= MIN_CLOCK_BLOCKS
+    nq = int(n_blocks[fit].max()) if fit.any() else 1
+    xb = xq[:, :nq]
+    # Position of the feature peaks modulo P0 per block; it drifts as (P − P0)/P per sample
+    # when P != P0 (block-wise line phase, unwrapped and line-fitted: METHODS §4).
+    off = -np.unwrap(np.angle(xb), axis=1) / (2 * np.pi) * period0
+    centre = np.arange(nq, dtype=np.float64) * block + block // 2
+    use = np.arange(nq) < np.where(fit, n_blocks, 0)[:, None]
+    w = np.abs(xb) * use
+    s, c, rms, se = _weighted_lines(centre, off, w, np.where(fit, n_blocks, 0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c_flat = (w * off).sum(axis=1) / w.sum(axis=1)  # intercept with the slope set to 0
+    return dict(
+        peak=peak, line_snr=line_snr, x_all=x_all, n_blocks=n_blocks, fit=fit,
+        s=s, c=c, c_flat=c_flat, rms=rms, se=se,
+    )  # fmt: skip
+
+
+def _clock_decision(
+    co: dict, j: int, period0: float, window: int, track_clock: bool
+) -> tuple[float, float, int, float, float, float, str]:
+    """One burst's coarse grid from :func:`_coarse_many`: t0, P, blocks, rms, se [ppm],
+    line SNR [dB] and a status line (the clock offset kept only where significant)."""
+    shift = (period0 - window + 1) / 2.0  # feature peak ↔ window aligned with a symbol
+    n_blocks = int(co["n_blocks"][j])
+    if co["fit"][j]:
+        s, c = float(co["s"][j]), float(co["c"][j])
+        rms, se_ppm = float(co["rms"][j]), float(co["se"][j]) * 1e6
         ppm = -s * 1e6  # (P0/P − 1)·1e6 with P = P0/(1 − s)
         if not math.isfinite(ppm) or abs(ppm) > MAX_CLOCK_OFFSET_PPM:
             status = f"block fit gave {ppm:+.0f} ppm, implausible: kept the nominal rate"
@@ -183,12 +302,12 @@ def _coarse_timing(
         else:
             status = f"clock {ppm:+.1f} ± {se_ppm:.1f} ppm from {n_blocks} blocks"
         if s == 0.0:
-            c = float(np.average(off - s * centre, weights=w))
+            c = float(co["c_flat"][j])
         period = period0 / (1.0 - s)
         t_peak = c / (1.0 - s)
     else:
         period, rms, se_ppm = period0, float("nan"), float("nan")
-        t_peak = -np.angle(x_all) / (2 * np.pi) * period0
+        t_peak = -float(np.angle(co["x_all"][j])) / (2 * np.pi) * period0
         status = (
             f"burst too short for a clock fit ({n_blocks} blocks of {CLOCK_BLOCK_SYMBOLS} "
             "symbols): nominal rate"
@@ -197,94 +316,290 @@ def _coarse_timing(
         )
         n_blocks = 0
     t0 = float(np.mod(t_peak - shift, period))
-    return t0, float(period), int(n_blocks), rms, float(se_ppm), float(line_snr_db), status
+    return t0, float(period), n_blocks, rms, se_ppm, float(co["line_snr"][j]), status
 
 
-def _weighted_line(
-    x: np.ndarray, y: np.ndarray, w: np.ndarray
-) -> tuple[float, float, float, float]:
-    """Weighted least-squares line y ≈ c + s·x with weights w.
-
-    Returns slope s, intercept c, the weighted rms residual and the standard error of s with
-    the residual variance estimated from the fit, Σw·r²/(n − 2) (what np.polyfit(x, y, 1,
-    w=√w, cov=True) gives, without its overhead: this runs once per burst).
-    """
-    sw = float(w.sum())
-    if not sw > 0:
-        return 0.0, float(np.mean(y)), math.nan, math.inf  # no weight: no line
-    xm = float((w * x).sum()) / sw
-    ym = float((w * y).sum()) / sw
-    dx = x - xm
-    sxx = float((w * dx * dx).sum())
-    if not sxx > 0:
-        return 0.0, ym, math.nan, math.inf
-    s = float((w * dx * (y - ym)).sum()) / sxx
-    c = ym - s * xm
-    r = y - (c + s * x)
-    ssr = float((w * r * r).sum())
-    rms = math.sqrt(ssr / sw)
-    se = math.sqrt(max(ssr / (x.size - 2), 0.0) / sxx)
-    return s, c, rms, se
-
-
-def _grid_energy(
-    cum: np.ndarray, t_mid: np.ndarray, drift: np.ndarray, k_rel: np.ndarray
+def _gather_energies(
+    buf: np.ndarray, rows: np.ndarray, b: np.ndarray, reduce_max: bool
 ) -> np.ndarray:
-    """Σ_k max_i |z_ki|² on grids t_k = t_mid + drift·k_rel (k_rel in [−1, 1]) per candidate.
+    """|S[b_{k+1}] − S[b_k]|² / N_k for boundaries b (R, ..., K + 1) of burst rows ``rows``.
 
-    The energies of :func:`~iqstat.correlate.interval_energies`, taken tone by tone (one
-    gather of the running sums per tone for all candidates at once) and divided by N_k
-    after the maximum, which is the same number: N_k is common to the tones.
+    Returns (R, ..., K) of max over tones (reduce_max) or (M, R, ..., K) per tone; an
+    interval of zero samples (padding) has energy 0.
     """
-    n_cand, n_b = t_mid.size, k_rel.size
-    t = np.multiply.outer(drift, k_rel)
-    t += t_mid[:, None]
-    np.ceil(t, out=t)
-    # All candidates' boundaries as one flat sequence: its differences are the symbols,
-    # plus one junk difference between consecutive candidates (zeroed below).
-    flat = t.ravel()
-    b = flat.astype(np.intp)
+    m, width = buf.shape[1], buf.shape[2]
+    flat = buf.reshape(-1)
+    base = (rows * (m * width)).reshape((-1,) + (1,) * (b.ndim - 1)) + b
+    nk = np.diff(b, axis=-1)
     best = None
-    for row in cum:  # M <= 4 tones, each over all candidates and symbols at once
-        s = row[b]
-        d = s[1:] - s[:-1]
+    per_tone = []
+    for i in range(m):  # M <= 4 tones, each over all bursts, candidates and symbols at once
+        s = flat[base + i * width]
+        d = s[..., 1:] - s[..., :-1]
         e = d.real**2
         e += d.imag**2
-        best = e if best is None else np.maximum(best, e, out=best)
-    out = np.empty(n_cand * n_b)
-    np.divide(best, flat[1:] - flat[:-1], out=out[:-1])
-    out = out.reshape(n_cand, n_b)
-    out[:, -1] = 0.0  # the junk differences (and the unused last slot)
-    return out.sum(axis=1)
+        if reduce_max:
+            best = e if best is None else np.maximum(best, e, out=best)
+        else:
+            per_tone.append(e)
+    out = best if reduce_max else np.stack(per_tone)
+    np.divide(
+        out, np.broadcast_to(nk, out.shape), out=out, where=np.broadcast_to(nk, out.shape) > 0
+    )
+    return out
 
 
-def _energy_check(
-    cum: np.ndarray, n_samples: int, t0: float, period: float, vary_period: bool
-) -> tuple[float, float, float]:
-    """Matched energy Σ_k max_i |z_ki|² at a grid and the most a local search can add.
+def _energy_check_many(
+    buf: np.ndarray,
+    rows: np.ndarray,
+    n: np.ndarray,
+    t0: np.ndarray,
+    period: np.ndarray,
+    vary_period: bool,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Matched energy Σ_k max_i |z_ki|² at each burst's grid and the most a local search adds.
 
     The candidates move the timing at the burst centre and the drift at its ends (the two are
-    uncorrelated, unlike t0 and P). Returns the gain [dB] of the best candidate over the
-    grid given (>= 0) and that candidate's timing and drift offsets [periods].
+    uncorrelated, unlike t0 and P). Returns per burst the gain [dB] of the best candidate over
+    the grid given (>= 0) and that candidate's timing and drift offsets [periods].
     """
     wt, wd = _CHECK_HALF_WIDTH
-    reach = (wt + wd) * period  # largest shift of any boundary over the candidates
-    k_first = math.ceil(max(0.0, reach - 1.0 - t0) / period)
-    n_sym = _whole_symbols(n_samples - math.ceil(reach), t0, period) - k_first
-    if n_sym < 2:
-        return 0.0, 0.0, 0.0
-    k = k_first + np.arange(n_sym + 1, dtype=np.float64)
-    k_mid = (k[0] + k[-1]) / 2.0
-    half = (k[-1] - k[0]) / 2.0
-    k_rel = (k - k_mid) / half
     gt = np.linspace(-wt, wt, _CHECK_POINTS[0])
     gd = np.linspace(-wd, wd, _CHECK_POINTS[1]) if vary_period else np.zeros(1)
     tt, dd = (g.ravel() for g in np.meshgrid(gt, gd, indexing="ij"))
     tt, dd = np.r_[0.0, tt], np.r_[0.0, dd]  # candidate 0 is the grid itself
-    e = _grid_energy(cum, t0 + k_mid * period + tt * period, (half + dd) * period, k_rel)
-    i = int(np.argmax(e))
-    gain_db = 10 * math.log10(e[i] / e[0]) if e[0] > 0 else 0.0
-    return gain_db, float(tt[i]), float(dd[i])
+    nb = n.size
+    k_first = np.zeros(nb, dtype=np.int64)
+    n_sym = np.zeros(nb, dtype=np.int64)
+    for j in range(nb):  # scalar bounds per burst (no numpy calls)
+        reach = (wt + wd) * float(period[j])  # largest shift of any boundary
+        kf = math.ceil(max(0.0, reach - 1.0 - float(t0[j])) / float(period[j]))
+        k_first[j] = kf
+        n_sym[j] = _whole_symbols(int(n[j]) - math.ceil(reach), float(t0[j]), float(period[j])) - kf
+    gain = np.zeros(nb)
+    bt, bd = np.zeros(nb), np.zeros(nb)
+    ok = np.nonzero(n_sym >= 2)[0]
+    if ok.size == 0:
+        return gain, bt, bd
+    k_len = int(n_sym[ok].max()) + 1
+    for part in _chunks(ok, tt.size * k_len * 64):
+        kf, ns = k_first[part], n_sym[part]
+        k = kf[:, None] + np.minimum(np.arange(k_len), ns[:, None]).astype(np.float64)
+        k_mid = (kf + (kf + ns)) / 2.0
+        half = ns / 2.0
+        k_rel = (k - k_mid[:, None]) / half[:, None]
+        p = period[part]
+        t_mid = (t0[part] + k_mid * p)[:, None] + tt[None, :] * p[:, None]
+        drift = (half[:, None] + dd[None, :]) * p[:, None]
+        t = drift[:, :, None] * k_rel[:, None, :]
+        t += t_mid[:, :, None]
+        np.ceil(t, out=t)
+        e = _gather_energies(buf, rows[part], t.astype(np.intp), True).sum(axis=-1)
+        i = np.argmax(e, axis=1)
+        e_best = np.take_along_axis(e, i[:, None], axis=1)[:, 0]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            g = np.where(e[:, 0] > 0, 10 * np.log10(e_best / e[:, 0]), 0.0)
+        gain[part], bt[part], bd[part] = g, tt[i], dd[i]
+    return gain, bt, bd
+
+
+def recover_timing_many(
+    xs: Sequence[np.ndarray],
+    sample_rate_hz: float,
+    symbol_rate_hz: float | Sequence[float],
+    tone_freqs_list: Sequence[Sequence[float]],
+    *,
+    track_clock: bool = True,
+    cumulatives: Sequence[np.ndarray] | None = None,
+    errors: Literal["raise", "return"] = "raise",
+) -> list[SymbolTiming | MeasurementError]:
+    """:func:`recover_timing` of a batch of bursts, in a fixed number of numpy calls.
+
+    Parameters
+    ----------
+    xs : sequence of B ndarrays, shapes (n_b,)
+        The bursts' samples (ragged).
+    sample_rate_hz : float
+        Sample rate fs [Hz].
+    symbol_rate_hz : float or sequence of B floats
+        Nominal symbol rate Rs [Bd], common or per burst.
+    tone_freqs_list : sequence of B sequences of float
+        Each burst's tones [Hz], CFO included; the same count M for all.
+    track_clock : bool
+        Estimate the clock offset (see :func:`recover_timing`).
+    cumulatives : sequence of B ndarrays, optional
+        :func:`~iqstat.correlate.mix_cumulative_many` of the same bursts and tones (views of
+        one buffer: used in place), or arrays made one by one (copied into one buffer).
+    errors : {"raise", "return"}
+        What a burst that cannot be timed (too short, no energy) does: "raise" raises its
+        MeasurementError; "return" puts the MeasurementError in that burst's slot and times
+        the others. Bad parameters always raise ParameterError.
+
+    Returns
+    -------
+    list of B SymbolTiming (or MeasurementError with ``errors="return"``)
+        Each the same as :func:`recover_timing` of that burst alone (to rounding).
+
+    Notes
+    -----
+    The steps of :func:`recover_timing`, each over the whole batch: the feature, its
+    symbol-rate coefficient and block sums (a real matrix product with a within-block phasor
+    table), the spectral floor (one rfft per FFT length), the clock line fits (vectorised over
+    bursts), each round of the matched-energy check (all candidates of all bursts still
+    moving, one gather per tone), and the final matched fraction. Work is done in chunks of
+    bursts whose temporaries stay below ~24 MB.
+    """
+    if errors not in ("raise", "return"):
+        raise ParameterError(f"errors {errors!r} is not one of 'raise', 'return'")
+    fs = _check_rate("sample_rate_hz", sample_rate_hz)
+    nb = len(xs)
+    if len(tone_freqs_list) != nb:
+        raise ParameterError(
+            f"xs has {nb} bursts but tone_freqs_list has {len(tone_freqs_list)} entries; "
+            "give one tone list per burst"
+        )
+    if isinstance(symbol_rate_hz, (int, float, np.number)):
+        rates = [_check_rate("symbol_rate_hz", symbol_rate_hz)] * nb
+    else:
+        if len(symbol_rate_hz) != nb:
+            raise ParameterError(
+                f"symbol_rate_hz has {len(symbol_rate_hz)} entries for {nb} bursts; give one "
+                "rate, or one per burst"
+            )
+        rates = [_check_rate("symbol_rate_hz", r) for r in symbol_rate_hz]
+    if cumulatives is not None and len(cumulatives) != nb:
+        raise ParameterError(f"cumulatives has {len(cumulatives)} entries for {nb} bursts")
+    if nb == 0:
+        return []
+    arrays = [check_samples(x) for x in xs]
+    freqs = _check_tone_list(tone_freqs_list, fs)
+    period0 = np.array([fs / r for r in rates])
+    for r, p0 in zip(rates, period0, strict=True):
+        if p0 < 2.0:
+            raise ParameterError(
+                f"symbol_rate_hz {r!r} gives {p0:.3g} samples per symbol at {fs:g} S/s; "
+                "timing recovery needs at least 2"
+            )
+    n = np.array([a.size for a in arrays], dtype=np.int64)
+    out: list = [None] * nb
+    for j in range(nb):
+        if n[j] < (MIN_SYMBOLS + 2) * period0[j]:
+            out[j] = MeasurementError(
+                f"burst of {n[j]} samples holds fewer than {MIN_SYMBOLS + 2} symbols of "
+                f"{period0[j]:.4g} samples; timing recovery needs a longer burst"
+            )
+    ok = np.array([j for j in range(nb) if out[j] is None], dtype=np.int64)
+    if ok.size:
+        if cumulatives is None:
+            cums = mix_cumulative_many([arrays[j] for j in ok], fs, freqs[ok])
+        else:
+            cums = [cumulatives[j] for j in ok]
+        buf, rows_ok = batch_buffer(cums, freqs.shape[1], n[ok])
+        rows = np.zeros(nb, dtype=np.int64)
+        rows[ok] = rows_ok
+        _time_bursts(buf, rows, n, period0, ok, track_clock, out)
+    if errors == "raise":
+        for r in out:
+            if isinstance(r, MeasurementError):
+                raise r
+    return out
+
+
+def _time_bursts(buf, rows, n, period0, ok, track_clock, out) -> None:
+    """The core of :func:`recover_timing_many` for the bursts ``ok``; fills ``out``."""
+    m, width = buf.shape[1], buf.shape[2]
+    coarse: dict[int, tuple] = {}
+    for p0 in np.unique(period0[ok]):  # one group per nominal period (usually one)
+        ids = ok[period0[ok] == p0]
+        window = max(1, int(round(p0)))
+        for part in _chunks(ids, width * (16 * 2 + 8 * 3)):
+            co = _coarse_many(_rows_of(buf, rows[part]), n[part], float(p0), window, track_clock)
+            for jj, j in enumerate(part):
+                if not co["peak"][jj] > 0:
+                    out[j] = MeasurementError(
+                        "burst has no energy at the tones (all-zero samples); check the burst "
+                        "limits"
+                    )
+                else:
+                    coarse[int(j)] = _clock_decision(co, jj, float(p0), window, track_clock)
+    ids = np.array(sorted(coarse), dtype=np.int64)
+    if ids.size == 0:
+        return
+    t0_c = np.array([coarse[j][0] for j in ids])
+    period_c = np.array([coarse[j][1] for j in ids])
+    t0, period = t0_c.copy(), period_c.copy()
+    moved = np.zeros(ids.size, dtype=np.int64)
+    gain = np.zeros(ids.size)
+    active = np.arange(ids.size)
+    for _ in range(_MAX_CHECK_MOVES):
+        g, dt, dd = _energy_check_many(
+            buf, rows[ids[active]], n[ids[active]], t0[active], period[active], track_clock
+        )
+        gain[active] = g
+        go = g > MAX_CHECK_GAIN_DB
+        # The line phase missed the energy peak (weak line, gross error): move to the best
+        # candidate and check again.
+        for a, dti, ddi in zip(active[go], dt[go], dd[go], strict=True):
+            j = ids[a]
+            n_half = (_whole_symbols(int(n[j]), float(t0[a]), float(period[a])) - 1) / 2.0
+            t_mid = t0[a] + n_half * period[a] + dti * period[a]
+            period[a] = period[a] + ddi * period[a] / max(n_half, 1.0)
+            t0[a] = t_mid - n_half * period[a]
+            moved[a] += 1
+        active = active[go]
+        if active.size == 0:
+            break
+    k_mid = np.round((n[ids] / 2 - t0_c) / period_c)
+    fine_shift = (t0 + k_mid * period) - (t0_c + k_mid * period_c)
+    t0 = np.mod(t0, period)
+    n_sym = np.array(
+        [_whole_symbols(int(n[j]), float(t0[a]), float(period[a])) for a, j in enumerate(ids)]
+    )
+    matched = np.full(ids.size, np.nan)
+    k_len = int(n_sym.max()) + 1
+    for part in _chunks(np.arange(ids.size), k_len * 8 * (6 + 3 * m)):
+        k = np.minimum(np.arange(k_len), n_sym[part][:, None]).astype(np.float64)
+        b = np.ceil(t0[part][:, None] + k * period[part][:, None]).astype(np.intp)
+        e = _gather_energies(buf, rows[ids[part]], b, False)  # (M, R, K)
+        total = e.sum(axis=(0, 2))
+        top = e.max(axis=0).sum(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            matched[part] = np.where((n_sym[part] > 0) & (total > 0), top / total, np.nan)
+    for a, j in enumerate(ids):
+        tc, pc, n_blocks, rms, se_ppm, line_snr_db, clock_txt = coarse[int(j)]
+        p0 = float(period0[j])
+        tj, pj, nj = float(t0[a]), float(period[a]), int(n_sym[a])
+        reliable = line_snr_db >= MIN_LINE_SNR_DB
+        message = (
+            f"{nj} symbols, t0 {tj:.3f} samples, period {pj:.5f} samples; "
+            f"symbol-rate line {line_snr_db:.1f} dB; {clock_txt}"
+        )
+        if moved[a]:
+            message += f"; matched-energy search moved the grid {fine_shift[a]:+.2f} samples"
+        if not reliable:
+            message += f"; line below {MIN_LINE_SNR_DB:g} dB: timing unreliable"
+        quality = {
+            "line_snr_db": float(line_snr_db),
+            "n_clock_blocks": int(n_blocks),
+            "clock_fit_rms_samples": float(rms),
+            "clock_offset_se_ppm": float(se_ppm),
+            "coarse_t0_samples": float(tc),
+            "coarse_clock_offset_ppm": float((p0 / pc - 1.0) * 1e6),
+            "fine_moves": int(moved[a]),
+            "fine_shift_samples": float(fine_shift[a]),
+            "residual_gain_db": float(gain[a]),
+            "matched_fraction": float(matched[a]),
+        }
+        out[j] = SymbolTiming(
+            t0_samples=tj,
+            period_samples=pj,
+            clock_offset_ppm=float((p0 / pj - 1.0) * 1e6) if track_clock else 0.0,
+            n_symbols=nj,
+            method="feature line phase (Oerder-Meyr) + block clock fit + matched-energy search",
+            quality=quality,
+            message=message,
+            reliable=bool(reliable),
+        )
 
 
 def recover_timing(
@@ -338,91 +653,14 @@ def recover_timing(
     .. [1] M. Oerder and H. Meyr, "Digital filter and square timing recovery," IEEE Trans.
        Commun. 36(5):605–612, 1988.
     """
-    a = check_samples(x)
-    fs = _check_rate("sample_rate_hz", sample_rate_hz)
-    rs = _check_rate("symbol_rate_hz", symbol_rate_hz)
-    f = check_tone_freqs(tone_freqs_hz, fs)
-    period0 = fs / rs
-    if period0 < 2.0:
-        raise ParameterError(
-            f"symbol_rate_hz {symbol_rate_hz!r} gives {period0:.3g} samples per symbol at "
-            f"{fs:g} S/s; timing recovery needs at least 2"
-        )
-    if a.size < (MIN_SYMBOLS + 2) * period0:
-        raise MeasurementError(
-            f"burst of {a.size} samples holds fewer than {MIN_SYMBOLS + 2} symbols of "
-            f"{period0:.4g} samples; timing recovery needs a longer burst"
-        )
-    if cumulative is None:
-        cum = mix_cumulative(a, fs, f)
-    else:
-        cum = _check_cumulative(cumulative, f.size, a.size)
-    window = max(1, int(round(period0)))
-    d = cum[:, window:] - cum[:, :-window]
-    feat = d.real**2
-    feat += d.imag**2
-    feat = feat.max(axis=0)
-    if not feat.max() > 0:
-        raise MeasurementError(
-            "burst has no energy at the tones (all-zero samples); check the burst limits"
-        )
-
-    t0_c, period_c, n_blocks, rms, se_ppm, line_snr_db, clock_txt = _coarse_timing(
-        feat, period0, window, track_clock
-    )
-    vary = track_clock
-    t0, period = t0_c, period_c
-    moved = 0
-    for _ in range(_MAX_CHECK_MOVES):
-        gain_db, dt, dd = _energy_check(cum, a.size, t0, period, vary)
-        if gain_db <= MAX_CHECK_GAIN_DB:
-            break
-        # The line phase missed the energy peak (weak line, gross error): move to the best
-        # candidate and check again.
-        n_half = (_whole_symbols(a.size, t0, period) - 1) / 2.0
-        t_mid = t0 + n_half * period + dt * period
-        period = period + dd * period / max(n_half, 1.0)
-        t0 = t_mid - n_half * period
-        moved += 1
-    k_mid = round((a.size / 2 - t0_c) / period_c)
-    fine_shift = (t0 + k_mid * period) - (t0_c + k_mid * period_c)
-    t0 = float(np.mod(t0, period))
-    n_sym = _whole_symbols(a.size, t0, period)
-    b = symbol_boundaries(t0, period, n_sym)
-    e = interval_energies(cum, b)
-    matched = float(e.max(axis=-1).sum() / e.sum()) if e.size and e.sum() > 0 else float("nan")
-    ppm = (period0 / period - 1.0) * 1e6
-    reliable = line_snr_db >= MIN_LINE_SNR_DB
-    message = (
-        f"{n_sym} symbols, t0 {t0:.3f} samples, period {period:.5f} samples; "
-        f"symbol-rate line {line_snr_db:.1f} dB; {clock_txt}"
-    )
-    if moved:
-        message += f"; matched-energy search moved the grid {fine_shift:+.2f} samples"
-    if not reliable:
-        message += f"; line below {MIN_LINE_SNR_DB:g} dB: timing unreliable"
-    quality = {
-        "line_snr_db": float(line_snr_db),
-        "n_clock_blocks": int(n_blocks),
-        "clock_fit_rms_samples": float(rms),
-        "clock_offset_se_ppm": float(se_ppm),
-        "coarse_t0_samples": float(t0_c),
-        "coarse_clock_offset_ppm": float((period0 / period_c - 1.0) * 1e6),
-        "fine_moves": int(moved),
-        "fine_shift_samples": float(fine_shift),
-        "residual_gain_db": float(gain_db),
-        "matched_fraction": matched,
-    }
-    return SymbolTiming(
-        t0_samples=t0,
-        period_samples=float(period),
-        clock_offset_ppm=float(ppm) if track_clock else 0.0,
-        n_symbols=int(n_sym),
-        method="feature line phase (Oerder-Meyr) + block clock fit + matched-energy search",
-        quality=quality,
-        message=message,
-        reliable=bool(reliable),
-    )
+    return recover_timing_many(
+        [x],
+        sample_rate_hz,
+        symbol_rate_hz,
+        [tone_freqs_hz],
+        track_clock=track_clock,
+        cumulatives=None if cumulative is None else [cumulative],
+    )[0]
 
 
 # ------------------------------------------------------------------------- frame alignment
