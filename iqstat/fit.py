@@ -233,41 +233,6 @@ def _check_outputs(z: np.ndarray, modulation: str) -> np.ndarray:
     return arr
 
 
-def _check_gram(gram: np.ndarray | None, m: int) -> tuple[np.ndarray, bool]:
-    """The Gram matrix as complex (m, m) and whether it is the identity."""
-    if gram is None:
-        return np.eye(m, dtype=complex), True
-    r = np.asarray(gram)
-    if r.dtype.kind not in "biufc" or r.shape != (m, m):
-        raise ParameterError(
-            f"gram has shape {r.shape} and dtype {r.dtype}; pass a ({m}, {m}) complex Hermitian "
-            f"matrix of template correlations (identity for orthogonal tones)"
-        )
-    r = r.astype(complex)
-    if not np.all(np.isfinite(r)):
-        raise ParameterError("gram contains NaN or inf; pass finite template correlations")
-    if np.max(np.abs(r - r.conj().T)) > 1e-8:
-        raise ParameterError(
-            "gram is not Hermitian (R[i, j] must equal conj(R[j, i])); "
-            "rebuild it from the templates"
-        )
-    diag = np.real(np.diag(r))
-    if np.max(np.abs(diag - 1.0)) > 1e-6:
-        raise ParameterError(
-            f"gram diagonal is {np.round(diag, 6).tolist()} but unit-energy templates give 1; "
-            f"normalise the templates"
-        )
-    eig = np.linalg.eigvalsh(r)
-    if eig[0] <= 0 or eig[-1] / eig[0] > MAX_GRAM_CONDITION:
-        cond = math.inf if eig[0] <= 0 else eig[-1] / eig[0]
-        raise ParameterError(
-            f"gram has condition number {cond:.3g} (> {MAX_GRAM_CONDITION:.0e}): the tones are too "
-            f"close to separate; check the tone spacing or the symbol length"
-        )
-    identity = bool(np.max(np.abs(r - np.eye(m))) < 1e-12)
-    return r, identity
-
-
 def _check_priors(priors: Sequence[float] | None, modulation: str) -> np.ndarray:
     h = N_HYPOTHESES[modulation]
     if priors is None:
@@ -282,37 +247,6 @@ def _check_priors(priors: Sequence[float] | None, modulation: str) -> np.ndarray
     if abs(p.sum() - 1.0) > 1e-6:
         raise ParameterError(f"priors {p.tolist()} sum to {p.sum():.6g}; they must sum to 1")
     return p / p.sum()
-
-
-def _whitened_energy(z: np.ndarray, gram: np.ndarray, identity: bool) -> np.ndarray:
-    """q_k = z_kᴴ R⁻¹ z_k, shape (n_symbols,), E[q] = M·N0 + A² (docs/estimator.md eq. 4)."""
-    if identity:
-        return np.sum(z.real**2 + z.imag**2, axis=1)
-    rinv = np.linalg.inv(gram)
-    rz = z @ rinv.T  # (R⁻¹z_k)ᵀ per row; einsum with optimize=True cost 0.15 ms of planning
-    q = np.sum(z.real * rz.real + z.imag * rz.imag, axis=1)  # Re(z_kᴴ·R⁻¹z_k)
-    return np.maximum(q, 0.0)
-
-
-def _scaled(z: np.ndarray) -> tuple[np.ndarray, float]:
-    """z divided by its largest component magnitude (1 if all zero): no overflow in |z|²."""
-    scale = float(max(np.max(np.abs(z.real), initial=0.0), np.max(np.abs(z.imag), initial=0.0)))
-    return (z / scale, scale) if scale > 0 else (z, 0.0)
-
-
-def _unscaled(fit: NoncoherentFit, scale: float) -> NoncoherentFit:
-    """Undo :func:`_scaled`: A·s, N0·s², log-density − 2·N·M·log s (Jacobian of z/s)."""
-    if scale == 1.0:
-        return fit
-    ll = fit.log_likelihood
-    if ll is not None:
-        ll = ll - 2.0 * fit.n_symbols * N_BRANCHES[fit.modulation] * math.log(scale)
-    return replace(
-        fit,
-        amplitude=None if fit.amplitude is None else fit.amplitude * scale,
-        noise_var=None if fit.noise_var is None else _finite_or_none(fit.noise_var * scale**2),
-        log_likelihood=_finite_or_none(ll),
-    )
 
 
 def _failed_fit(method: str, modulation: str, n: int, priors, message: str) -> NoncoherentFit:
@@ -347,16 +281,241 @@ def _no_energy(method: str, modulation: str, n: int, priors: np.ndarray) -> Nonc
 
 
 # --------------------------------------------------------------------------------------------
-# The likelihood and its maximisation
+# Batches of bursts: checks and preparation in a few numpy calls
+# --------------------------------------------------------------------------------------------
+
+
+def _burst_label(i: int, count: int) -> str:
+    return f"burst {i}: " if count > 1 else ""
+
+
+def _check_output_arrays(zs: Sequence[np.ndarray], modulation: str) -> list[np.ndarray]:
+    """Every z as complex128 (n_b, M) (dtype and shape per burst, values checked together)."""
+    m = N_BRANCHES[modulation]
+    if isinstance(zs, np.ndarray) or not isinstance(zs, Sequence):
+        raise ParameterError(
+            f"zs is a {type(zs).__name__}; pass a list of (n_symbols, {m}) arrays, one per burst"
+        )
+    out = []
+    for i, z in enumerate(zs):
+        where = _burst_label(i, len(zs))
+        try:
+            arr = np.asarray(z)
+        except Exception as exc:  # pragma: no cover - numpy raises many types here
+            raise ParameterError(
+                f"{where}z could not be read as an array ({exc}); pass a numpy array"
+            ) from None
+        if arr.dtype.kind not in "biufc":
+            raise ParameterError(
+                f"{where}z has dtype {arr.dtype}; pass complex correlator outputs of shape "
+                f"(n_symbols, {m})"
+            )
+        if modulation == "ook" and arr.ndim == 1:
+            arr = arr[:, None]
+        if arr.ndim != 2 or arr.shape[1] != m:
+            raise ParameterError(
+                f"{where}z has shape {arr.shape} but {modulation} needs (n_symbols, {m}): one "
+                f"column per correlator branch"
+            )
+        out.append(arr.astype(np.complex128, copy=False))
+    return out
+
+
+def _check_grams(grams, m: int, count: int) -> tuple[np.ndarray, np.ndarray]:
+    """Gram matrices as complex (B, m, m) and whether each is the identity.
+
+    ``grams`` is None, one (m, m) array for all bursts, or a sequence with one array (or None)
+    per burst. The checks run on the stack (eigenvalues with one ``eigvalsh`` call).
+    """
+    if grams is None:
+        return np.broadcast_to(np.eye(m, dtype=complex), (count, m, m)), np.ones(count, bool)
+    if isinstance(grams, np.ndarray) and grams.ndim == 2:
+        r, identity = _check_grams([grams], m, 1)
+        return np.broadcast_to(r[0], (count, m, m)), np.full(count, identity[0])
+    if len(grams) != count:
+        raise ParameterError(
+            f"grams has {len(grams)} entries for {count} bursts; pass one per burst, one shared "
+            f"matrix, or None"
+        )
+    stack = np.empty((count, m, m), dtype=complex)
+    for i, g in enumerate(grams):
+        if g is None:
+            stack[i] = np.eye(m)
+            continue
+        r = np.asarray(g)
+        if r.dtype.kind not in "biufc" or r.shape != (m, m):
+            raise ParameterError(
+                f"{_burst_label(i, count)}gram has shape {r.shape} and dtype {r.dtype}; pass a "
+                f"({m}, {m}) complex Hermitian matrix of template correlations (identity for "
+                f"orthogonal tones)"
+            )
+        stack[i] = r
+    where = _burst_label
+    finite = np.isfinite(stack).all(axis=(1, 2))
+    if not finite.all():
+        i = int(np.argmin(finite))
+        raise ParameterError(
+            f"{where(i, count)}gram contains NaN or inf; pass finite template correlations"
+        )
+    herm = np.max(np.abs(stack - stack.conj().transpose(0, 2, 1)), axis=(1, 2)) > 1e-8
+    if herm.any():
+        i = int(np.argmax(herm))
+        raise ParameterError(
+            f"{where(i, count)}gram is not Hermitian (R[i, j] must equal conj(R[j, i])); "
+            "rebuild it from the templates"
+        )
+    diag = np.real(np.diagonal(stack, axis1=1, axis2=2))
+    off = np.max(np.abs(diag - 1.0), axis=1) > 1e-6
+    if off.any():
+        i = int(np.argmax(off))
+        raise ParameterError(
+            f"{where(i, count)}gram diagonal is {np.round(diag[i], 6).tolist()} but unit-energy "
+            f"templates give 1; normalise the templates"
+        )
+    eig = np.linalg.eigvalsh(stack)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cond = np.where(eig[:, 0] > 0, eig[:, -1] / eig[:, 0], math.inf)
+    bad = cond > MAX_GRAM_CONDITION
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise ParameterError(
+            f"{where(i, count)}gram has condition number {cond[i]:.3g} (> "
+            f"{MAX_GRAM_CONDITION:.0e}): the tones are too close to separate; check the tone "
+            f"spacing or the symbol length"
+        )
+    identity = np.max(np.abs(stack - np.eye(m)), axis=(1, 2)) < 1e-12
+    return stack, identity
+
+
+def _check_gram(gram: np.ndarray | None, m: int) -> tuple[np.ndarray, bool]:
+    """The Gram matrix as complex (m, m) and whether it is the identity."""
+    if gram is None:
+        return np.eye(m, dtype=complex), True
+    r, identity = _check_grams([gram], m, 1)
+    return r[0], bool(identity[0])
+
+
+def _ook_grams(grams, count: int) -> None:
+    items = [grams] if grams is None or isinstance(grams, np.ndarray) else list(grams)
+    for i, g in enumerate(items):
+        if g is not None and not np.allclose(np.asarray(g), 1.0):
+            raise ParameterError(
+                f"{_burst_label(i, len(items))}gram {np.asarray(g).tolist()} given for ook; ook "
+                f"has one branch, so omit gram (or pass [[1]])"
+            )
+    return None
+
+
+@dataclass(frozen=True)
+class _Prepared:
+    """The bursts that can be fitted, concatenated: scaled outputs, whitened energies.
+
+    ``index`` maps them back to the caller's list; ``early`` holds the results of the others
+    (too few symbols, all zero).
+    """
+
+    z: np.ndarray  # (N, M) complex, each burst divided by its own scale
+    q: np.ndarray  # (N,) whitened energies zᴴR⁻¹z
+    starts: np.ndarray  # (B,)
+    n: np.ndarray  # (B,)
+    scale: np.ndarray  # (B,)
+    grams: np.ndarray  # (B, M, M)
+    identity: np.ndarray  # (B,)
+    index: np.ndarray  # (B,) position in the caller's list
+    early: dict
+
+    def segment_sums(self, v: np.ndarray) -> np.ndarray:
+        return np.add.reduceat(v, self.starts, axis=0)
+
+
+def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Prepared:
+    """Checks of all bursts, then scaling and whitened energies in a few numpy calls."""
+    arrs = _check_output_arrays(zs, modulation)
+    count = len(arrs)
+    m = N_BRANCHES[modulation]
+    if modulation == "ook":
+        _ook_grams(grams, count)
+        grams = None
+    r_all, id_all = _check_grams(grams, m, count)
+    n_all = np.array([len(a) for a in arrs], dtype=np.intp)
+    early = {}
+    for i in np.flatnonzero(n_all < MIN_SYMBOLS):
+        early[int(i)] = _too_few(method, modulation, int(n_all[i]), priors)
+    keep = np.flatnonzero(n_all >= MIN_SYMBOLS)
+    n = n_all[keep]
+    starts = np.cumsum(n) - n
+    z = np.concatenate([arrs[i] for i in keep]) if keep.size else np.zeros((0, m), complex)
+    _check_finite(z, starts, keep, count)
+    if keep.size:
+        flat = z.view(np.float64).reshape(len(z), 2 * m)
+        scale = np.maximum.reduceat(np.max(np.abs(flat), axis=1), starts)
+    else:
+        scale = np.zeros(0)
+    zero = scale == 0.0
+    if zero.any():
+        for i in keep[zero]:
+            early[int(i)] = _no_energy(method, modulation, int(n_all[i]), priors)
+        rows = np.repeat(~zero, n)
+        z, keep, n, scale = z[rows], keep[~zero], n[~zero], scale[~zero]
+        starts = np.cumsum(n) - n
+    z = z / np.repeat(scale, n)[:, None]
+    grams_k, identity = r_all[keep], id_all[keep]
+    q = np.sum(z.real**2 + z.imag**2, axis=1)
+    if not identity.all():
+        # q_k = z_kᴴ R⁻¹ z_k with the Gram matrix of each symbol's burst (eq. 4)
+        rows = np.flatnonzero(np.repeat(~identity, n))
+        rinv = np.linalg.inv(grams_k[~identity])
+        which = np.repeat(np.arange(int((~identity).sum())), n[~identity])
+        rz = np.einsum("kij,kj->ki", rinv[which], z[rows])
+        qw = np.sum(z[rows].real * rz.real + z[rows].imag * rz.imag, axis=1)  # Re(zᴴ·R⁻¹z)
+        q[rows] = np.maximum(qw, 0.0)
+    return _Prepared(z, q, starts, n, scale, grams_k, identity, keep, early)
+
+
+def _check_finite(z, starts, keep, count) -> None:
+    bad = ~np.isfinite(z)
+    if np.any(bad):
+        row = int(np.flatnonzero(bad.any(axis=1))[0])
+        b = int(np.searchsorted(starts, row, side="right") - 1)
+        ends = np.r_[starts[1:], len(z)]
+        part = bad[starts[b] : ends[b]]
+        raise ParameterError(
+            f"{_burst_label(int(keep[b]), count)}z contains {int(part.sum())} non-finite values "
+            f"(NaN or inf) in {int(part.any(axis=1).sum())} symbols; drop those symbols before "
+            f"fitting"
+        )
+
+
+def _log_normalisers(n: np.ndarray, m: int, grams: np.ndarray) -> np.ndarray:
+    """−N·M·log π − N·log det R per burst: the constants left out of ℓ."""
+    logdet = np.linalg.slogdet(grams)[1]
+    return -n * m * math.log(math.pi) - n * logdet
+
+
+def _assemble(count: int, prep: _Prepared, fits: list[NoncoherentFit]) -> list[NoncoherentFit]:
+    out: list = [None] * count
+    for i, f in prep.early.items():
+        out[i] = f
+    for i, f in zip(prep.index, fits, strict=True):
+        out[int(i)] = f
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# The likelihood and its maximisation, for a batch of bursts at once
 # --------------------------------------------------------------------------------------------
 
 
 @dataclass(frozen=True)
-class _Mixture:
-    """The log-likelihood ℓ = Σ_k [−M·log N0 − q_k/N0] + Σ_rows (signal term), two kinds.
+class _Batch:
+    """The log-likelihoods of B bursts, ℓ_b = Σ_k [−M·log N0 − q_k/N0] + Σ_rows (signal term).
 
-    ``"tones"``: each row k (a column of ``r``, which is stored hypothesis-major so that the
-    sums over hypotheses run across contiguous rows) is one symbol with the signal on one of H
+    The rows of all bursts are concatenated (burst b owns rows ``starts[b]:starts[b] +
+    rows[b]``, never empty), so that one numpy call evaluates every burst and
+    ``np.add.reduceat`` splits the sums. Two kinds of signal term:
+
+    ``"tones"``: each row (a column of ``r``, stored hypothesis-major so that the sums over
+    hypotheses run across contiguous rows) is one symbol with the signal on one of H
     hypotheses, log Σ_h π_h·Λ(r_hk), Λ(r) = exp(−A²/N0)·I0(2A·r/N0) (NDA FSK: H = M; DA:
     H = 1, one row per symbol that carries signal). ``"on-off"``: OOK NDA,
     log[(1 − p) + p·Λ(r_k)] per symbol.
@@ -364,242 +523,373 @@ class _Mixture:
 
     kind: Literal["tones", "on-off"]
     r: np.ndarray  # (H, rows) envelopes |z| of the branch each hypothesis is matched to
+    starts: np.ndarray  # (B,) first row of each burst
+    rows: np.ndarray  # (B,) rows of each burst (≥ 1)
     log_prior: np.ndarray  # (H,) for "tones"
-    q: np.ndarray  # (N,) whitened energies
+    q_sum: np.ndarray  # (B,) Σ_k q_k, the whitened energies
+    n: np.ndarray  # (B,) symbols of each burst
     n_dims: int  # M, complex dimensions of z
-    p_on: float  # "on-off" with p_on fixed
+    p_on: np.ndarray  # (B,) "on-off" with p_on fixed
     p_on_free: bool  # "on-off" with p_on a third parameter, logit(p_on)
 
-    def subsample(self, n: int) -> _Mixture:
-        """Every k-th symbol (NDA only, where rows are symbols)."""
-        step = max(1, len(self.q) // n)
-        return _Mixture(
-            self.kind,
-            self.r[:, ::step],
-            self.log_prior,
-            self.q[::step],
-            self.n_dims,
-            self.p_on,
-            self.p_on_free,
+    @property
+    def size(self) -> int:
+        return len(self.rows)
+
+    @property
+    def n_params(self) -> int:
+        return 3 if self.p_on_free else 2
+
+    def take(self, idx: np.ndarray) -> _Batch:
+        """The bursts ``idx`` (increasing) as a batch of their own."""
+        if len(idx) == self.size:
+            return self
+        rows = self.rows[idx]
+        starts = np.cumsum(rows) - rows
+        elem = np.repeat(self.starts[idx] - starts, rows) + np.arange(int(rows.sum()))
+        return replace(
+            self,
+            r=self.r[:, elem],
+            starts=starts,
+            rows=rows,
+            q_sum=self.q_sum[idx],
+            n=self.n[idx],
+            p_on=self.p_on[idx],
         )
-
-
-def _p_on(mix: _Mixture, x: np.ndarray) -> float:
-    return float(special.expit(x[2])) if mix.p_on_free else mix.p_on
 
 
 _BLOCK_VALUES = 32768  # envelopes per block: keeps the temporaries in cache (2-3x faster)
 
 
-def _signal_sums(mix: _Mixture, a_over: float, g: float, p: float, derivatives: bool):
-    """Block-wise sums over symbols of the signal part of ℓ and of the posterior moments.
+def _row_sums(batch: _Batch, u: np.ndarray, g: np.ndarray, p: np.ndarray, derivatives: bool):
+    """Per-row terms of the signal part of ℓ and of the posterior moments, shape (K, rows).
 
-    ``a_over`` = 2A/N0 (u = a_over·r), ``g`` = A²/N0, ``p`` = p_on ("on-off"). Returns a
-    vector: "tones" [Σ log Σ_h π_h Λ, Σ E_w ψ, Σ Var_w ψ, Σ E_w κ]; "on-off" [Σ log(1 − p + pΛ),
-    Σ w, Σ wψ, Σ wκ, Σ v, Σ vψ, Σ vψ²] with w the posterior of "on" and v = w(1 − w).
+    ``u`` = 2A·r/N0 (H, rows), ``g`` = A²/N0 and ``p`` = p_on per row. Rows: "tones" [log Σ_h
+    π_h Λ, E_w ψ, Var_w ψ, E_w κ]; "on-off" [log(1 − p + pΛ), w, wψ, wκ, v, vψ, vψ²] with w the
+    posterior of "on" and v = w(1 − w).
     """
-    h, rows = mix.r.shape
-    step = max(1, _BLOCK_VALUES // h)
-    acc = np.zeros(7 if mix.kind == "on-off" else 4)
-    log_q, log_p = (math.log1p(-p), math.log(p)) if mix.kind == "on-off" else (0.0, 0.0)
-    for i in range(0, rows, step):  # blocks of thousands of symbols, not one per symbol
-        u = a_over * mix.r[:, i : i + step]
-        i0e_u = special.i0e(u)
-        lik = _log_i0(u, i0e_u)
-        lik -= g  # log Λ = −A²/N0 + log I0(u)  (eq. 3)
-        if mix.kind == "on-off":
-            lik = lik[0] + log_p
-            lse = np.logaddexp(log_q, lik)  # log[(1 − p) + p·Λ]
-            acc[0] += lse.sum()
-            if not derivatives:
-                continue
-            w = np.exp(lik - lse)
-            psi = u[0] * (special.i1e(u[0]) / i0e_u[0])
-            kappa = u[0] ** 2 - psi**2
-            v = w * (1.0 - w)
-            vpsi = v * psi
-            # (a * b).sum(), not a @ b: BLAS dot products spawn threads and were 20x slower
-            acc[1:] += (
-                w.sum(),
-                (w * psi).sum(),
-                (w * kappa).sum(),
-                v.sum(),
-                vpsi.sum(),
-                (vpsi * psi).sum(),
-            )
-            continue
-        lik += mix.log_prior[:, None]
-        top = lik.max(axis=0)
-        e = np.exp(lik - top)
-        tot = e.sum(axis=0)
-        acc[0] += np.sum(top + np.log(tot))
+    i0e_u = special.i0e(u)
+    lik = _log_i0(u, i0e_u)
+    lik -= g  # log Λ = −A²/N0 + log I0(u)  (eq. 3)
+    if batch.kind == "on-off":
+        lik = lik[0] + np.log(p)
+        lse = np.logaddexp(np.log1p(-p), lik)  # log[(1 − p) + p·Λ]
         if not derivatives:
-            continue
-        e /= tot  # posterior weights w
-        psi = special.i1e(u)
-        psi /= i0e_u
-        psi *= u  # ψ = u·I1/I0
-        wpsi = e * psi
-        e_psi = wpsi.sum(axis=0)
-        wpsi *= psi
-        u *= u
-        u -= psi * psi  # κ = u² − ψ² = u²(1 − ρ²)
-        u *= e
-        acc[1:] += (e_psi.sum(), wpsi.sum() - (e_psi * e_psi).sum(), u.sum())
+            return lse[None, :]
+        w = np.exp(lik - lse)
+        psi = u[0] * (special.i1e(u[0]) / i0e_u[0])
+        kappa = u[0] ** 2 - psi**2
+        v = w * (1.0 - w)
+        vpsi = v * psi
+        return np.stack([lse, w, w * psi, w * kappa, v, vpsi, vpsi * psi])
+    psi = None
+    if lik.shape[0] == 1:  # one hypothesis per row (DA): the posterior weight is 1
+        lse = lik[0]
+        if not derivatives:
+            return lse[None, :]
+        psi = u[0] * (special.i1e(u[0]) / i0e_u[0])
+        return np.stack([lse, psi, np.zeros_like(psi), u[0] * u[0] - psi * psi])
+    lik += batch.log_prior[:, None]
+    top = lik.max(axis=0)
+    e = np.exp(lik - top)
+    tot = e.sum(axis=0)
+    lse = top + np.log(tot)
+    if not derivatives:
+        return lse[None, :]
+    e /= tot  # posterior weights w
+    psi = special.i1e(u)
+    psi /= i0e_u
+    psi *= u  # ψ = u·I1/I0
+    wpsi = e * psi
+    e_psi = wpsi.sum(axis=0)
+    wpsi *= psi
+    u *= u
+    u -= psi * psi  # κ = u² − ψ² = u²(1 − ρ²)
+    u *= e
+    return np.stack([lse, e_psi, wpsi.sum(axis=0) - e_psi * e_psi, u.sum(axis=0)])
+
+
+def _signal_sums(batch: _Batch, a_over: np.ndarray, g: np.ndarray, p: np.ndarray, derivatives):
+    """Per-burst sums of :func:`_row_sums`, shape (B, K), in blocks of ~32 k envelopes.
+
+    ``a_over`` = 2A/N0, ``g`` = A²/N0, ``p`` = p_on, one per burst. Each block's rows are cut
+    at the burst starts inside it; one ``np.add.reduceat`` sums the pieces.
+    """
+    h, total = batch.r.shape
+    k = (7 if batch.kind == "on-off" else 4) if derivatives else 1
+    acc = np.zeros((batch.size, k))
+    step = max(1, _BLOCK_VALUES // h)
+    ends = batch.starts + batch.rows
+    for i in range(0, total, step):  # blocks of thousands of symbols, not one per symbol
+        j = min(i + step, total)
+        b0 = int(np.searchsorted(ends, i, side="right"))  # first burst in the block
+        b1 = int(np.searchsorted(batch.starts, j, side="left"))  # one past the last
+        cuts = np.maximum(batch.starts[b0:b1], i) - i
+        rows = np.diff(np.r_[cuts, j - i])
+        u = np.repeat(a_over[b0:b1], rows) * batch.r[:, i:j]
+        gg = np.repeat(g[b0:b1], rows)
+        pp = np.repeat(p[b0:b1], rows) if batch.kind == "on-off" else None
+        acc[b0:b1] += np.add.reduceat(_row_sums(batch, u, gg, pp, derivatives), cuts, axis=1).T
     return acc
 
 
-def _evaluate(mix: _Mixture, x: np.ndarray, derivatives: bool):
-    """ℓ(x) and, if asked, its gradient and Hessian in x = (log A, log N0[, logit p_on]).
+def _p_on(batch: _Batch, x: np.ndarray) -> np.ndarray:
+    return special.expit(x[:, 2]) if batch.p_on_free else batch.p_on
 
-    With γ = A²/N0, u = 2A·r/N0, ρ = I1(u)/I0(u), ψ = uρ, κ = u²(1 − ρ²) (docs/estimator.md
-    §4): ∂logΛ/∂logA = ψ − 2γ, ∂logΛ/∂logN0 = γ − ψ, since dψ/du = u(1 − ρ²), and the
-    Hessian of a log-mixture is E_w[∂²] + Cov_w[∂] over the posterior weights w.
+
+def _evaluate(batch: _Batch, x: np.ndarray, derivatives: bool):
+    """ℓ(x) per burst and, if asked, its gradient and Hessian in x = (log A, log N0[, logit p]).
+
+    ``x`` has shape (B, P). With γ = A²/N0, u = 2A·r/N0, ρ = I1(u)/I0(u), ψ = uρ,
+    κ = u²(1 − ρ²) (docs/estimator.md §4): ∂logΛ/∂logA = ψ − 2γ, ∂logΛ/∂logN0 = γ − ψ, since
+    dψ/du = u(1 − ρ²), and the Hessian of a log-mixture is E_w[∂²] + Cov_w[∂] over the
+    posterior weights w. Returns ll (B,), grad (B, P), hess (B, P, P).
     """
-    alpha, beta = float(x[0]), float(x[1])
-    a, n0 = math.exp(alpha), math.exp(beta)
+    alpha, beta = x[:, 0], x[:, 1]
+    a, n0 = np.exp(alpha), np.exp(beta)
     g = a * a / n0
-    p = _p_on(mix, x) if mix.kind == "on-off" else math.nan
-    acc = _signal_sums(mix, 2.0 * a / n0, g, p, derivatives)
-    n, m = len(mix.q), mix.n_dims
-    q_sum = float(mix.q.sum())
-    ll = -n * m * beta - q_sum / n0 + float(acc[0])  # Σ[−M·log N0 − q/N0] + signal part
+    p = _p_on(batch, x) if batch.kind == "on-off" else None
+    acc = _signal_sums(batch, 2.0 * a / n0, g, p, derivatives)
+    n, m, q_sum = batch.n, batch.n_dims, batch.q_sum
+    ll = -n * m * beta - q_sum / n0 + acc[:, 0]  # Σ[−M·log N0 − q/N0] + signal part
     if not derivatives:
         return ll, None, None
-    if mix.kind == "tones":
-        _, s_psi, var_psi, k_sum = acc
-        rows = mix.r.shape[1]
-        grad = np.array([s_psi - 2.0 * g * rows, -n * m + q_sum / n0 + g * rows - s_psi])
-        h00 = k_sum - 4.0 * g * rows + var_psi
-        h01 = 2.0 * g * rows - k_sum - var_psi
-        h11 = k_sum - g * rows + var_psi - q_sum / n0
-        return ll, grad, np.array([[h00, h01], [h01, h11]])
-    _, sw, swp, swk, sv, svp, svpp = acc
+    hess = np.empty((batch.size, batch.n_params, batch.n_params))
+    if batch.kind == "tones":
+        s_psi, var_psi, k_sum = acc[:, 1], acc[:, 2], acc[:, 3]
+        gr = g * batch.rows
+        grad = np.stack([s_psi - 2.0 * gr, -n * m + q_sum / n0 + gr - s_psi], axis=1)
+        hess[:, 0, 0] = k_sum - 4.0 * gr + var_psi
+        hess[:, 0, 1] = hess[:, 1, 0] = 2.0 * gr - k_sum - var_psi
+        hess[:, 1, 1] = k_sum - gr + var_psi - q_sum / n0
+        return ll, grad, hess
+    sw, swp, swk, sv, svp, svpp = (acc[:, i] for i in range(1, 7))
     # d0 = ψ − 2γ, d1 = γ − ψ on "on"; Cov_w over the on/off indicator is v·d·dᵀ
     grad = [swp - 2.0 * g * sw, -n * m + q_sum / n0 + g * sw - swp]
-    h00 = swk - 4.0 * g * sw + (svpp - 4.0 * g * svp + 4.0 * g * g * sv)
-    h01 = 2.0 * g * sw - swk + (-svpp + 3.0 * g * svp - 2.0 * g * g * sv)
-    h11 = swk - g * sw + (svpp - 2.0 * g * svp + g * g * sv) - q_sum / n0
-    if not mix.p_on_free:
-        return ll, np.array(grad), np.array([[h00, h01], [h01, h11]])
-    grad.append(sw - n * p)  # ∂log π_h/∂logit p = s_h − p
-    h02, h12 = svp - 2.0 * g * sv, g * sv - svp
-    h22 = sv - n * p * (1.0 - p)
-    return ll, np.array(grad), np.array([[h00, h01, h02], [h01, h11, h12], [h02, h12, h22]])
+    hess[:, 0, 0] = swk - 4.0 * g * sw + (svpp - 4.0 * g * svp + 4.0 * g * g * sv)
+    hess[:, 0, 1] = hess[:, 1, 0] = 2.0 * g * sw - swk + (-svpp + 3.0 * g * svp - 2.0 * g * g * sv)
+    hess[:, 1, 1] = swk - g * sw + (svpp - 2.0 * g * svp + g * g * sv) - q_sum / n0
+    if batch.p_on_free:
+        grad.append(sw - n * p)  # ∂log π_h/∂logit p = s_h − p
+        hess[:, 0, 2] = hess[:, 2, 0] = svp - 2.0 * g * sv
+        hess[:, 1, 2] = hess[:, 2, 1] = g * sv - svp
+        hess[:, 2, 2] = sv - n * p * (1.0 - p)
+    return ll, np.stack(grad, axis=1), hess
 
 
-def _newton_step(grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
-    """Ascent step: Newton where −H is positive definite, else eigenvalue-modified Newton."""
+def _newton_steps(grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
+    """Ascent steps (B, P): Newton where −H is positive definite, else eigenvalue-modified."""
     lam, vec = np.linalg.eigh(-hess)
-    floor = 1e-8 * max(1.0, float(np.max(np.abs(lam))))
-    lam = np.maximum(np.abs(lam), floor)
-    step = vec @ ((vec.T @ grad) / lam)
-    big = float(np.max(np.abs(step)))
-    if big > 2.0:  # never move A or N0 by more than e² in one step
-        step *= 2.0 / big
-    return step
+    floor = 1e-8 * np.maximum(1.0, np.max(np.abs(lam), axis=1))
+    lam = np.maximum(np.abs(lam), floor[:, None])
+    step = np.einsum("bij,bj->bi", vec, np.einsum("bji,bj->bi", vec, grad) / lam)
+    big = np.max(np.abs(step), axis=1)
+    # never move A or N0 by more than e² in one step
+    return step * np.where(big > 2.0, 2.0 / np.maximum(big, 2.0), 1.0)[:, None]
+
+
+#: Stop codes of :func:`_maximise`.
+_CONVERGED, _LINE_SEARCH, _BOUNDARY, _NO_CONVERGENCE = 0, 1, 2, 3
+_STOP_MESSAGES = {
+    _CONVERGED: "converged",
+    _LINE_SEARCH: "line search failed to increase the likelihood",
+    _BOUNDARY: "the likelihood is largest at A = 0 (no signal)",
+    _NO_CONVERGENCE: f"no convergence in {_MAX_NEWTON} Newton iterations",
+}
 
 
 @dataclass(frozen=True)
 class _Optimum:
+    """Newton results per burst: arrays with a leading burst axis."""
+
     x: np.ndarray
-    ll: float
+    ll: np.ndarray
     grad: np.ndarray
     hess: np.ndarray
-    iterations: int
-    converged: bool
-    boundary: bool
-    message: str
+    iterations: np.ndarray
+    converged: np.ndarray
+    stop: np.ndarray  # one of the stop codes
+
+    @property
+    def boundary(self) -> np.ndarray:
+        return self.stop == _BOUNDARY
 
 
-def _log_gamma(x: np.ndarray) -> float:
-    """log(A²/N0) from x = (log A, log N0, ...)."""
-    return 2.0 * float(x[0]) - float(x[1])
+def _log_gamma(x: np.ndarray) -> np.ndarray:
+    """log(A²/N0) from x = (log A, log N0, ...) per burst."""
+    return 2.0 * x[:, 0] - x[:, 1]
 
 
-def _maximise(mix: _Mixture, x0: np.ndarray, tol: float = _NEWTON_TOL) -> _Optimum:
-    """Damped Newton ascent with backtracking; stops at A → 0 (the boundary)."""
+def _maximise(batch: _Batch, x0: np.ndarray, tol: float = _NEWTON_TOL) -> _Optimum:
+    """Damped Newton ascent with backtracking for all bursts at once; stops at A → 0.
+
+    Bursts iterate together; one that has stopped keeps its values, the others go on until
+    all have stopped or the iteration cap is reached. The line search halves the step of each
+    burst whose likelihood did not rise enough and re-evaluates only those.
+    """
+    b = batch.size
     x = np.array(x0, dtype=float)
-    ll, grad, hess = _evaluate(mix, x, True)
+    ll, grad, hess = _evaluate(batch, x, True)
+    iterations = np.full(b, _MAX_NEWTON)
+    stop = np.full(b, _NO_CONVERGENCE)
+    converged = np.zeros(b, dtype=bool)
+    active = np.arange(b)
     for it in range(_MAX_NEWTON):
-        step = _newton_step(grad, hess)
-        decrement = float(grad @ step)
-        if decrement < tol:
-            return _Optimum(x, ll, grad, hess, it, True, False, "converged")
-        t = 1.0
-        while True:
-            x_new = x + t * step
-            ll_new, g_new, h_new = _evaluate(mix, x_new, True)
-            if np.isfinite(ll_new) and ll_new >= ll + 1e-4 * t * decrement:
-                break
-            t *= 0.5
-            if t < 1e-8:
-                return _Optimum(
-                    x,
-                    ll,
-                    grad,
-                    hess,
-                    it,
-                    decrement < 1e-6,
-                    False,
-                    "line search failed to increase the likelihood",
-                )
-        x, ll, grad, hess = x_new, ll_new, g_new, h_new
-        if _log_gamma(x) < _LOG_GAMMA_FLOOR:
-            return _Optimum(
-                x,
-                ll,
-                grad,
-                hess,
-                it + 1,
-                False,
-                True,
-                "the likelihood is largest at A = 0 (no signal)",
-            )
-    return _Optimum(
-        x,
-        ll,
-        grad,
-        hess,
-        _MAX_NEWTON,
-        False,
-        False,
-        f"no convergence in {_MAX_NEWTON} Newton iterations",
-    )
+        step = _newton_steps(grad[active], hess[active])
+        decrement = np.sum(grad[active] * step, axis=1)
+        done = decrement < tol
+        iterations[active[done]] = it
+        stop[active[done]] = _CONVERGED
+        converged[active[done]] = True
+        active, step, decrement = active[~done], step[~done], decrement[~done]
+        t = np.ones(len(active))
+        pending = np.arange(len(active))  # positions in `active` still searching
+        while pending.size:
+            idx = active[pending]
+            x_new = x[idx] + t[pending, None] * step[pending]
+            ll_new, g_new, h_new = _evaluate(batch.take(idx), x_new, True)
+            ok = np.isfinite(ll_new) & (ll_new >= ll[idx] + 1e-4 * t[pending] * decrement[pending])
+            acc = idx[ok]
+            x[acc], ll[acc], grad[acc], hess[acc] = x_new[ok], ll_new[ok], g_new[ok], h_new[ok]
+            pending = pending[~ok]
+            t[pending] *= 0.5
+            failed = t[pending] < 1e-8
+            gone = active[pending[failed]]
+            iterations[gone] = it
+            stop[gone] = _LINE_SEARCH
+            converged[gone] = decrement[pending[failed]] < 1e-6
+            pending = pending[~failed]
+        still = stop[active] == _NO_CONVERGENCE
+        active = active[still]
+        at_zero = _log_gamma(x[active]) < _LOG_GAMMA_FLOOR
+        iterations[active[at_zero]] = it + 1
+        stop[active[at_zero]] = _BOUNDARY
+        active = active[~at_zero]
+        if not active.size:
+            break
+    return _Optimum(x, ll, grad, hess, iterations, converged, stop)
 
 
 #: Below this Es/N0 [dB] the interval is the profile-likelihood one (the Wald one above).
 PROFILE_CI_BELOW_DB = 6.0
 
 
-def _profile_log_likelihood(
-    mix: _Mixture, log_gamma_on: float, beta0: float
-) -> tuple[float, float]:
-    """max over log N0 of ℓ with γ_on = A²/N0 held fixed (p_on fixed). Returns (ℓ, log N0)."""
-    beta = beta0
+def _profile(batch: _Batch, log_gamma_on: np.ndarray, beta0: np.ndarray):
+    """max over log N0 of ℓ with γ_on = A²/N0 held fixed (p_on fixed), per burst.
 
-    def at(b: float):
-        x = np.array([(log_gamma_on + b) / 2.0, b])
-        ll, g, h = _evaluate(mix, x, True)
-        # chain rule: log A = (log γ + log N0)/2
-        return ll, 0.5 * g[0] + g[1], 0.25 * h[0, 0] + h[0, 1] + h[1, 1]
+    Returns (ℓ_p, log N0, dℓ_p/dlog γ, dlog N0/dlog γ) at the profile point: by the envelope
+    theorem the slope of ℓ_p is ∂ℓ/∂log γ there, and the implicit-function theorem gives the
+    path of the profiled log N0 (a warm start for the next point).
+    """
+    lg = np.asarray(log_gamma_on, dtype=float)
+    beta = np.array(beta0, dtype=float)
 
-    ll, g, h = at(beta)
+    def at(bsel: _Batch, lgs: np.ndarray, b: np.ndarray):
+        x = np.stack([(lgs + b) / 2.0, b], axis=1)  # log A = (log γ + log N0)/2
+        ll, g, h = _evaluate(bsel, x, True)
+        # chain rule to (log γ, log N0)
+        d_b = 0.5 * g[:, 0] + g[:, 1]
+        h_bb = 0.25 * h[:, 0, 0] + h[:, 0, 1] + h[:, 1, 1]
+        h_gb = 0.25 * h[:, 0, 0] + 0.5 * h[:, 0, 1]
+        return ll, d_b, h_bb, 0.5 * g[:, 0], h_gb
+
+    ll, g, h, slope, h_gb = at(batch, lg, beta)
+    active = np.arange(batch.size)
     for _ in range(50):
-        step = -g / h if h < 0 else math.copysign(0.5, g)
-        step = max(-2.0, min(2.0, step))
-        if abs(step * g) < _NEWTON_TOL:
+        gs, hs = g[active], h[active]
+        step = np.where(hs < 0, -gs / np.where(hs < 0, hs, -1.0), np.copysign(0.5, gs))
+        step = np.clip(step, -2.0, 2.0)
+        keep = np.abs(step * gs) >= _NEWTON_TOL
+        active, step = active[keep], step[keep]
+        if not active.size:
             break
-        t = 1.0
-        while t > 1e-8:
-            ll_new, g_new, h_new = at(beta + t * step)
-            if ll_new >= ll:
-                break
-            t *= 0.5
-        else:
+        t = np.ones(len(active))
+        pending = np.arange(len(active))
+        moved = np.zeros(len(active), dtype=bool)
+        while pending.size:
+            idx = active[pending]
+            b_new = beta[idx] + t[pending] * step[pending]
+            out = at(batch.take(idx), lg[idx], b_new)
+            ok = out[0] >= ll[idx]
+            acc = idx[ok]
+            beta[acc] = b_new[ok]
+            ll[acc], g[acc], h[acc], slope[acc], h_gb[acc] = (o[ok] for o in out)
+            moved[pending[ok]] = True
+            pending = pending[~ok]
+            t[pending] *= 0.5
+            pending = pending[t[pending] > 1e-8]
+        active = active[moved]
+    dbeta = np.where(h < 0, -h_gb / np.where(h < 0, h, -1.0), 0.0)
+    return ll, beta, slope, dbeta
+
+
+def _profile_roots(
+    batch: _Batch,
+    target: np.ndarray,
+    inner: np.ndarray,
+    inner_beta: np.ndarray,
+    inner_dbeta: np.ndarray,
+    sign: float,
+    step: np.ndarray,
+    growth: float,
+    max_steps: int,
+    xtol: float,
+) -> np.ndarray:
+    """log γ where the profile log-likelihood falls to ``target``, outward from ``inner``.
+
+    ℓ_p(inner) > target is given. Safeguarded Newton on ℓ_p(log γ) − target with its exact
+    slope (see :func:`_profile`): a Newton step is taken when it stays inside the bracket
+    found so far, else the bracket is bisected, or, before an outer point is found, the trial
+    moves out by ``step`` (times ``growth`` each time). NaN where no outer point lies within
+    ``max_steps`` such moves (the end cannot be bracketed) or the search does not settle.
+    """
+    k = batch.size
+    lo_in = inner.astype(float).copy()
+    out = np.full(k, math.nan)
+    step = step.astype(float).copy()
+    reach = lo_in + sign * step
+    n_moves = np.ones(k, dtype=int)
+    trial = reach.copy()
+    beta = inner_beta + inner_dbeta * (trial - lo_in)
+    root = np.full(k, math.nan)
+    active = np.arange(k)
+    for _ in range(60):
+        if not active.size:
             break
-        beta, ll, g, h = beta + t * step, ll_new, g_new, h_new
-    return ll, beta
+        ll, b_hat, slope, dbeta = _profile(batch.take(active), trial[active], beta[active])
+        f = ll - target[active]
+        c = trial[active]
+        inside = f > 0
+        lo_in[active[inside]] = c[inside]
+        out[active[~inside]] = c[~inside]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            newton = c - f / slope
+        good_slope = sign * slope < 0
+        newton_step = np.abs(newton - c)
+        have_out = np.isfinite(out[active])
+        lo, hi = np.minimum(lo_in[active], out[active]), np.maximum(lo_in[active], out[active])
+        in_bracket = np.where(have_out, (newton > lo) & (newton < hi), sign * (newton - c) > 0)
+        in_bracket &= good_slope & np.isfinite(newton)
+        width = np.where(have_out, np.abs(out[active] - lo_in[active]), math.inf)
+        done = (in_bracket & (newton_step < xtol)) | (width < xtol)
+        root[active[done]] = np.where(in_bracket[done], newton[done], c[done])
+        # next trial
+        nxt = np.where(in_bracket, newton, 0.5 * (lo_in[active] + out[active]))
+        # before an outer point is known, a trial never goes beyond the next outward move
+        beyond = sign * (newton - reach[active]) > 0
+        grow = ~have_out & (~in_bracket | beyond)
+        sel = active[grow]
+        step[sel] *= growth
+        reach[sel] += sign * step[sel]
+        n_moves[sel] += 1
+        nxt[grow] = np.where(
+            in_bracket[grow] & ~(sign * (newton[grow] - reach[sel]) > 0), newton[grow], reach[sel]
+        )
+        beta[active] = b_hat + dbeta * (nxt - c)
+        trial[active] = nxt
+        lost = n_moves[active] > max_steps
+        active = active[~done & ~lost]
+    return root
 
 
 # --------------------------------------------------------------------------------------------
@@ -954,6 +1244,52 @@ def check_energy_laws(
     return statistic, pvalue, int(energy.size)
 
 
+def _take_prepared(prep: _Prepared, idx: np.ndarray) -> _Prepared:
+    """The bursts ``idx`` (increasing) of a preparation."""
+    if len(idx) == len(prep.n):
+        return prep
+    n = prep.n[idx]
+    rows = np.repeat(prep.starts[idx] - (np.cumsum(n) - n), n) + np.arange(int(n.sum()))
+    return replace(
+        prep,
+        z=prep.z[rows],
+        q=prep.q[rows],
+        starts=np.cumsum(n) - n,
+        n=n,
+        scale=prep.scale[idx],
+        grams=prep.grams[idx],
+        identity=prep.identity[idx],
+        index=prep.index[idx],
+    )
+
+
+def _energy_laws_many(
+    prep: _Prepared,
+    *,
+    modulation: str,
+    amplitude: np.ndarray,
+    noise_var: np.ndarray,
+    priors: np.ndarray,
+    symbols: np.ndarray | None,
+    max_values: int,
+) -> list[tuple[float, float, int]]:
+    """:func:`check_energy_laws` for every burst of a preparation (scaled outputs)."""
+    ends = prep.starts + prep.n
+    return [
+        check_energy_laws(
+            prep.z[s:e],
+            amplitude=float(amplitude[i]),
+            noise_var=float(noise_var[i]),
+            gram=None if modulation == "ook" else prep.grams[i],
+            modulation=modulation,
+            priors=priors[i],
+            symbols=None if symbols is None else symbols[s:e],
+            max_values=max_values,
+        )
+        for i, (s, e) in enumerate(zip(prep.starts, ends, strict=True))
+    ]
+
+
 # --------------------------------------------------------------------------------------------
 # Assembling a result
 # --------------------------------------------------------------------------------------------
@@ -1039,173 +1375,345 @@ def _plausibility(esn0_db: float) -> str | None:
     return None
 
 
-def _ml_result(
+def _ml_results(
     *,
     method: str,
     modulation: str,
-    mix: _Mixture,
+    prep: _Prepared,
+    batch: _Batch,
     opt: _Optimum,
-    energy_weight: float,
-    log_norm: float,
-    z: np.ndarray,
-    gram: np.ndarray,
+    energy_weight: np.ndarray,
     priors_fixed: np.ndarray,
     symbols: np.ndarray | None,
     run_gof: bool,
-) -> NoncoherentFit:
-    """Health checks, interval, detection test and GOF around an ML optimum."""
-    n, m = len(mix.q), mix.n_dims
+) -> list[NoncoherentFit]:
+    """Health checks, interval, detection test and GOF around the ML optima of a batch."""
+    n, m = batch.n, batch.n_dims
     x = opt.x
-    a, n0 = math.exp(x[0]), math.exp(x[1])
-    p_on = _p_on(mix, x)
-    priors = np.array([1.0 - p_on, p_on]) if mix.p_on_free else priors_fixed
-    if mix.p_on_free:
+    a, n0 = np.exp(x[:, 0]), np.exp(x[:, 1])
+    p_on = _p_on(batch, x)
+    if batch.p_on_free:
+        priors = np.stack([1.0 - p_on, p_on], axis=1)
         energy_weight = p_on
+    else:
+        priors = np.broadcast_to(priors_fixed, (batch.size, priors_fixed.shape[-1]))
     ll_hat = opt.ll
     # noise only: N0 = mean(q)/M, ℓ0 = −N·M·(log N0 + 1) (the priors sum to one)
-    n0_null = float(np.mean(mix.q)) / m
-    ll_null = -n * m * (math.log(n0_null) + 1.0)
-    lr = max(0.0, 2.0 * (ll_hat - ll_null)) if not opt.boundary else 0.0
+    ll_null = -n * m * (np.log(batch.q_sum / n / m) + 1.0)
+    boundary = opt.boundary
+    lr = np.where(boundary, 0.0, np.maximum(0.0, 2.0 * (ll_hat - ll_null)))
     esn0 = energy_weight * a * a / n0
-    converged, message = opt.converged, opt.message
-    var_log_gamma = None
-    upper = None
-    if opt.converged:
-        info = -opt.hess
-        c = np.zeros(len(x))
-        c[0], c[1] = 2.0, -1.0  # log γ = log w + 2·log A − log N0
-        if mix.p_on_free:
-            c[2] = 1.0 - p_on
-        try:
-            lam = np.linalg.eigvalsh(info)
-            if lam[0] <= 0:
-                raise np.linalg.LinAlgError
-            var_log_gamma = float(c @ np.linalg.solve(info, c))
-        except np.linalg.LinAlgError:
-            converged, message = False, "observed information is not positive definite"
-    if converged and lr < _CHI2_1_Q90:
-        converged = False
-        message = (
-            f"no signal detected: likelihood ratio {lr:.2f} against noise only is below "
+    converged = opt.converged.copy()
+    messages = [_STOP_MESSAGES[int(s)] for s in opt.stop]
+    var_log_gamma = np.full(batch.size, math.nan)
+    sel = np.flatnonzero(converged)
+    if sel.size:
+        info = -opt.hess[sel]
+        c = np.zeros((sel.size, batch.n_params))
+        c[:, 0], c[:, 1] = 2.0, -1.0  # log γ = log w + 2·log A − log N0
+        if batch.p_on_free:
+            c[:, 2] = 1.0 - p_on[sel]
+        pd = np.linalg.eigvalsh(info)[:, 0] > 0
+        if pd.any():
+            sol = np.linalg.solve(info[pd], c[pd][:, :, None])[:, :, 0]
+            var_log_gamma[sel[pd]] = np.sum(c[pd] * sol, axis=1)
+        for i in sel[~pd]:
+            converged[i] = False
+            messages[i] = "observed information is not positive definite"
+    weak = converged & (lr < _CHI2_1_Q90)
+    converged &= ~weak
+    for i in np.flatnonzero(weak):
+        messages[i] = (
+            f"no signal detected: likelihood ratio {lr[i]:.2f} against noise only is below "
             f"{_CHI2_1_Q90:.2f} (5 % test)"
         )
-    if not converged and (opt.boundary or lr < _CHI2_1_Q90) and not mix.p_on_free:
-        upper = _upper_bound_db(mix, max(ll_hat, ll_null), x, energy_weight)
-        if upper is not None:
-            message += f"; Es/N0 below {upper:.1f} dB (one-sided 95 %)"
-    if opt.boundary:
-        esn0 = None
-        var_log_gamma = None
-    else:
-        bad = _plausibility(_db(esn0))
+    upper = np.full(batch.size, math.nan)
+    need = ~converged & (boundary | (lr < _CHI2_1_Q90)) & (not batch.p_on_free)
+    if need.any():
+        idx = np.flatnonzero(need)
+        upper[idx] = _upper_bounds_db(
+            batch.take(idx), np.maximum(ll_hat, ll_null)[idx], x[idx], energy_weight[idx]
+        )
+        for i in idx[np.isfinite(upper[idx])]:
+            messages[i] += f"; Es/N0 below {upper[i]:.1f} dB (one-sided 95 %)"
+    esn0_db = _db_array(esn0)
+    for i in np.flatnonzero(~boundary):
+        bad = _plausibility(float(esn0_db[i]))
         if bad is not None:
-            converged, message = False, bad
-    if converged:
-        message = f"converged in {opt.iterations} Newton iterations"
-    profile_ci = None
-    if converged and not mix.p_on_free and _db(esn0) < PROFILE_CI_BELOW_DB:
-        profile_ci = _profile_interval_db(mix, ll_hat, x, var_log_gamma, energy_weight)
-    gof = None
+            converged[i], messages[i] = False, bad
+    for i in np.flatnonzero(converged):
+        messages[i] = f"converged in {int(opt.iterations[i])} Newton iterations"
+    ci = np.full((batch.size, 2), math.nan)
+    need = converged & (esn0_db < PROFILE_CI_BELOW_DB) & (not batch.p_on_free)
+    if need.any():
+        idx = np.flatnonzero(need)
+        ci[idx] = _profile_intervals_db(
+            batch.take(idx),
+            ll_hat[idx],
+            x[idx],
+            opt.hess[idx],
+            var_log_gamma[idx],
+            energy_weight[idx],
+        )
+    gofs: list = [None] * batch.size
     if run_gof:  # at the boundary this tests the noise-only model (A = 0)
-        gof = check_energy_laws(
-            z,
-            amplitude=0.0 if opt.boundary else a,
-            noise_var=n0,
-            gram=gram,
+        gofs = _energy_laws_many(
+            prep,
             modulation=modulation,
+            amplitude=np.where(boundary, 0.0, a),
+            noise_var=n0,
             priors=priors,
             symbols=symbols,
+            max_values=GOF_MAX_VALUES,
         )
-    return _build(
-        method=method,
-        modulation=modulation,
-        n_symbols=n,
-        esn0=esn0,
-        log_gamma_var=var_log_gamma if converged else None,
-        amplitude=a,
-        noise_var=n0,
-        priors=priors,
-        converged=converged,
-        message=message,
-        iterations=opt.iterations,
-        log_likelihood=ll_hat + log_norm,
-        detection_statistic=lr,
-        upper95_db=upper,
-        gof=gof,
-        profile_ci_db=profile_ci,
-    )
+    # undo the scaling of z: A·s, N0·s², log-density − 2·N·M·log s (Jacobian of z/s)
+    s = prep.scale
+    log_norm = _log_normalisers(n, m, prep.grams) - 2.0 * n * m * np.log(s)
+    return [
+        _build(
+            method=method,
+            modulation=modulation,
+            n_symbols=int(n[i]),
+            esn0=None if boundary[i] else float(esn0[i]),
+            log_gamma_var=float(var_log_gamma[i]) if converged[i] and not boundary[i] else None,
+            amplitude=float(a[i] * s[i]),
+            noise_var=float(n0[i] * s[i] ** 2),
+            priors=priors[i],
+            converged=bool(converged[i]),
+            message=messages[i],
+            iterations=int(opt.iterations[i]),
+            log_likelihood=float(ll_hat[i] + log_norm[i]),
+            detection_statistic=float(lr[i]),
+            upper95_db=float(upper[i]),
+            gof=gofs[i],
+            profile_ci_db=(float(ci[i, 0]), float(ci[i, 1])) if np.isfinite(ci[i]).all() else None,
+        )
+        for i in range(batch.size)
+    ]
 
 
-def _profile_interval_db(
-    mix: _Mixture, ll_hat: float, x: np.ndarray, var_log_gamma: float, energy_weight: float
-) -> tuple[float, float] | None:
-    """95 % profile-likelihood interval of Es/N0 [dB]: 2·(ℓ̂ − ℓ_p(γ)) = χ²₁(0.95) = 3.841.
+def _db_array(x: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where((x > 0) & np.isfinite(x), 10.0 * np.log10(np.where(x > 0, x, 1.0)), np.nan)
+
+
+def _profile_intervals_db(
+    batch: _Batch,
+    ll_hat: np.ndarray,
+    x: np.ndarray,
+    hess: np.ndarray,
+    var_log_gamma: np.ndarray,
+    energy_weight: np.ndarray,
+) -> np.ndarray:
+    """95 % profile-likelihood intervals of Es/N0 [dB]: 2·(ℓ̂ − ℓ_p(γ)) = χ²₁(0.95) = 3.841.
 
     Near 0 dB the likelihood in log γ is skewed (a weak signal and a small rise of N0 look
     alike), so the Wald interval under-covers; the profile interval follows the actual
-    shape. None when an end cannot be bracketed (the Wald interval is then used).
+    shape. Each end is found outward from the optimum, starting at the Wald end (see
+    :func:`_profile_roots`, to 1e-4 in log γ, 4e-4 dB). NaN where an end cannot be
+    bracketed (the Wald interval is then used). Shape (B, 2).
     """
-    lg_hat = 2.0 * x[0] - x[1]  # log γ_on = 2·log A − log N0
+    lg_hat = _log_gamma(x)  # log γ_on = 2·log A − log N0
     target = ll_hat - 0.5 * _CHI2_1_Q95
-
-    beta = [x[1]]  # warm start: the profiled log N0 of the previous evaluation
-
-    def excess(lg: float) -> float:
-        ll, beta[0] = _profile_log_likelihood(mix, lg, beta[0])
-        return ll - target
-
-    step = max(_Z975 * math.sqrt(var_log_gamma), 1e-3)
-    ends = []
-    for sign in (-1.0, 1.0):
-        inner, outer = lg_hat, lg_hat + sign * step
-        for _ in range(8):
-            if excess(outer) < 0:
-                break
-            inner, outer = outer, outer + sign * step
-            step *= 1.5
-        else:
-            return None
-        try:
-            ends.append(
-                optimize.brentq(excess, min(inner, outer), max(inner, outer), xtol=1e-3)
-            )  # 0.004 dB
-        except ValueError:
-            return None
-    lo, hi = (10.0 / math.log(10.0) * e + _db(energy_weight) for e in ends)
-    return (float(lo), float(hi))
+    # path of the profiled log N0 at the optimum (implicit-function theorem)
+    h_bb = 0.25 * hess[:, 0, 0] + hess[:, 0, 1] + hess[:, 1, 1]
+    h_gb = 0.25 * hess[:, 0, 0] + 0.5 * hess[:, 0, 1]
+    dbeta = np.where(h_bb < 0, -h_gb / np.where(h_bb < 0, h_bb, -1.0), 0.0)
+    step = np.maximum(_Z975 * np.sqrt(var_log_gamma), 1e-3)
+    ends = [
+        _profile_roots(batch, target, lg_hat, x[:, 1], dbeta, sign, step, 1.5, 8, 1e-4)
+        for sign in (-1.0, 1.0)
+    ]
+    shift = _db_array(energy_weight)
+    return np.stack([10.0 / math.log(10.0) * e + shift for e in ends], axis=1)
 
 
-def _upper_bound_db(mix: _Mixture, ll_max: float, x: np.ndarray, energy_weight: float):
-    """One-sided 95 % upper bound on Es/N0 (dB) by profile likelihood: 2·(ℓmax − ℓp) = 2.706."""
-    beta0 = float(x[1])
-    lo = max(_log_gamma(x), math.log(1e-4))
+def _upper_bounds_db(
+    batch: _Batch, ll_max: np.ndarray, x: np.ndarray, energy_weight: np.ndarray
+) -> np.ndarray:
+    """One-sided 95 % upper bounds on Es/N0 (dB) by profile likelihood: 2·(ℓmax − ℓp) = 2.706.
 
-    def excess(log_g: float) -> float:
-        ll, _ = _profile_log_likelihood(mix, log_g, beta0)
-        return 2.0 * (ll_max - ll) - _CHI2_1_Q90
+    Searched upward from max(γ̂, 1e-4) in steps of 0.5 in log γ (at most 40); NaN if not
+    bracketed there.
+    """
+    lo = np.maximum(_log_gamma(x), math.log(1e-4))
+    target = ll_max - 0.5 * _CHI2_1_Q90
+    ll, beta, _, dbeta = _profile(batch, lo, x[:, 1])
+    out = np.where(ll < target, lo, math.nan)
+    idx = np.flatnonzero(~(ll < target))
+    if idx.size:
+        out[idx] = _profile_roots(
+            batch.take(idx),
+            target[idx],
+            lo[idx],
+            beta[idx],
+            dbeta[idx],
+            1.0,
+            np.full(idx.size, 0.5),
+            1.0,
+            40,
+            1e-4,
+        )
+    return _db_array(energy_weight * np.exp(out))
 
-    hi = lo + 0.5
-    for _ in range(40):
-        if excess(hi) > 0:
-            break
-        lo, hi = hi, hi + 0.5
+
+# --------------------------------------------------------------------------------------------
+# Public estimators: batched cores and the per-burst forms over them
+# --------------------------------------------------------------------------------------------
+
+Grams = np.ndarray | Sequence[np.ndarray | None] | None
+
+
+def _dd_fsk_many(prep: _Prepared) -> tuple[np.ndarray, np.ndarray]:
+    """DD moments per burst (A², N0): E|z_î|² = A² + N0, E[q] = M·N0 + A² (correct decisions)."""
+    m = prep.z.shape[1]
+    energy = prep.z.real**2 + prep.z.imag**2
+    m1 = prep.segment_sums(np.max(energy, axis=1)) / prep.n
+    n0 = (prep.segment_sums(prep.q) / prep.n - m1) / (m - 1)
+    return m1 - n0, n0
+
+
+def _dd_ook_many(prep: _Prepared) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_dd_ook` per burst: (A², N0, p_on, rounds)."""
+    ends = prep.starts + prep.n
+    out = [_dd_ook(prep.z[s:e]) for s, e in zip(prep.starts, ends, strict=True)]
+    a2, n0, p, _, rounds = (
+        (np.array(v, dtype=float) for v in zip(*out, strict=True)) if out else [np.zeros(0)] * 5
+    )
+    return a2, n0, p, rounds.astype(int)
+
+
+def _subsampled(batch: _Batch, idx: np.ndarray, n_keep: int, q: np.ndarray) -> _Batch:
+    """Every k-th symbol of the bursts ``idx`` (NDA, rows are symbols), k = n // n_keep."""
+    elems, rows, qs = [], [], []
+    for b in idx:  # only bursts of more than 2·n_keep symbols: a handful at most
+        s, n = int(batch.starts[b]), int(batch.n[b])
+        e = np.arange(s, s + n, max(1, n // n_keep))
+        elems.append(e)
+        rows.append(len(e))
+        qs.append(float(q[e].sum()))
+    rows = np.array(rows)
+    return replace(
+        batch,
+        r=batch.r[:, np.concatenate(elems)],
+        starts=np.cumsum(rows) - rows,
+        rows=rows,
+        q_sum=np.array(qs),
+        n=rows.copy(),
+        p_on=batch.p_on[idx],
+    )
+
+
+def fit_nda_many(
+    zs: Sequence[np.ndarray],
+    grams: Grams = None,
+    *,
+    modulation: Modulation,
+    priors: Sequence[float] | None = None,
+    estimate_p_on: bool = False,
+    gof: bool = True,
+) -> list[NoncoherentFit]:
+    """:func:`fit_nda` for a batch of bursts in one pass: one result per burst.
+
+    Parameters
+    ----------
+    zs : sequence of ndarray, complex, shape (n_b, n_branches)
+        Correlator outputs of each burst (any number of symbols each).
+    grams : ndarray of shape (n_branches, n_branches), or a sequence of them, optional
+        One Gram matrix for all bursts, one per burst (None entries: identity), or None.
+    modulation, priors, estimate_p_on, gof
+        As :func:`fit_nda`, shared by all bursts.
+
+    Returns
+    -------
+    list of NoncoherentFit
+        In the order of ``zs``; each equals ``fit_nda`` on that burst alone.
+
+    Notes
+    -----
+    The rows of all bursts are concatenated and every likelihood evaluation, Newton step,
+    interval search and goodness-of-fit test runs for all bursts in a fixed number of numpy
+    calls (per-burst parameters, sums split with ``np.add.reduceat``); a burst that has
+    stopped keeps its values. A burst that cannot be fitted (too few symbols, all zero) gets
+    its failed result without affecting the others.
+    """
+    _check_modulation(modulation)
+    pi = _check_priors(priors, modulation)
+    if estimate_p_on and modulation != "ook":
+        raise ParameterError(
+            f"estimate_p_on=True applies to ook only, not {modulation}; drop the option"
+        )
+    prep = _prepare(zs, grams, modulation, "nda-ml", pi)
+    if not prep.index.size:
+        return _assemble(len(zs), prep, [])
+    z, q, n = prep.z, prep.q, prep.n
+    m = z.shape[1]
+    count = len(n)
+    q_sum = prep.segment_sums(q)
+    env = np.ascontiguousarray(np.abs(z).T)
+    # starting point: decision-directed moments (biased high: above the ML optimum)
+    if modulation == "ook":
+        batch = _Batch(
+            "on-off",
+            env,
+            prep.starts,
+            n,
+            np.zeros(1),
+            q_sum,
+            n,
+            m,
+            np.full(count, pi[1]),
+            estimate_p_on,
+        )
+        a2, n0, p_dd, _ = _dd_ook_many(prep)
+        bad = ~((a2 > 0) & (n0 > 0))
+        n0 = np.where(bad, 0.5 * q_sum / n, n0)
+        a2 = np.where(bad, q_sum / n / pi[1], a2)
+        p_dd = np.where(bad, pi[1], p_dd)
+        x0 = [0.5 * np.log(a2), np.log(n0)]
+        if estimate_p_on:
+            x0.append(special.logit(np.clip(p_dd, 0.05, 0.95)))
+        energy_weight = np.full(count, pi[1])
     else:
-        return None
-    if excess(lo) > 0:
-        return _db(energy_weight * math.exp(lo))
-    log_g = optimize.brentq(excess, lo, hi, xtol=1e-4)
-    return _db(energy_weight * math.exp(log_g))
-
-
-# --------------------------------------------------------------------------------------------
-# Public estimators
-# --------------------------------------------------------------------------------------------
-
-
-def _log_normaliser(n: int, m: int, gram: np.ndarray) -> float:
-    """−N·M·log π − N·log det R: the constants left out of ℓ."""
-    logdet = float(np.linalg.slogdet(gram)[1])
-    return -n * m * math.log(math.pi) - n * logdet
+        batch = _Batch(
+            "tones",
+            env,
+            prep.starts,
+            n,
+            np.log(pi),
+            q_sum,
+            n,
+            m,
+            np.full(count, math.nan),
+            False,
+        )
+        a2, n0 = _dd_fsk_many(prep)
+        bad = ~((a2 > 0) & (n0 > 0))
+        n0 = np.where(bad, q_sum / n / (m + 1), n0)
+        a2 = np.where(bad, n0, a2)
+        x0 = [0.5 * np.log(a2), np.log(n0)]
+        energy_weight = np.ones(count)
+    x0 = np.stack(x0, axis=1)
+    extra = np.zeros(count, dtype=int)
+    big = np.flatnonzero(n > 2 * _SUBSAMPLE_SYMBOLS)
+    if big.size:
+        pre = _maximise(_subsampled(batch, big, _SUBSAMPLE_SYMBOLS, q), x0[big], tol=1e-3)
+        extra[big] = pre.iterations
+        x0[big[pre.converged]] = pre.x[pre.converged]
+    opt = _maximise(batch, x0)
+    opt = replace(opt, iterations=opt.iterations + extra)
+    fits = _ml_results(
+        method="nda-ml",
+        modulation=modulation,
+        prep=prep,
+        batch=batch,
+        opt=opt,
+        energy_weight=energy_weight,
+        priors_fixed=pi,
+        symbols=None,
+        run_gof=gof,
+    )
+    return _assemble(len(zs), prep, fits)
 
 
 def fit_nda(
@@ -1266,103 +1774,157 @@ def fit_nda(
        59(10):2786-2795, 2011.
     .. [3] D. R. Pauluzzi, N. C. Beaulieu, IEEE Trans. Commun. 48(10):1681-1691, 2000.
     """
-    _check_modulation(modulation)
-    zz = _check_outputs(z, modulation)
-    pi = _check_priors(priors, modulation)
-    if estimate_p_on and modulation != "ook":
-        raise ParameterError(
-            f"estimate_p_on=True applies to ook only, not {modulation}; drop the option"
-        )
-    n, m = zz.shape
-    if n < MIN_SYMBOLS:
-        return _too_few("nda-ml", modulation, n, pi)
-    zz, scale = _scaled(zz)
-    if scale == 0.0:
-        return _no_energy("nda-ml", modulation, n, pi)
-    r_gram, identity = _check_gram(gram if modulation != "ook" else _ook_gram(gram), m)
-    q = _whitened_energy(zz, r_gram, identity)
-    if modulation == "ook":
-        mix = _Mixture("on-off", np.abs(zz).T, np.zeros(1), q, m, float(pi[1]), estimate_p_on)
-    else:
-        r_env = np.ascontiguousarray(np.abs(zz).T)
-        mix = _Mixture("tones", r_env, np.log(pi), q, m, math.nan, False)
-    # starting point: decision-directed moments (biased high: above the ML optimum)
-    if modulation == "ook":
-        a2, n0, p_dd, _, _ = _dd_ook(zz)
-        if not (a2 > 0 and n0 > 0):
-            n0 = 0.5 * float(np.mean(q))
-            a2 = float(np.mean(q)) / pi[1]
-            p_dd = pi[1]
-        x0 = [0.5 * math.log(a2), math.log(n0)]
-        if estimate_p_on:
-            x0.append(float(special.logit(min(max(p_dd, 0.05), 0.95))))
-        energy_weight = pi[1]
-    else:
-        a2, n0, _ = _dd_fsk(zz, q)
-        if not (a2 > 0 and n0 > 0):
-            n0 = float(np.mean(q)) / (m + 1)
-            a2 = n0
-        x0 = [0.5 * math.log(a2), math.log(n0)]
-        energy_weight = 1.0
-    x0 = np.array(x0)
-    iterations = 0
-    if n > 2 * _SUBSAMPLE_SYMBOLS:
-        pre = _maximise(mix.subsample(_SUBSAMPLE_SYMBOLS), x0, tol=1e-3)
-        iterations += pre.iterations
-        if pre.converged:
-            x0 = pre.x
-    opt = _maximise(mix, x0)
-    opt = _Optimum(
-        opt.x,
-        opt.ll,
-        opt.grad,
-        opt.hess,
-        opt.iterations + iterations,
-        opt.converged,
-        opt.boundary,
-        opt.message,
-    )
-    return _unscaled(
-        _ml_result(
-            method="nda-ml",
-            modulation=modulation,
-            mix=mix,
-            opt=opt,
-            energy_weight=energy_weight,
-            log_norm=_log_normaliser(n, m, r_gram),
-            z=zz,
-            gram=r_gram,
-            priors_fixed=pi,
-            symbols=None,
-            run_gof=gof,
-        ),
-        scale,
-    )
+    return fit_nda_many(
+        [z], [gram], modulation=modulation, priors=priors, estimate_p_on=estimate_p_on, gof=gof
+    )[0]
 
 
-def _ook_gram(gram: np.ndarray | None) -> None:
-    if gram is not None and not np.allclose(np.asarray(gram), 1.0):
-        raise ParameterError(
-            f"gram {np.asarray(gram).tolist()} given for ook; ook has one "
-            f"branch, so omit gram (or pass [[1]])"
-        )
-    return None
-
-
-def _check_symbols(symbols: np.ndarray, n: int, modulation: str) -> np.ndarray:
+def _check_symbol_arrays(symbols_list, prep_n: np.ndarray, zs, modulation: str) -> list:
     h = N_HYPOTHESES[modulation]
-    sym = np.asarray(symbols)
-    if sym.shape != (n,) or sym.dtype.kind not in "biu":
+    if len(symbols_list) != len(zs):
         raise ParameterError(
-            f"symbols has shape {sym.shape} and dtype {sym.dtype}; pass {n} integer symbol "
-            f"indices, one per row of z"
+            f"symbols_list has {len(symbols_list)} entries for {len(zs)} bursts; pass one "
+            f"array of symbol indices per burst"
         )
-    if n and (sym.min() < 0 or sym.max() >= h):
-        raise ParameterError(
-            f"symbols range from {sym.min()} to {sym.max()}; {modulation} symbols are 0..{h - 1}"
-            + (" (0 = off, 1 = on)" if modulation == "ook" else " (tone index, lowest = 0)")
-        )
-    return sym.astype(np.intp)
+    out = []
+    for i, (sym, n) in enumerate(zip(symbols_list, prep_n, strict=True)):
+        where = _burst_label(i, len(zs))
+        sym = np.asarray(sym)
+        if sym.shape != (n,) or sym.dtype.kind not in "biu":
+            raise ParameterError(
+                f"{where}symbols has shape {sym.shape} and dtype {sym.dtype}; pass {n} integer "
+                f"symbol indices, one per row of z"
+            )
+        if n and (sym.min() < 0 or sym.max() >= h):
+            raise ParameterError(
+                f"{where}symbols range from {sym.min()} to {sym.max()}; {modulation} symbols "
+                f"are 0..{h - 1}"
+                + (" (0 = off, 1 = on)" if modulation == "ook" else " (tone index, lowest = 0)")
+            )
+        out.append(sym.astype(np.intp))
+    return out
+
+
+def fit_da_many(
+    zs: Sequence[np.ndarray],
+    symbols_list: Sequence[np.ndarray],
+    grams: Grams = None,
+    *,
+    modulation: Modulation,
+    gof: bool = True,
+) -> list[NoncoherentFit]:
+    """:func:`fit_da` for a batch of bursts in one pass: one result per burst.
+
+    Parameters
+    ----------
+    zs : sequence of ndarray, complex, shape (n_b, n_branches)
+    symbols_list : sequence of ndarray of int, shape (n_b,)
+        The known symbols of each burst.
+    grams : as :func:`fit_nda_many`
+    modulation, gof : as :func:`fit_da`
+
+    Returns
+    -------
+    list of NoncoherentFit
+        In the order of ``zs``; each equals ``fit_da`` on that burst alone.
+    """
+    _check_modulation(modulation)
+    arrs = _check_output_arrays(zs, modulation)
+    syms = _check_symbol_arrays(symbols_list, [len(a) for a in arrs], zs, modulation)
+    pi = _check_priors(None, modulation)
+    prep = _prepare(arrs, grams, modulation, "da-ml", pi)
+    if not prep.index.size:
+        return _assemble(len(zs), prep, [])
+    sym = np.concatenate([syms[i] for i in prep.index])
+    z, q, n = prep.z, prep.q, prep.n
+    m = z.shape[1]
+    count = len(n)
+    q_sum = prep.segment_sums(q)
+    mag = np.abs(z)
+    if modulation == "ook":
+        on = sym == 1
+        n_on = prep.segment_sums(on.astype(np.intp))
+        failed = n_on == 0
+        for b in np.flatnonzero(failed):
+            prep.early[int(prep.index[b])] = _failed_fit(
+                "da-ml",
+                modulation,
+                int(n[b]),
+                pi,
+                "no 'on' symbol among the known symbols: the amplitude is not observable",
+            )
+        if failed.any():  # leave those bursts out
+            keep = np.flatnonzero(~failed)
+            rows = np.repeat(~failed, n)
+            prep = replace(
+                prep,
+                z=z[rows],
+                q=q[rows],
+                starts=np.cumsum(n[keep]) - n[keep],
+                n=n[keep],
+                scale=prep.scale[keep],
+                grams=prep.grams[keep],
+                identity=prep.identity[keep],
+                index=prep.index[keep],
+            )
+            if not keep.size:
+                return _assemble(len(zs), prep, [])
+            sym, on, z, q, n, n_on, q_sum = (
+                sym[rows],
+                on[rows],
+                prep.z,
+                prep.q,
+                prep.n,
+                n_on[keep],
+                q_sum[keep],
+            )
+            mag, count = mag[rows], len(keep)
+        frac = n_on / n
+        priors = np.stack([1.0 - frac, frac], axis=1)
+        x_on = prep.segment_sums(np.where(on, q, 0.0))
+        some_off = n_on < n
+        with np.errstate(divide="ignore", invalid="ignore"):
+            n0 = np.where(some_off, (q_sum - x_on) / (n - n_on), 0.5 * q_sum / n)
+            a2 = np.where(some_off, x_on / n_on - n0, 0.5 * q_sum / n)
+        r = mag[on, 0][None, :]  # the Rician term only where the carrier was on
+        rows = n_on
+        energy_weight = frac
+    else:
+        matched = mag[np.arange(len(sym)), sym]
+        m1 = prep.segment_sums(matched**2) / n
+        n0 = (q_sum / n - m1) / (m - 1)
+        a2 = m1 - n0
+        r = matched[None, :]
+        rows = n
+        priors = pi
+        energy_weight = np.ones(count)
+    n0 = np.where(n0 > 0, n0, q_sum / n / (m + 1))
+    a2 = np.where(a2 > 0, a2, n0)
+    batch = _Batch(
+        "tones",
+        r,
+        np.cumsum(rows) - rows,
+        rows,
+        np.zeros(1),
+        q_sum,
+        n,
+        m,
+        np.full(count, math.nan),
+        False,
+    )
+    opt = _maximise(batch, np.stack([0.5 * np.log(a2), np.log(n0)], axis=1))
+    fits = _ml_results(
+        method="da-ml",
+        modulation=modulation,
+        prep=prep,
+        batch=batch,
+        opt=opt,
+        energy_weight=energy_weight,
+        priors_fixed=priors,
+        symbols=sym,
+        run_gof=gof,
+    )
+    return _assemble(len(zs), prep, fits)
 
 
 def fit_da(
@@ -1400,66 +1962,111 @@ def fit_da(
     moments); Wald interval in log γ from the observed information. At high Es/N0 its
     normalised variance tends to 2/γ + 1/(M − ½) (METHODS §3, derived).
     """
+    return fit_da_many([z], [symbols], [gram], modulation=modulation, gof=gof)[0]
+
+
+def fit_dd_many(
+    zs: Sequence[np.ndarray],
+    grams: Grams = None,
+    *,
+    modulation: Modulation,
+    gof: bool = True,
+) -> list[NoncoherentFit]:
+    """:func:`fit_dd` for a batch of bursts in one pass: one result per burst.
+
+    Parameters
+    ----------
+    zs, grams : as :func:`fit_nda_many`
+    modulation, gof : as :func:`fit_dd`
+
+    Returns
+    -------
+    list of NoncoherentFit
+        In the order of ``zs``; each equals ``fit_dd`` on that burst alone.
+    """
     _check_modulation(modulation)
-    zz = _check_outputs(z, modulation)
-    n, m = zz.shape
-    sym = _check_symbols(symbols, n, modulation)
     pi = _check_priors(None, modulation)
-    if n < MIN_SYMBOLS:
-        return _too_few("da-ml", modulation, n, pi)
-    zz, scale = _scaled(zz)
-    if scale == 0.0:
-        return _no_energy("da-ml", modulation, n, pi)
-    r_gram, identity = _check_gram(gram if modulation != "ook" else _ook_gram(gram), m)
-    q = _whitened_energy(zz, r_gram, identity)
-    mag = np.abs(zz)
+    prep = _prepare(zs, grams, modulation, "dd-moment", pi)
+    if not prep.index.size:
+        return _assemble(len(zs), prep, [])
+    count = len(prep.n)
     if modulation == "ook":
-        on = sym == 1
-        n_on = int(on.sum())
-        if n_on == 0:
-            return _failed_fit(
-                "da-ml",
-                modulation,
-                n,
-                pi,
-                "no 'on' symbol among the known symbols: the amplitude is not observable",
-            )
-        pi = np.array([1.0 - n_on / n, n_on / n])
-        if n_on < n:
-            n0 = float(np.mean(q[~on]))
-            a2 = float(np.mean(q[on])) - n0
-        else:
-            n0, a2 = 0.5 * float(np.mean(q)), 0.5 * float(np.mean(q))
-        r = mag[on, 0][None, :]  # the Rician term only where the carrier was on
-        energy_weight = n_on / n
+        a2, n0, p, rounds = _dd_ook_many(prep)
+        weight = p
+        ok = (a2 > 0) & (n0 > 0)
+        priors = np.where(ok[:, None], np.stack([1.0 - p, p], axis=1), pi)
     else:
-        m1 = float(np.mean(mag[np.arange(n), sym] ** 2))
-        n0 = (float(np.mean(q)) - m1) / (m - 1)
-        a2 = m1 - n0
-        r = mag[np.arange(n), sym][None, :]
-        energy_weight = 1.0
-    if not (n0 > 0):
-        n0 = float(np.mean(q)) / (m + 1)
-    if not (a2 > 0):
-        a2 = n0
-    mix = _Mixture("tones", r, np.zeros(1), q, m, math.nan, False)
-    opt = _maximise(mix, np.array([0.5 * math.log(a2), math.log(n0)]))
-    return _unscaled(
-        _ml_result(
-            method="da-ml",
-            modulation=modulation,
-            mix=mix,
-            opt=opt,
-            energy_weight=energy_weight,
-            log_norm=_log_normaliser(n, m, r_gram),
-            z=zz,
-            gram=r_gram,
-            priors_fixed=pi,
-            symbols=sym,
-            run_gof=gof,
-        ),
-        scale,
-    )
+        a2, n0 = _dd_fsk_many(prep)
+        weight = np.ones(count)
+        rounds = np.zeros(count, dtype=int)
+        priors = np.broadcast_to(pi, (count, len(pi)))
+        ok = (a2 > 0) & (n0 > 0)
+    with np.errstate(invalid="ignore"):
+        esn0 = weight * a2 / n0
+        a = np.sqrt(np.where(ok, a2, 0.0))
+    esn0_db = _db_array(esn0)
+    gofs: list = [None] * count
+    if gof and ok.any():
+        idx = np.flatnonzero(ok)
+        sub = _take_prepared(prep, idx)
+        for i, g in zip(
+            idx,
+            _energy_laws_many(
+                sub,
+                modulation=modulation,
+                amplitude=a[idx],
+                noise_var=n0[idx],
+                priors=priors[idx],
+                symbols=None,
+                max_values=GOF_MAX_VALUES,
+            ), strict=True,
+        ):
+            gofs[i] = g
+    s = prep.scale
+    fits = []
+    for i in range(count):
+        if not ok[i]:
+            fits.append(
+                _build(
+                    method="dd-moment",
+                    modulation=modulation,
+                    n_symbols=int(prep.n[i]),
+                    esn0=None,
+                    log_gamma_var=None,
+                    amplitude=None,
+                    noise_var=float(n0[i] * s[i] ** 2) if n0[i] > 0 else None,
+                    priors=priors[i],
+                    converged=False,
+                    message="decision-directed split found no signal (non-positive signal energy)",
+                    iterations=int(rounds[i]),
+                    log_likelihood=None,
+                    detection_statistic=None,
+                    upper95_db=None,
+                    gof=None,
+                )
+            )
+            continue
+        bad = _plausibility(float(esn0_db[i]))
+        fits.append(
+            _build(
+                method="dd-moment",
+                modulation=modulation,
+                n_symbols=int(prep.n[i]),
+                esn0=float(esn0[i]),
+                log_gamma_var=None,
+                amplitude=float(a[i] * s[i]),
+                noise_var=float(n0[i] * s[i] ** 2),
+                priors=priors[i],
+                converged=bad is None,
+                message=bad or "decision-directed moments (biased high below about 8 dB Es/N0)",
+                iterations=int(rounds[i]),
+                log_likelihood=None,
+                detection_statistic=None,
+                upper95_db=None,
+                gof=gofs[i],
+            )
+        )
+    return _assemble(len(zs), prep, fits)
 
 
 def fit_dd(
@@ -1494,75 +2101,7 @@ def fit_dd(
     Decision errors make it biased high below about 8 dB: with no signal at all it returns
     3.01 dB (M = 2) and 3.54 dB (M = 4) (METHODS §3).
     """
-    _check_modulation(modulation)
-    zz = _check_outputs(z, modulation)
-    n, m = zz.shape
-    pi = _check_priors(None, modulation)
-    if n < MIN_SYMBOLS:
-        return _too_few("dd-moment", modulation, n, pi)
-    zz, scale = _scaled(zz)
-    if scale == 0.0:
-        return _no_energy("dd-moment", modulation, n, pi)
-    r_gram, identity = _check_gram(gram if modulation != "ook" else _ook_gram(gram), m)
-    rounds = 0
-    if modulation == "ook":
-        a2, n0, p, _, rounds = _dd_ook(zz)
-        weight = p
-        if a2 > 0 and n0 > 0:
-            pi = np.array([1.0 - p, p])
-    else:
-        q = _whitened_energy(zz, r_gram, identity)
-        a2, n0, _ = _dd_fsk(zz, q)
-        weight = 1.0
-    if not (a2 > 0 and n0 > 0):
-        return _unscaled(
-            _build(
-                method="dd-moment",
-                modulation=modulation,
-                n_symbols=n,
-                esn0=None,
-                log_gamma_var=None,
-                amplitude=None,
-                noise_var=_finite_or_none(n0) if n0 > 0 else None,
-                priors=pi,
-                converged=False,
-                message="decision-directed split found no signal (non-positive signal energy)",
-                iterations=rounds,
-                log_likelihood=None,
-                detection_statistic=None,
-                upper95_db=None,
-                gof=None,
-            ),
-            scale,
-        )
-    esn0 = weight * a2 / n0
-    bad = _plausibility(_db(esn0))
-    a = math.sqrt(a2)
-    gof_result = None
-    if gof:
-        gof_result = check_energy_laws(
-            zz, amplitude=a, noise_var=n0, gram=r_gram, modulation=modulation, priors=pi
-        )
-    return _unscaled(
-        _build(
-            method="dd-moment",
-            modulation=modulation,
-            n_symbols=n,
-            esn0=esn0,
-            log_gamma_var=None,
-            amplitude=a,
-            noise_var=n0,
-            priors=pi,
-            converged=bad is None,
-            message=bad or "decision-directed moments (biased high below about 8 dB Es/N0)",
-            iterations=rounds,
-            log_likelihood=None,
-            detection_statistic=None,
-            upper95_db=None,
-            gof=gof_result,
-        ),
-        scale,
-    )
+    return fit_dd_many([z], [gram], modulation=modulation, gof=gof)[0]
 
 
 # --------------------------------------------------------------------------------------------
