@@ -36,6 +36,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field, replace
+from functools import cached_property
 from typing import Literal
 
 import numpy as np
@@ -250,7 +251,7 @@ def _check_rates(
 
 
 class _Burst:
-    """The burst as complex128 with its DFT, computed once (private helper)."""
+    """The burst as complex128 with its DFT, computed once when needed (private helper)."""
 
     def __init__(self, x, sample_rate_hz, modulation: str):
         self.modulation = modulation
@@ -270,12 +271,20 @@ class _Burst:
                 "burst contains NaN or infinite samples; zero or cut them before estimating"
             )
         self.n = self.x.size
-        self.spectrum = scipy.fft.fft(self.x)
-        self.power = self.spectrum.real**2 + self.spectrum.imag**2
-        if not np.any(self.power > 0):
+        if not np.any(self.x != 0):
             raise MeasurementError("burst is all zeros; there is no signal to estimate from")
         self.df_hz = self.fs / self.n
         self._mixed: dict[tuple[float, ...], np.ndarray] = {}
+
+    @cached_property
+    def spectrum(self) -> np.ndarray:
+        """N-point DFT of the burst (computed when first needed)."""
+        return scipy.fft.fft(self.x)
+
+    @cached_property
+    def power(self) -> np.ndarray:
+        """|DFT|² of the burst."""
+        return self.spectrum.real**2 + self.spectrum.imag**2
 
     # -- frequency helpers ------------------------------------------------------------------
     def wrap_hz(self, f):
@@ -794,7 +803,7 @@ def _fit_tones(
         fit = _fit_lines(b, 1, center_hz, None, rate_hz, True)
         if fit is not None:
             return fit
-        return _energy_search(b, center_hz, None, rate_hz, True)
+        return _carrier_by_energy(b, center_hz, None, rate_hz, True)
     h = spacing_hz / rate_hz
     for p in _LINE_POWERS:
         ph = p * h
@@ -813,7 +822,16 @@ def _fit_tones(
         fit = _fit_lines(b, p, center_hz, guess, rate_hz, spacing_known)
         if fit is not None:
             return fit
+    return _carrier_by_energy(b, center_hz, spacing_hz, rate_hz, spacing_known)
+
+
+def _carrier_by_energy(
+    b: _Burst, center_hz: float, spacing_hz: float | None, rate_hz: float, spacing_known: bool
+) -> _ToneFit:
+    """The energy search, then the lines right next to its carrier where p·h is an integer."""
     coarse = _energy_search(b, center_hz, spacing_hz, rate_hz, spacing_known)
+    if b.m == 1:
+        return coarse
     for p in _LINE_POWERS:
         ph = p * coarse.spacing_hz / rate_hz
         if round(ph) >= 1 and abs(ph - round(ph)) <= 0.02:
@@ -825,6 +843,196 @@ def _fit_tones(
 
 def _signal_width(m: int, spacing_hz: float | None, rate_hz: float) -> float:
     return (m - 1) * (spacing_hz or 0.0) + 2.0 * rate_hz
+
+
+# --------------------------------------------------------------------------------------------
+# Batched carrier estimate (rates given): a few numpy calls per group of bursts
+# --------------------------------------------------------------------------------------------
+
+#: Mantissas m of the FFT sizes m·2^k used for bursts: at most 12.5 % zero padding, 5-smooth.
+_FFT_MANTISSAS = (32, 36, 40, 45, 48, 50, 54, 60)
+#: Bursts transformed together (rows of one 2-D FFT): small enough to stay in cache.
+BATCH_ROWS = 16
+
+
+def fft_size(n_samples: int) -> int:
+    """DFT length of a burst of ``n_samples``: the smallest m·2^k ≥ n, m in 32…60 (5-smooth).
+
+    It depends on the burst alone, so a burst gets the same spectrum alone or in a batch,
+    and bursts of similar lengths share one 2-D FFT. Zero padding is at most 12.5 %; it biases
+    three-bin interpolation by at most 0.042 bin [computed: noiseless tone, N = 29000,
+    32625-point DFT, offsets −0.5…0.5 bin], 0.3 Hz at 250 kS/s.
+    """
+    n = max(int(n_samples), 64)
+    k = max(0, int(math.floor(math.log2(n / 60.0))))
+    best = None
+    for kk in (k, k + 1):
+        for m in _FFT_MANTISSAS:
+            size = m << kk
+            if size >= n and (best is None or size < best):
+                best = size
+    return int(best)
+
+
+def _wrap(f, fs):
+    return (f + fs / 2) % fs - fs / 2
+
+
+def _interpolate_rows(spec: np.ndarray, k: np.ndarray) -> np.ndarray:
+    """:func:`interpolate_peak_bin` (Candan) at bins k (any shape) of the rows of ``spec``.
+
+    ``spec`` has shape (B, L) and ``k`` shape (B, …); returns k + δ.
+    """
+    n = spec.shape[1]
+    rows = np.arange(spec.shape[0]).reshape((-1,) + (1,) * (k.ndim - 1))
+    xm = spec[rows, (k - 1) % n].astype(np.complex128)
+    x0 = spec[rows, k % n].astype(np.complex128)
+    xp = spec[rows, (k + 1) % n].astype(np.complex128)
+    den = 2.0 * x0 - xm - xp
+    safe = np.where(den == 0, 1.0, den)
+    delta = np.where(den == 0, 0.0, np.real((xm - xp) / safe))  # Jacobsen [1]
+    delta *= math.tan(math.pi / n) / (math.pi / n)  # Candan [2]
+    return k + np.clip(delta, -0.5, 0.5)
+
+
+def _coarse_center_rows(
+    power: np.ndarray, n_used: np.ndarray, fs: float, width_hz: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Batched coarse centre: (centre_hz (B,), ok (B,)) from power spectra (B, nfft).
+
+    As :func:`_coarse_center`, with the smoothed periodogram evaluated on blocks of s bins
+    (s a power of two, at most 1/8 of the smoothing width): the argmax and the 20 % floor
+    of a moving average over ~10³ bins do not change at that resolution, and the work does.
+    """
+    nb_rows, nfft = power.shape
+    df = fs / nfft
+    width = max(3, int(round(width_hz / df)))
+    s = 1
+    while s * 2 <= max(1, width // 8) and nfft % (s * 2) == 0:
+        s *= 2
+    blocks = power.reshape(nb_rows, nfft // s, s).sum(axis=2, dtype=np.float64)
+    wb = max(1, int(round(width / s)))
+    nbk = blocks.shape[1]
+    pad = np.concatenate((blocks[:, -wb:], blocks, blocks[:, :wb]), axis=1)
+    c = np.zeros((nb_rows, pad.shape[1] + 1))
+    np.cumsum(pad, axis=1, out=c[:, 1:])
+    lo = wb - wb // 2
+    smooth = (c[:, lo + wb : lo + wb + nbk] - c[:, lo : lo + nbk]) / (wb * s)
+    kb = np.argmax(smooth, axis=1)
+    # 20 % quantile (linear interpolation) of the smoothed bins, over its Gamma quantile
+    pos = 0.2 * (nbk - 1)
+    i = int(math.floor(pos))
+    part = np.partition(smooth, (i, min(i + 1, nbk - 1)), axis=1)
+    q20 = part[:, i] + (pos - i) * (part[:, min(i + 1, nbk - 1)] - part[:, i])
+    dof = np.maximum(1.0, wb * s * n_used / nfft)  # zero padding correlates the bins
+    floor = q20 / (special.gammaincinv(dof, 0.2) / dof)
+    center = _wrap((kb * s + 0.5 * (s - 1)) * df, fs)
+    h = min(max(1, int(round(width_hz / 2 / df))), (nfft - 1) // 2)
+    offs = np.arange(-h, h + 1)
+    ok = np.ones(nb_rows, dtype=bool)
+    for _ in range(3):  # three centroid iterations (as _coarse_center), all rows at once
+        k0 = np.round(center / df).astype(np.int64)
+        idx = (k0[:, None] + offs) % nfft
+        w = np.take_along_axis(power, idx, axis=1) - floor[:, None]
+        f = (k0[:, None] + offs) * df  # unwrapped: within fs/2 of the centre
+        total = w.sum(axis=1)
+        ok &= total > 0
+        center = np.where(ok, _wrap((w * f).sum(axis=1) / np.where(ok, total, 1.0), fs), center)
+    return center, ok
+
+
+def _line_spectra(
+    spectrum: np.ndarray,
+    power: np.ndarray,
+    centers_hz: np.ndarray,
+    p: int,
+    half_hz: float,
+    fs: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
+    """Spectrum whose lines are sought: (spec (B, L), power, base_bin (B,), period_hz).
+
+    p = 1: the burst's own spectrum. p = 2: the square of the burst band-limited to
+    centre ± half_hz, computed on L ≥ 4·half/Δf + 3 samples per burst period (the band's
+    bins moved to baseband, inverse FFT, squared, FFT): x² then has no alias, and its bin j
+    sits at (base + j)·Δf with base = 2·(centre bin) — the full-rate square's bins, exactly.
+    """
+    nfft = spectrum.shape[1]
+    df = fs / nfft
+    if p == 1:
+        return spectrum, power, np.zeros(len(centers_hz), dtype=np.int64), fs
+    hb = max(1, int(round(half_hz / df)))
+    n_small = scipy.fft.next_fast_len(4 * hb + 3)
+    kc = np.round(centers_hz / df).astype(np.int64)
+    j = np.arange(-hb, hb + 1)
+    small = np.zeros((len(centers_hz), n_small), dtype=spectrum.dtype)
+    small[:, j % n_small] = np.take_along_axis(spectrum, (kc[:, None] + j) % nfft, axis=1)
+    y = scipy.fft.ifft(small, axis=1, overwrite_x=True)
+    spec = scipy.fft.fft(y * y, axis=1, overwrite_x=True)
+    return spec, spec.real**2 + spec.imag**2, p * kc, n_small * df
+
+
+def _joint_lines_rows(
+    spec: np.ndarray,
+    pw: np.ndarray,
+    base: np.ndarray,
+    period_hz: float,
+    df: float,
+    centers_hz: np.ndarray,
+    offsets_hz: np.ndarray,
+    p: int,
+    reach_hz: float,
+    noise_half_hz: float,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Lines of all M tones at one common shift, batched: (cfo_hz, found, line_db), each (B,).
+
+    The powers of the M lines p·(c + offset_i) + shift are summed over shifts within
+    ±p·reach; the best shift counts when its sum is improbable for noise over that many
+    shifts (Gamma(M, 1) tail below 1e-3 for the largest, noise level the median of the
+    ±p·noise_half windows over ln 2, METHODS §5). Each line is refined at the largest of the
+    three bins there by three-bin interpolation; the carrier is the excess-power-weighted
+    mean of f_i/p − offset_i.
+    """
+    n = spec.shape[1]
+    m = offsets_hz.size
+    reach = max(1, int(round(reach_hz * p / df)))
+    half = max(reach, int(round(noise_half_hz * p / df)))
+    pred = p * (centers_hz[:, None] + offsets_hz[None, :])  # (B, M) Hz
+    c = np.round(pred / df).astype(np.int64) - base[:, None]
+    win = np.arange(-half, half + 1)
+    idx = (c[:, :, None] + win) % n  # (B, M, W)
+    rows = np.arange(len(c))[:, None, None]
+    w = pw[rows, idx]
+    inner = w[:, :, half - reach : half + reach + 1]
+    total = inner.sum(axis=1)  # (B, S)
+    mean_noise = np.median(w.reshape(len(c), -1), axis=1) / math.log(2.0)
+    best = np.argmax(total, axis=1)
+    top = total[np.arange(len(c)), best]
+    threshold = float(special.gammainccinv(m, 1e-3 / (2 * reach + 1)))  # Gamma(M, 1) tail
+    found = (mean_noise > 0) & (top >= threshold * mean_noise)
+    k = c + (best - reach)[:, None]  # (B, M)
+    three = (k[:, :, None] + np.arange(-1, 2)) % n
+    kk = k + np.argmax(pw[rows, three], axis=2) - 1
+    fk = (_interpolate_rows(spec, kk) + base[:, None]) * df
+    fk = fk + period_hz * np.round((pred - fk) / period_hz)  # representative nearest prediction
+    excess = np.maximum(pw[rows[:, :, 0], kk % n] - mean_noise[:, None], 0.0)
+    wsum = excess.sum(axis=1, keepdims=True)
+    weights = np.where(wsum > 0, excess / np.where(wsum > 0, wsum, 1.0), 1.0 / m)
+    cfo = np.sum(weights * (fk / p - offsets_hz[None, :]), axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        line_db = 10 * np.log10(top / (m * mean_noise))
+    return cfo, found, line_db
+
+
+def _line_power_for(m: int, spacing_hz: float | None, rate_hz: float) -> int | None:
+    """p of the p-th power with lines (p·h within 0.02 of an integer), 1 for OOK, or None."""
+    if m == 1:
+        return 1
+    h = spacing_hz / rate_hz
+    for p in _LINE_POWERS:
+        k = round(p * h)
+        if k >= 1 and abs(p * h - k) <= 0.02:
+            return p
+    return None
 
 
 # --------------------------------------------------------------------------------------------
@@ -872,15 +1080,15 @@ def estimate_carrier(
     .. [1] S. Hinedi, M. Simon and D. Raphaeli, "The performance of noncoherent orthogonal
        M-FSK in the presence of timing and frequency errors", IEEE Trans. Commun. 43, 1995.
     """
-    b = _Burst(x, sample_rate_hz, modulation)
-    rs, df = _check_rates(modulation, b.fs, symbol_rate_hz, tone_spacing_hz)
+    fs = check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
+    rs, df = _check_rates(modulation, fs, symbol_rate_hz, tone_spacing_hz)
     if rs is None:
         raise ParameterError("symbol_rate_hz is required; give the symbol rate in Bd")
-    if b.m > 1 and df is None:
+    if _n_tones(modulation) > 1 and df is None:
         raise ParameterError(f"tone_spacing_hz is required for {modulation}; give it in Hz")
-    _require_symbols(b, rs)
-    center, _ = _coarse_center(b, _signal_width(b.m, df, rs))
-    return _fit_tones(b, center, df, rs, True).cfo_hz
+    return estimate_link(
+        x, sample_rate_hz, modulation=modulation, symbol_rate_hz=rs, tone_spacing_hz=df
+    ).cfo_hz
 
 
 def estimate_symbol_rate(
@@ -1034,6 +1242,26 @@ def estimate_link(
     carrier and spacing from the spectral lines of the burst or its square, or the energy
     search → the symbol rate once more on the refined tones.
     """
+    res = estimate_link_many(
+        [x],
+        sample_rate_hz,
+        modulation=modulation,
+        symbol_rate_hz=symbol_rate_hz,
+        tone_spacing_hz=tone_spacing_hz,
+    )[0]
+    if isinstance(res, MeasurementError):
+        raise res
+    return res
+
+
+def _estimate_link_one(
+    x: np.ndarray,
+    sample_rate_hz: float,
+    modulation: str,
+    symbol_rate_hz: float | None,
+    tone_spacing_hz: float | None,
+) -> LinkEstimate:
+    """Per-burst chain of :func:`estimate_link` (blind rates, or no line power)."""
     b = _Burst(x, sample_rate_hz, modulation)
     rs, df = _check_rates(modulation, b.fs, symbol_rate_hz, tone_spacing_hz)
     rate_known, spacing_known = rs is not None, (df is not None or b.m == 1)
@@ -1072,13 +1300,36 @@ def estimate_link(
         raise MeasurementError(
             "tone spacing estimate is not positive; give tone_spacing_hz from the link profile"
         )
-    tones = tone_frequencies_hz(modulation, fit.cfo_hz, spacing)
 
     # 4. the rate once more with the refined tones
     if not rate_known:
+        tones = tone_frequencies_hz(modulation, fit.cfo_hz, spacing)
         rs, rate_db, rate_std = _estimate_rate(b, tones, spacing, rs)
 
-    n_sym = b.n * rs / b.fs
+    return _link_result(modulation, b.fs, b.n, rs, rate_known, df, fit, rate_db, rate_std)
+
+
+def _link_result(
+    modulation: str,
+    fs: float,
+    n: int,
+    rs: float,
+    rate_known: bool,
+    df: float | None,
+    fit: _ToneFit,
+    rate_db: float | None,
+    rate_std: float | None,
+    extra: dict | None = None,
+) -> LinkEstimate:
+    """The LinkEstimate of one burst from its carrier fit and symbol rate (one place)."""
+    m = _n_tones(modulation)
+    spacing = fit.spacing_hz if m > 1 else None
+    if m > 1 and not (spacing > 0):
+        raise MeasurementError(
+            "tone spacing estimate is not positive; give tone_spacing_hz from the link profile"
+        )
+    tones = tone_frequencies_hz(modulation, fit.cfo_hz, spacing)
+    n_sym = n * rs / fs
     reliable = (rate_db is None or rate_db >= LINE_THRESHOLD_DB) and fit.line_power > 0
     parts = [f"carrier by {fit.method}"]
     if fit.line_db is not None:
@@ -1088,7 +1339,7 @@ def estimate_link(
         if rate_db is None
         else f"symbol rate from feature line ({rate_db:.1f} dB)"
     )
-    if b.m > 1:
+    if m > 1:
         parts.append("tone spacing from " + ("profile" if df is not None else fit.method))
     if fit.line_power == 0:
         parts.append("no spectral line: carrier from the energy search, less precise")
@@ -1103,19 +1354,210 @@ def estimate_link(
         "carrier_method": fit.method,
         "reliable": bool(reliable),
     }
+    if extra:
+        quality.update(extra)
     return LinkEstimate(
         modulation=modulation,
-        sample_rate_hz=b.fs,
+        sample_rate_hz=fs,
         symbol_rate_hz=float(rs),
         symbol_rate_source="profile" if rate_known else "estimated",
         tone_spacing_hz=None if spacing is None else float(spacing),
-        tone_spacing_source="n/a" if b.m == 1 else ("profile" if df is not None else "estimated"),
+        tone_spacing_source="n/a" if m == 1 else ("profile" if df is not None else "estimated"),
         cfo_hz=float(fit.cfo_hz),
         tone_freqs_hz=tones,
-        n_samples=b.n,
+        n_samples=n,
         quality=quality,
         message="; ".join(parts),
     )
+
+
+def _burst_samples(x, fs: float, rate_hz: float | None) -> np.ndarray:
+    """The burst as a 1-D finite array, or MeasurementError (same checks as _Burst)."""
+    arr = np.asarray(x)
+    if arr.ndim != 1:
+        raise ParameterError(f"burst samples must be one-dimensional, got shape {arr.shape}")
+    if arr.size < MIN_SAMPLES:
+        raise MeasurementError(
+            f"burst has {arr.size} samples; at least {MIN_SAMPLES} (and {MIN_SYMBOLS} "
+            "symbols) are needed to estimate the link parameters"
+        )
+    energy = float(np.vdot(arr, arr).real) if np.iscomplexobj(arr) else float(np.dot(arr, arr))
+    if not math.isfinite(energy) and not np.all(np.isfinite(arr)):
+        raise MeasurementError(
+            "burst contains NaN or infinite samples; zero or cut them before estimating"
+        )
+    if energy == 0:
+        raise MeasurementError("burst is all zeros; there is no signal to estimate from")
+    if rate_hz is not None:
+        n_sym = arr.size * rate_hz / fs
+        if n_sym < MIN_SYMBOLS:
+            raise MeasurementError(
+                f"burst of {arr.size} samples holds {n_sym:.1f} symbols at {rate_hz:g} Bd; at "
+                f"least {MIN_SYMBOLS} are needed (check the burst limits or the symbol rate)"
+            )
+    return arr
+
+
+def estimate_link_many(
+    xs: Sequence[np.ndarray],
+    sample_rate_hz: float,
+    *,
+    modulation: Modulation,
+    symbol_rate_hz: float | None = None,
+    tone_spacing_hz: float | None = None,
+    band_margin_symbols: float | None = None,
+) -> list[LinkEstimate | MeasurementError]:
+    """:func:`estimate_link` on a batch of bursts; a burst that fails gets its error, not a raise.
+
+    Parameters
+    ----------
+    xs : sequence of ndarray of complex, each shape (n_b,)
+        The bursts' samples (any lengths).
+    sample_rate_hz : float
+        fs [Hz].
+    modulation : {"2fsk", "4fsk", "ook"}
+    symbol_rate_hz, tone_spacing_hz : float, optional
+        As for :func:`estimate_link`.
+    band_margin_symbols : float, optional
+        When given (rates-given path only), each estimate's ``quality`` also holds
+        ``band_energy``: Σ|x_band[n]|² over the burst's samples, x_band the burst keeping the
+        DFT bins from the lowest tone − k·Rs to the highest + k·Rs (k this value; the DFT is
+        zero-padded to :func:`fft_size`), and ``band_width_hz``, the width of those bins
+        (count·fs/nfft). With a noise PSD N0 [1/Hz] the in-band signal power over a burst
+        of n_b of the n samples is (band_energy − N0·band_width_hz·n)/n_b.
+
+    Returns
+    -------
+    list of LinkEstimate or MeasurementError
+        One per burst, in order; equal to :func:`estimate_link` on each burst alone.
+
+    Raises
+    ------
+    ParameterError
+        Bad parameters or a burst that is not one-dimensional (the call's fault, not a burst's).
+
+    Notes
+    -----
+    With the symbol rate given, the tone spacing given (or OOK) and p·h an integer for p = 1
+    or 2, all bursts run through one chain with a fixed number of numpy calls per group of up
+    to BATCH_ROWS bursts of one DFT length (:func:`fft_size`): one 2-D FFT, the coarse centre
+    (:func:`_coarse_center_rows`), for p = 2 the square of the band-limited burst from its
+    band's bins (:func:`_line_spectra`), and the joint line search of all tones
+    (:func:`_joint_lines_rows`). A burst whose lines do not stand out falls back to the
+    per-burst energy search. Blind rates, and modulation indices without lines, run the
+    per-burst chain burst by burst.
+    """
+    m = _n_tones(modulation)
+    fs = check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
+    rs, df = _check_rates(modulation, fs, symbol_rate_hz, tone_spacing_hz)
+    if band_margin_symbols is not None:
+        band_margin_symbols = check_positive(
+            "band_margin_symbols", band_margin_symbols, "give the margin in symbol rates"
+        )
+    arrays = list(xs)
+    out: list = [None] * len(arrays)
+    p = _line_power_for(m, df, rs) if rs is not None and (m == 1 or df is not None) else None
+    if p is None:
+        for i, x in enumerate(arrays):  # blind or no lines: the per-burst chain
+            try:
+                out[i] = _estimate_link_one(x, fs, modulation, symbol_rate_hz, tone_spacing_hz)
+            except MeasurementError as exc:
+                out[i] = exc
+        return out
+    groups: dict[int, list[int]] = {}
+    for i, x in enumerate(arrays):
+        try:
+            arrays[i] = _burst_samples(x, fs, rs)
+        except MeasurementError as exc:
+            out[i] = exc
+            continue
+        groups.setdefault(fft_size(arrays[i].size), []).append(i)
+    for nfft, members in groups.items():
+        for start in range(0, len(members), BATCH_ROWS):
+            rows = members[start : start + BATCH_ROWS]
+            fits = _carrier_rows(
+                [arrays[i] for i in rows], nfft, fs, m, p, rs, df, band_margin_symbols
+            )
+            for i, (fit, extra) in zip(rows, fits, strict=True):
+                if isinstance(fit, MeasurementError):
+                    out[i] = fit
+                    continue
+                try:
+                    out[i] = _link_result(
+                        modulation, fs, arrays[i].size, rs, True, df, fit, None, None, extra
+                    )
+                except MeasurementError as exc:
+                    out[i] = exc
+    return out
+
+
+def _carrier_rows(
+    xs: list[np.ndarray],
+    nfft: int,
+    fs: float,
+    m: int,
+    p: int,
+    rs: float,
+    df: float | None,
+    band_margin_symbols: float | None,
+) -> list[tuple[_ToneFit | MeasurementError, dict | None]]:
+    """Carrier fits of bursts sharing one DFT length, with the rates given (batched core)."""
+    modulation = {1: "ook", 2: "2fsk", 4: "4fsk"}[m]
+    dtype = np.result_type(np.complex64, *[x.dtype for x in xs])
+    spectrum = np.zeros((len(xs), nfft), dtype=dtype)
+    for r, x in enumerate(xs):  # ragged copy into the padded rows
+        spectrum[r, : x.size] = x
+    spectrum = scipy.fft.fft(spectrum, axis=1, overwrite_x=True)
+    power = spectrum.real**2
+    power += spectrum.imag**2
+    n_used = np.array([x.size for x in xs], dtype=float)
+    center, ok = _coarse_center_rows(power, n_used, fs, _signal_width(m, df, rs))
+    offsets = tone_offsets_hz(modulation, df)
+    spec, pw, base, period = _line_spectra(
+        spectrum, power, center, p, _square_band_hz(offsets, rs), fs
+    )
+    reach = 0.5 * df if m > 1 else 0.5 * rs
+    noise_half = 0.4 * df if m > 1 else 0.5 * rs
+    cfo, found, line_db = _joint_lines_rows(
+        spec, pw, base, period, fs / nfft, center, offsets, p, reach, noise_half
+    )
+    band = None
+    if band_margin_symbols is not None:
+        dfb = fs / nfft
+        lo = cfo + offsets[0] - band_margin_symbols * rs
+        hi = cfo + offsets[-1] + band_margin_symbols * rs
+        k_lo = np.ceil(lo / dfb).astype(np.int64)
+        count = np.floor(hi / dfb).astype(np.int64) - k_lo + 1
+        span = np.arange(int(count.max()))
+        idx = (k_lo[:, None] + span) % nfft
+        inside = span[None, :] < count[:, None]
+        energy = np.sum(np.take_along_axis(power, idx, axis=1) * inside, axis=1) / nfft
+        band = (energy, count * dfb)
+    method = "carrier-line" if m == 1 else ("tone-lines" if p == 1 else f"power-{p}-lines")
+    results: list = []
+    for r, x in enumerate(xs):  # per-burst result objects (and the rare fallback)
+        extra = None
+        if band is not None:
+            extra = {"band_energy": float(band[0][r]), "band_width_hz": float(band[1][r])}
+        if not ok[r]:
+            results.append(
+                (
+                    MeasurementError(
+                        "no signal above the noise floor in this burst; check the burst "
+                        "limits or the Eb/N0"
+                    ),
+                    extra,
+                )
+            )
+        elif found[r]:
+            results.append((_ToneFit(float(cfo[r]), df, p, float(line_db[r]), method), extra))
+        else:
+            try:
+                b = _Burst(x, fs, modulation)
+                results.append((_carrier_by_energy(b, float(center[r]), df, rs, True), extra))
+            except MeasurementError as exc:
+                results.append((exc, extra))
+    return results
 
 
 # --------------------------------------------------------------------------------------------
