@@ -240,16 +240,21 @@ def _as_bits_many(bits_list, label: str) -> tuple[np.ndarray, np.ndarray]:
     full = [b for b in arrs if b.size]
     if not full:
         return np.zeros(0, dtype=np.uint8), offsets
-    flat = np.concatenate(full, dtype=np.int64, casting="unsafe")
-    bad = (flat < 0) | (flat > 1)
-    if np.any(bad):
+    if all(b.dtype.itemsize == 1 and b.dtype.kind in "bu" for b in full):
+        # bool/uint8 (what demodulators return): no sign, no widening copy
+        flat = np.concatenate([b.view(np.uint8) for b in full])
+        bad = flat > 1
+    else:
+        flat = np.concatenate(full, dtype=np.int64, casting="unsafe")
+        bad = (flat < 0) | (flat > 1)
+    if bad.any():
         j = int(np.argmax(bad))
         i = int(np.searchsorted(offsets, j, side="right")) - 1
         name = label if one else f"{label}[{i}]"
         raise ParameterError(
             f"{name} must hold only 0 and 1, found {arrs[i][j - offsets[i]].item()!r}"
         )
-    return flat.astype(np.uint8), offsets
+    return flat.astype(np.uint8, copy=False), offsets
 
 
 def _lock_threshold(n_bits, n_hypotheses: int):
@@ -309,10 +314,22 @@ def _segment_ids(offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return seg, pos
 
 
+def _segment_sums(values: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Sum of ``values`` over each segment [offsets[i], offsets[i + 1]) (empty ones give 0)."""
+    cs = np.zeros(values.size + 1, dtype=np.int64)
+    np.cumsum(values, out=cs[1:])
+    return cs[offsets[1:]] - cs[offsets[:-1]]
+
+
 def _correlate_phases(
-    bits: np.ndarray, seg: np.ndarray, pos: np.ndarray, n_bursts: int, name: str
+    bits: np.ndarray, seg: np.ndarray, pos_mod: np.ndarray, n_bursts: int, name: str
 ) -> np.ndarray:
-    """c[i, s] = Σ_k x_i[k]·r[(k + s) mod P] for every burst i and phase s, shape (B, P)."""
+    """c[i, s] = Σ_k x_i[k]·r[(k + s) mod P] for every burst i and phase s, shape (B, P).
+
+    ``pos_mod`` is each bit's position within its burst modulo P. The values are whole
+    numbers (sums of ±1), so the FFT result is rounded to them: exact ties between phases
+    then resolve to the lowest phase whatever the rounding of the transform.
+    """
     P = PRBS_PERIOD[name]
     x = 1.0 - 2.0 * bits.astype(np.float64)
     spectrum = _period_spectrum(name)
@@ -323,12 +340,12 @@ def _correlate_phases(
         i1 = min(n_bursts, i0 + rows)
         lo, hi = np.searchsorted(seg, [i0, i1])
         # fold modulo P (c is linear in x): one bincount over the whole block
-        idx = (seg[lo:hi] - i0) * P + pos[lo:hi] % P
+        idx = (seg[lo:hi] - i0) * P + pos_mod[lo:hi]
         folded = np.bincount(idx, weights=x[lo:hi], minlength=(i1 - i0) * P)
         folded = folded.reshape(i1 - i0, P)
         # c[s] = sum_j folded[j] r[(j + s) mod P]: circular cross-correlation via FFT.
         c[i0:i1] = scipy.fft.irfft(np.conj(scipy.fft.rfft(folded, axis=1)) * spectrum, n=P, axis=1)
-    return c
+    return np.rint(c, out=c)
 
 
 def check_prbs_many(
@@ -388,7 +405,8 @@ def _check_prbs_batch(bits_list, name, allow_inverted, label) -> list[BitCheck]:
     n_hyp = P * (2 if allow_inverted else 1)
     t = _lock_threshold(n, n_hyp)
     seg, pos = _segment_ids(offsets)
-    c = _correlate_phases(flat, seg, pos, B, name)
+    wrap = np.arange(P + int(n.max()), dtype=np.int64) % P  # k -> k mod P, by table lookup
+    c = _correlate_phases(flat, seg, wrap[pos], B, name)
     score = np.abs(c) if allow_inverted else c
     rows = np.arange(B)
     s = np.argmax(score, axis=1)
@@ -396,9 +414,9 @@ def _check_prbs_batch(bits_list, name, allow_inverted, label) -> list[BitCheck]:
     c_min = np.min(c, axis=1)
     inverted = peak < 0
     # errors against the free-running reference from phase s, one bincount for the batch
-    ref = period[(s[seg] + pos) % P]
-    wrong = (flat ^ ref).astype(bool) != inverted[seg]
-    errors = np.bincount(seg, weights=wrong, minlength=B).astype(np.int64)
+    ref = period[wrap[s[seg] + pos]]
+    wrong = (flat ^ ref) != inverted[seg]
+    errors = _segment_sums(wrong, offsets)
     score[rows, s] = 0.0
     s2 = np.argmax(score, axis=1)
     second = score[rows, s2]
