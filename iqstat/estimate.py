@@ -1504,9 +1504,10 @@ def _carrier_rows(
     """Carrier fits of bursts sharing one DFT length, with the rates given (batched core)."""
     modulation = {1: "ook", 2: "2fsk", 4: "4fsk"}[m]
     dtype = np.result_type(np.complex64, *[x.dtype for x in xs])
-    spectrum = np.zeros((len(xs), nfft), dtype=dtype)
+    spectrum = np.empty((len(xs), nfft), dtype=dtype)
     for r, x in enumerate(xs):  # ragged copy into the padded rows
         spectrum[r, : x.size] = x
+        spectrum[r, x.size :] = 0
     spectrum = scipy.fft.fft(spectrum, axis=1, overwrite_x=True)
     power = spectrum.real**2
     power += spectrum.imag**2
