@@ -1577,9 +1577,7 @@ def _dd_ook_many(prep: _Prepared) -> tuple[np.ndarray, np.ndarray, np.ndarray, n
     """:func:`_dd_ook` per burst: (A², N0, p_on, rounds)."""
     ends = prep.starts + prep.n
     out = [_dd_ook(prep.z[s:e]) for s, e in zip(prep.starts, ends, strict=True)]
-    a2, n0, p, _, rounds = (
-        (np.array(v, dtype=float) for v in zip(*out, strict=True)) if out else [np.zeros(0)] * 5
-    )
+    a2, n0, p, rounds = (np.array([o[k] for o in out], dtype=float) for k in (0, 1, 2, 4))
     return a2, n0, p, rounds.astype(int)
 
 
@@ -2019,7 +2017,8 @@ def fit_dd_many(
                 priors=priors[idx],
                 symbols=None,
                 max_values=GOF_MAX_VALUES,
-            ), strict=True,
+            ),
+            strict=True,
         ):
             gofs[i] = g
     s = prep.scale
