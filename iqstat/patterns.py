@@ -302,8 +302,8 @@ def _period_spectrum(name: str) -> np.ndarray:
 
 
 #: Elements (bursts x period) per FFT block of check_prbs_many: bounds its temporaries to
-#: ~40 MB (float64 fold, complex spectrum, correlation, score) whatever the batch size.
-_FOLD_BLOCK_ELEMENTS = 1 << 20
+#: ~25 MB (float64 fold, complex spectrum, correlation, score) whatever the batch size.
+_FOLD_BLOCK_ELEMENTS = 1 << 19
 
 
 def _segment_ids(offsets: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -321,31 +321,48 @@ def _segment_sums(values: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     return cs[offsets[1:]] - cs[offsets[:-1]]
 
 
-def _correlate_phases(
-    bits: np.ndarray, seg: np.ndarray, pos_mod: np.ndarray, n_bursts: int, name: str
-) -> np.ndarray:
-    """c[i, s] = Σ_k x_i[k]·r[(k + s) mod P] for every burst i and phase s, shape (B, P).
+def _search_phases(
+    bits: np.ndarray,
+    seg: np.ndarray,
+    pos_mod: np.ndarray,
+    n_bursts: int,
+    name: str,
+    allow_inverted: bool,
+) -> tuple[np.ndarray, ...]:
+    """Best and second-best phase of every burst from c[i, s] = Σ_k x_i[k]·r[(k + s) mod P].
 
-    ``pos_mod`` is each bit's position within its burst modulo P. The values are whole
-    numbers (sums of ±1), so the FFT result is rounded to them: exact ties between phases
-    then resolve to the lowest phase whatever the rounding of the transform.
+    ``pos_mod`` is each bit's position within its burst modulo P. Returns, per burst, the
+    best phase s, c at s, min_s c, the runner-up phase s2, its score and |c| there (score =
+    |c|, or c when the inverted sequence is not allowed). The correlations are whole numbers
+    (sums of ±1), so the FFT result is rounded to them: exact ties between phases then
+    resolve to the lowest phase whatever the rounding of the transform. Only one block of
+    bursts' correlations (about 2^19 values) exists at a time.
     """
     P = PRBS_PERIOD[name]
     x = 1.0 - 2.0 * bits.astype(np.float64)
     spectrum = _period_spectrum(name)
-    c = np.empty((n_bursts, P), dtype=np.float64)
-    rows = max(1, _FOLD_BLOCK_ELEMENTS // P)
+    out = [np.empty(n_bursts, dtype=dt) for dt in (np.int64, float, float, np.int64, float, float)]
+    best, peak, c_min, best2, second, c2 = out
+    step = max(1, _FOLD_BLOCK_ELEMENTS // P)
     # Blocks of bursts (not one per burst) bound the memory for pn15's long period.
-    for i0 in range(0, n_bursts, rows):
-        i1 = min(n_bursts, i0 + rows)
+    for i0 in range(0, n_bursts, step):
+        i1 = min(n_bursts, i0 + step)
         lo, hi = np.searchsorted(seg, [i0, i1])
         # fold modulo P (c is linear in x): one bincount over the whole block
         idx = (seg[lo:hi] - i0) * P + pos_mod[lo:hi]
         folded = np.bincount(idx, weights=x[lo:hi], minlength=(i1 - i0) * P)
         folded = folded.reshape(i1 - i0, P)
         # c[s] = sum_j folded[j] r[(j + s) mod P]: circular cross-correlation via FFT.
-        c[i0:i1] = scipy.fft.irfft(np.conj(scipy.fft.rfft(folded, axis=1)) * spectrum, n=P, axis=1)
-    return np.rint(c, out=c)
+        c = scipy.fft.irfft(np.conj(scipy.fft.rfft(folded, axis=1)) * spectrum, n=P, axis=1)
+        np.rint(c, out=c)
+        score = np.abs(c) if allow_inverted else c.copy()
+        rows = np.arange(i1 - i0)
+        s = np.argmax(score, axis=1)
+        best[i0:i1], peak[i0:i1], c_min[i0:i1] = s, c[rows, s], np.min(c, axis=1)
+        score[rows, s] = 0.0
+        s2 = np.argmax(score, axis=1)
+        best2[i0:i1], second[i0:i1], c2[i0:i1] = s2, score[rows, s2], np.abs(c[rows, s2])
+    return best, peak, c_min, best2, second, c2
 
 
 def check_prbs_many(
@@ -406,21 +423,12 @@ def _check_prbs_batch(bits_list, name, allow_inverted, label) -> list[BitCheck]:
     t = _lock_threshold(n, n_hyp)
     seg, pos = _segment_ids(offsets)
     wrap = np.arange(P + int(n.max()), dtype=np.int64) % P  # k -> k mod P, by table lookup
-    c = _correlate_phases(flat, seg, wrap[pos], B, name)
-    score = np.abs(c) if allow_inverted else c
-    rows = np.arange(B)
-    s = np.argmax(score, axis=1)
-    peak = c[rows, s]
-    c_min = np.min(c, axis=1)
+    s, peak, c_min, s2, second, c2 = _search_phases(flat, seg, wrap[pos], B, name, allow_inverted)
     inverted = peak < 0
-    # errors against the free-running reference from phase s, one bincount for the batch
+    # errors against the free-running reference from phase s, one pass for the batch
     ref = period[wrap[s[seg] + pos]]
     wrong = (flat ^ ref) != inverted[seg]
     errors = _segment_sums(wrong, offsets)
-    score[rows, s] = 0.0
-    s2 = np.argmax(score, axis=1)
-    second = score[rows, s2]
-    c2 = np.abs(c[rows, s2])
     n_min = math.ceil(2.0 * _log_hyp(n_hyp))
     locked = (n > 0) & (t <= n) & (np.abs(peak) >= t)
     ci_of = _intervals(errors, n, locked)
