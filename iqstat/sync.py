@@ -796,108 +796,208 @@ def align_frame(
     (the noncoherent low-SNR log-likelihood ratio is proportional to the energy difference)
     decides among them.
     """
-    hard = _int_symbols("symbols_hard", symbols_hard)
+    return align_frame_many(
+        [symbols_hard],
+        header_symbols,
+        softs=None if soft is None else [soft],
+        n_tones=n_tones,
+        detect_inverted=detect_inverted,
+        max_errors=max_errors,
+    )[0]
+
+
+def _check_soft(soft, n_symbols: int) -> np.ndarray:
+    c = np.asarray(soft, dtype=np.float64)
+    if c.ndim != 2 or c.shape[0] != n_symbols or c.shape[1] < 2:
+        raise ParameterError(
+            f"soft has shape {c.shape}; give branch energies of shape "
+            f"({n_symbols}, n_tones) matching symbols_hard"
+        )
+    if not np.all(np.isfinite(c)):
+        raise ParameterError("soft holds non-finite values; give finite branch energies")
+    return c
+
+
+def _sliding_dots(a: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Σ_j a[b, s + j, ...]·v[j, ...] for every row b and shift s (pattern inside the row),
+    summed over any trailing axes: one FFT correlation for the whole batch."""
+    r = scipy.signal.fftconvolve(a, v[None, ::-1], mode="valid", axes=1)
+    return r.reshape(r.shape[0], r.shape[1], -1).sum(axis=2)
+
+
+def align_frame_many(
+    hards: Sequence[np.ndarray],
+    header_symbols: np.ndarray,
+    *,
+    softs: Sequence[np.ndarray] | None = None,
+    n_tones: int | None = None,
+    detect_inverted: bool = True,
+    max_errors: int | None = None,
+) -> list[FrameAlignment]:
+    """:func:`align_frame` of a batch of symbol streams with one header, in a fixed number of
+    numpy calls.
+
+    Parameters
+    ----------
+    hards : sequence of B ndarrays of int, shapes (K_b,)
+        Tone index decided per symbol, per burst (ragged).
+    header_symbols : ndarray of int, shape (n_header,)
+    softs : sequence of B ndarrays, shapes (K_b, n_tones), optional
+        Branch energies per symbol (see :func:`align_frame`).
+    n_tones, detect_inverted, max_errors
+        As for :func:`align_frame`, common to the batch.
+
+    Returns
+    -------
+    list of B FrameAlignment
+        Each what :func:`align_frame` gives for that stream alone.
+
+    Notes
+    -----
+    The streams are padded to a common length; the bit-plane mismatch counts and the soft
+    metrics of all bursts are FFT correlations along the symbol axis (rounded to whole
+    counts, so the counts are exact), and positions past each stream's end are masked. The
+    candidate order (polarity, then position) and the tie-breaking are those of
+    :func:`align_frame`.
+    """
     hdr = _int_symbols("header_symbols", header_symbols)
     if hdr.size == 0:
         raise ParameterError("header_symbols is empty; give the preamble and sync word symbols")
-    c = None
-    if soft is not None:
-        c = np.asarray(soft, dtype=np.float64)
-        if c.ndim != 2 or c.shape[0] != hard.size or c.shape[1] < 2:
-            raise ParameterError(
-                f"soft has shape {c.shape}; give branch energies of shape "
-                f"({hard.size}, n_tones) matching symbols_hard"
-            )
-        if not np.all(np.isfinite(c)):
-            raise ParameterError("soft holds non-finite values; give finite branch energies")
-    top = int(max(hard.max(initial=0), hdr.max()))
-    m = int(n_tones) if n_tones is not None else (c.shape[1] if c is not None else 0)
-    m = m or (4 if top > 1 else 2)
-    if m < 2 or m & (m - 1):
-        raise ParameterError(f"n_tones {m} must be a power of two >= 2")
-    if top >= m:
-        raise ParameterError(f"tone index {top} is out of range for {m} tones; use 0..{m - 1}")
-    if c is not None and c.shape[1] != m:
-        raise ParameterError(f"soft has {c.shape[1]} branches but n_tones is {m}")
+    if max_errors is not None and (
+        isinstance(max_errors, bool) or int(max_errors) != max_errors or max_errors < 0
+    ):
+        raise ParameterError(f"max_errors {max_errors!r} must be a non-negative integer")
+    hs = [_int_symbols("symbols_hard", h) for h in hards]
+    nb_ = len(hs)
+    if softs is not None and len(softs) != nb_:
+        raise ParameterError(f"softs has {len(softs)} entries for {nb_} streams; give one each")
+    cs = (
+        [None] * nb_
+        if softs is None
+        else [_check_soft(c, h.size) for c, h in zip(softs, hs, strict=True)]
+    )
+    ms = []
+    for h, c in zip(hs, cs, strict=True):
+        top = int(max(h.max(initial=0), hdr.max()))
+        m = int(n_tones) if n_tones is not None else (c.shape[1] if c is not None else 0)
+        m = m or (4 if top > 1 else 2)
+        if m < 2 or m & (m - 1):
+            raise ParameterError(f"n_tones {m} must be a power of two >= 2")
+        if top >= m:
+            raise ParameterError(f"tone index {top} is out of range for {m} tones; use 0..{m - 1}")
+        if c is not None and c.shape[1] != m:
+            raise ParameterError(f"soft has {c.shape[1]} branches but n_tones is {m}")
+        ms.append(m)
+    out: list = [None] * nb_
+    for m in sorted(set(ms)):  # one group per alphabet size (usually one)
+        ids = [j for j in range(nb_) if ms[j] == m]
+        _align_group(hs, cs, ids, hdr, m, detect_inverted, max_errors, out)
+    return out
+
+
+def _align_group(hs, cs, ids, hdr, m, detect_inverted, max_errors, out) -> None:
+    """:func:`align_frame_many` for the streams ``ids`` of one alphabet size m."""
     k = m.bit_length() - 1
     nb = hdr.size * k
-    n_pos = hard.size - hdr.size + 1
+    n_h = hdr.size
+    lens = np.array([hs[j].size for j in ids], dtype=np.int64)
+    n_pos = lens - n_h + 1
     if max_errors is None:
-        n_tests = max(1, n_pos) * (2 if detect_inverted else 1)
+        n_tests = np.maximum(1, n_pos) * (2 if detect_inverted else 1)
         cdf = np.array(_random_match_cdf(nb))
-        ok = np.nonzero(n_tests * cdf <= FALSE_LOCK_PROBABILITY)[0]
-        max_err = int(ok[-1]) if ok.size else -1
+        ok = n_tests[:, None] * cdf[None, :] <= FALSE_LOCK_PROBABILITY
+        max_err = np.where(ok.any(axis=1), ok.shape[1] - 1 - np.argmax(ok[:, ::-1], axis=1), -1)
     else:
-        if isinstance(max_errors, bool) or int(max_errors) != max_errors or max_errors < 0:
-            raise ParameterError(f"max_errors {max_errors!r} must be a non-negative integer")
-        max_err = int(max_errors)
-    if n_pos < 1:
-        return FrameAlignment(
-            False, None, None, nb, False, 0.0,
-            f"stream of {hard.size} symbols is shorter than the {hdr.size}-symbol header",
-        )  # fmt: skip
-    if max_err < 0:
-        return FrameAlignment(
-            False, None, None, nb, False, 0.0,
-            f"a {nb}-bit header cannot be told from random symbols over {n_pos} positions; "
-            "give max_errors or a longer sync word",
-        )  # fmt: skip
-
+        max_err = np.full(len(ids), int(max_errors))
+    live = [i for i in range(len(ids)) if n_pos[i] >= 1 and max_err[i] >= 0]
+    for i, j in enumerate(ids):
+        if n_pos[i] < 1:
+            out[j] = FrameAlignment(
+                False, None, None, nb, False, 0.0,
+                f"stream of {lens[i]} symbols is shorter than the {n_h}-symbol header",
+            )  # fmt: skip
+        elif max_err[i] < 0:
+            out[j] = FrameAlignment(
+                False, None, None, nb, False, 0.0,
+                f"a {nb}-bit header cannot be told from random symbols over {n_pos[i]} "
+                "positions; give max_errors or a longer sync word",
+            )  # fmt: skip
+    if not live:
+        return
+    jl = [ids[i] for i in live]
+    ln, npos, merr = lens[live], n_pos[live], max_err[live]
+    k_max = int(ln.max())
+    p_max = k_max - n_h + 1
+    hard = np.zeros((len(live), k_max), dtype=np.int64)
+    for r, j in enumerate(jl):  # ragged streams into one padded array
+        hard[r, : hs[j].size] = hs[j]
     g_hard = hard ^ (hard >> 1)
     g_hdr = hdr ^ (hdr >> 1)
-    err = np.zeros(n_pos)
-    err_msb = np.zeros(n_pos)
+    err = np.zeros((len(live), p_max))
+    err_msb = err
     for bit in range(k):  # bit planes of the Gray labels (1 or 2 of them)
         a = 1.0 - 2.0 * ((g_hard >> bit) & 1)
         v = 1.0 - 2.0 * ((g_hdr >> bit) & 1)
-        mism = (hdr.size - _sliding_dot(a, v)) / 2.0
-        err += mism
+        mism = (n_h - _sliding_dots(a, v)) / 2.0
+        err = err + mism
         if bit == k - 1:
             err_msb = mism
+    err_inv = np.rint(err - 2 * err_msb + n_h).astype(np.int64)
     err = np.rint(err).astype(np.int64)
-    err_inv = np.rint(err - 2 * err_msb + hdr.size).astype(np.int64)
-    errs = np.stack([err, err_inv]) if detect_inverted else err[None, :]
-    pol, pos = np.nonzero(errs <= max_err)
-    if pos.size == 0:
-        best = int(errs.min())
-        return FrameAlignment(
-            False, None, None, nb, False, 0.0,
-            f"header not found: best position has {best} of {nb} bits wrong "
-            f"(threshold {max_err})",
-        )  # fmt: skip
-    if c is not None:
-        cc = c - c.mean(axis=1, keepdims=True)
-        s_norm = np.zeros(n_pos)
-        s_inv = np.zeros(n_pos)
-        for t in range(m):  # one sliding correlation per tone value
-            s_norm += _sliding_dot(cc[:, t], (hdr == t).astype(np.float64))
-            s_inv += _sliding_dot(cc[:, t], (hdr == m - 1 - t).astype(np.float64))
-        metric = np.stack([s_norm, s_inv])[pol, pos]
-        i = int(np.argmax(metric))
+    errs = np.stack([err, err_inv], axis=1) if detect_inverted else err[:, None, :]
+    inside = np.arange(p_max) < npos[:, None]
+    big = np.iinfo(np.int64).max
+    errs = np.where(inside[:, None, :], errs, big)
+    cand = errs <= merr[:, None, None]
+    n_cand = cand.sum(axis=(1, 2))
+    if cs[jl[0]] is not None:
+        soft = np.zeros((len(live), k_max, m))
+        for r, j in enumerate(jl):
+            soft[r, : hs[j].size] = cs[j]
+        cc = soft - soft.mean(axis=2, keepdims=True)
+        cc[np.arange(k_max)[None, :] >= ln[:, None]] = 0.0
+        s_norm = _sliding_dots(cc, (hdr[:, None] == np.arange(m)).astype(np.float64))
+        s_inv = _sliding_dots(cc, ((m - 1 - hdr)[:, None] == np.arange(m)).astype(np.float64))
+        metric = np.stack([s_norm, s_inv], axis=1)[:, : errs.shape[1]]
+        pick = np.argmax(np.where(cand, metric, -np.inf).reshape(len(live), -1), axis=1)
     else:
-        i = int(np.argmin(errs[pol, pos]))
-    p, s = int(pol[i]), int(pos[i])
-    ref = (m - 1 - hdr) if p else hdr
-    sym_err = int(np.count_nonzero(hard[s : s + hdr.size] != ref))
-    e = int(errs[p, s])
-    others = pos.size - 1
-    msg = (
-        f"header at symbol {s} with {e} of {nb} bits wrong"
-        + (", tones inverted" if p else "")
-        + (f"; {others} other candidate(s) within {max_err} errors" if others else "")
-        + ("; chosen by soft metric" if (c is not None and others) else "")
-    )
-    return FrameAlignment(
-        found=True,
-        start_symbol=s,
-        bit_errors=e,
-        header_bits=nb,
-        inverted=bool(p),
-        score=1.0 - e / nb,
-        message=msg,
-        symbol_errors=sym_err,
-        n_candidates=int(pos.size),
-    )
+        pick = np.argmin(np.where(cand, errs, big).reshape(len(live), -1), axis=1)
+    pol, pos = np.divmod(pick, p_max)
+    e_pick = errs.reshape(len(live), -1)[np.arange(len(live)), pick]
+    win = np.minimum(pos[:, None] + np.arange(n_h)[None, :], k_max - 1)
+    seen = np.take_along_axis(hard, win, axis=1)
+    ref = np.where(pol[:, None] == 1, m - 1 - hdr[None, :], hdr[None, :])
+    sym_err = np.count_nonzero(seen != ref, axis=1)
+    best = errs.reshape(len(live), -1).min(axis=1)
+    soft_given = cs[jl[0]] is not None
+    for r, j in enumerate(jl):
+        me = int(merr[r])
+        if n_cand[r] == 0:
+            out[j] = FrameAlignment(
+                False, None, None, nb, False, 0.0,
+                f"header not found: best position has {int(best[r])} of {nb} bits wrong "
+                f"(threshold {me})",
+            )  # fmt: skip
+            continue
+        p, s_, e = int(pol[r]), int(pos[r]), int(e_pick[r])
+        others = int(n_cand[r]) - 1
+        msg = (
+            f"header at symbol {s_} with {e} of {nb} bits wrong"
+            + (", tones inverted" if p else "")
+            + (f"; {others} other candidate(s) within {me} errors" if others else "")
+            + ("; chosen by soft metric" if (soft_given and others) else "")
+        )
+        out[j] = FrameAlignment(
+            found=True,
+            start_symbol=s_,
+            bit_errors=e,
+            header_bits=nb,
+            inverted=bool(p),
+            score=1.0 - e / nb,
+            message=msg,
+            symbol_errors=int(sym_err[r]),
+            n_candidates=int(n_cand[r]),
+        )
 
 
 def _peak_lag(metric: np.ndarray) -> float:
