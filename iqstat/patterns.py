@@ -321,6 +321,24 @@ def _segment_sums(values: np.ndarray, offsets: np.ndarray) -> np.ndarray:
     return cs[offsets[1:]] - cs[offsets[:-1]]
 
 
+@lru_cache(maxsize=8)
+def _section_spectra(name: str, L: int) -> np.ndarray:
+    """rfft of the sections g_q[j] = r[(q W + j) mod P], j < L, W = 3L/4, shape (Q, L/2 + 1).
+
+    For streams of at most L/4 bits the P circular correlations split into Q = ceil(P / W)
+    linear correlations of length-L sections of the ±1 period: FFTs of a power-of-two length
+    L instead of one of length P = 2^15 - 1 = 7·31·151, several times faster per point.
+    """
+    P = PRBS_PERIOD[name]
+    width = L - L // 4
+    q = -(-P // width)
+    r = 1.0 - 2.0 * _one_period(name).astype(np.float64)
+    g = r[(np.arange(q)[:, None] * width + np.arange(L)[None, :]) % P]
+    out = scipy.fft.rfft(g, axis=1)
+    out.flags.writeable = False
+    return out
+
+
 def _search_phases(
     bits: np.ndarray,
     seg: np.ndarray,
@@ -331,7 +349,9 @@ def _search_phases(
 ) -> tuple[np.ndarray, ...]:
     """Best and second-best phase of every burst from c[i, s] = Σ_k x_i[k]·r[(k + s) mod P].
 
-    ``pos_mod`` is each bit's position within its burst modulo P. Returns, per burst, the
+    ``pos_mod`` is each bit's position within its burst modulo P (equal to the position
+    when the streams are shorter than the period, the case of the sectioned FFT of
+    :func:`_section_spectra`, used when every stream is short against P). Returns, per burst, the
     best phase s, c at s, min_s c, the runner-up phase s2, its score and |c| there (score =
     |c|, or c when the inverted sequence is not allowed). The correlations are whole numbers
     (sums of ±1), so the FFT result is rounded to them: exact ties between phases then
@@ -340,20 +360,37 @@ def _search_phases(
     """
     P = PRBS_PERIOD[name]
     x = 1.0 - 2.0 * bits.astype(np.float64)
-    spectrum = _period_spectrum(name)
     out = [np.empty(n_bursts, dtype=dt) for dt in (np.int64, float, float, np.int64, float, float)]
     best, peak, c_min, best2, second, c2 = out
-    step = max(1, _FOLD_BLOCK_ELEMENTS // P)
+    n_max = int(np.bincount(seg, minlength=n_bursts).max()) if seg.size else 0
+    L = 1 << max(8, (4 * n_max - 1).bit_length())  # power of two >= 4 n_max
+    sectioned = L <= P // 4  # short streams on a long period (pn15): see _section_spectra
+    if sectioned:
+        sections = _section_spectra(name, L)
+        width = L - L // 4
+        step = max(1, _FOLD_BLOCK_ELEMENTS // (sections.shape[0] * L))
+    else:
+        spectrum = _period_spectrum(name)
+        step = max(1, _FOLD_BLOCK_ELEMENTS // P)
     # Blocks of bursts (not one per burst) bound the memory for pn15's long period.
     for i0 in range(0, n_bursts, step):
         i1 = min(n_bursts, i0 + step)
         lo, hi = np.searchsorted(seg, [i0, i1])
-        # fold modulo P (c is linear in x): one bincount over the whole block
-        idx = (seg[lo:hi] - i0) * P + pos_mod[lo:hi]
-        folded = np.bincount(idx, weights=x[lo:hi], minlength=(i1 - i0) * P)
-        folded = folded.reshape(i1 - i0, P)
-        # c[s] = sum_j folded[j] r[(j + s) mod P]: circular cross-correlation via FFT.
-        c = scipy.fft.irfft(np.conj(scipy.fft.rfft(folded, axis=1)) * spectrum, n=P, axis=1)
+        if sectioned:
+            # every stream is shorter than L / 4: place it at the start of a row of L
+            idx = (seg[lo:hi] - i0) * L + (pos_mod[lo:hi])
+            rows_x = np.bincount(idx, weights=x[lo:hi], minlength=(i1 - i0) * L)
+            spec_x = np.conj(scipy.fft.rfft(rows_x.reshape(i1 - i0, L), axis=1))
+            # section q holds c[q W + u] = sum_k x[k] g_q[k + u], u < W (no wrap: k + u < L)
+            corr = scipy.fft.irfft(spec_x[:, None, :] * sections[None], n=L, axis=2)
+            c = corr[:, :, :width].reshape(i1 - i0, -1)[:, :P]
+        else:
+            # fold modulo P (c is linear in x): one bincount over the whole block
+            idx = (seg[lo:hi] - i0) * P + pos_mod[lo:hi]
+            folded = np.bincount(idx, weights=x[lo:hi], minlength=(i1 - i0) * P)
+            folded = folded.reshape(i1 - i0, P)
+            # c[s] = sum_j folded[j] r[(j + s) mod P]: circular cross-correlation via FFT.
+            c = scipy.fft.irfft(np.conj(scipy.fft.rfft(folded, axis=1)) * spectrum, n=P, axis=1)
         np.rint(c, out=c)
         score = np.abs(c) if allow_inverted else c.copy()
         rows = np.arange(i1 - i0)
