@@ -24,7 +24,13 @@ from iqstat.correlate import (
     template_gram,
 )
 from iqstat.errors import IqstatError, MeasurementError
-from iqstat.estimate import LinkEstimate, estimate_link, link_with, refine_link_across_bursts
+from iqstat.estimate import (
+    LinkEstimate,
+    estimate_link,
+    estimate_link_many,
+    link_with,
+    refine_link_across_bursts,
+)
 from iqstat.facts import CaptureFacts, compute_facts
 from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
 from iqstat.formats.open import open_capture
@@ -462,26 +468,24 @@ def _batched(works: list[_Work], stage) -> None:
         _each(act, lambda w: stage([w]))
 
 
-def _stage_link(works: list[_Work], ctx: _Context) -> None:
-    def step(w: _Work) -> None:
-        try:
-            est = estimate_link(
-                w.x,
-                ctx.fs,
-                modulation=ctx.profile.modulation,
-                symbol_rate_hz=ctx.symbol_rate_hz,
-                tone_spacing_hz=ctx.tone_spacing_hz,
-            )
-        except MeasurementError:
+def _stage_link(batch: list[_Work], ctx: _Context) -> None:
+    """Carrier offset (and the rates, as given or refined across bursts) of every burst."""
+    links = estimate_link_many(
+        [w.x for w in batch],
+        ctx.fs,
+        modulation=ctx.profile.modulation,
+        symbol_rate_hz=ctx.symbol_rate_hz,
+        tone_spacing_hz=ctx.tone_spacing_hz,
+    )
+    for w, est in zip(batch, links, strict=True):
+        if isinstance(est, MeasurementError):
             w.result = _unmeasured(
                 w.burst,
                 "link-not-estimated",
                 "carrier and rates could not be estimated on this burst",
             )
-            return
-        w.link = _as_estimated(est, ctx.profile)
-
-    _each(works, step)
+        else:
+            w.link = _as_estimated(est, ctx.profile)
 
 
 def _stage_timing(works: list[_Work], ctx: _Context) -> None:
@@ -763,7 +767,7 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * ctx.fs / ctx.symbol_rate_hz))
     windows = _read_bursts(capture, bursts, margin)
     works = [_Work(burst=b, x0=a, x=x) for b, (a, x) in zip(bursts, windows, strict=True)]
-    _stage_link(works, ctx)
+    _batched(works, lambda batch: _stage_link(batch, ctx))
     _stage_timing(works, ctx)
     _stage_decide(works, ctx)
     _batched(works, lambda batch: _stage_frame(batch, ctx))
