@@ -442,3 +442,23 @@ def test_clopper_pearson_arrays_match_scipy_binomtest():
         clopper_pearson(np.array([1.0, 2.0]), np.array([5, 5]))
     with pytest.raises(ParameterError, match="k=6, n=5"):
         clopper_pearson(np.array([1, 6]), np.array([5, 5]))
+
+
+def test_pn15_short_bursts_sectioned_equal_folded():
+    # A batch of short pn15 bursts takes the sectioned FFT; adding one long burst forces the
+    # single 32767-point fold. Both give the same results, and the injected truth (phase,
+    # polarity, flips) is found by each.
+    rng = np.random.default_rng(77)
+    bursts, truth = [], []
+    for i in range(9):
+        n = int(rng.integers(200, 600))
+        phase = int(rng.integers(32767))
+        flips = rng.random(n) < 0.02 * (i % 3)
+        b = prbs_bits("pn15", n, phase) ^ flips.astype(np.uint8)
+        bursts.append(1 - b if i == 4 else b)
+        truth.append((phase, i == 4, int(flips.sum())))
+    short = check_prbs_many(bursts, "pn15")
+    mixed = check_prbs_many([*bursts, prbs_bits("pn15", 9000, 5)], "pn15")
+    assert mixed[:-1] == short and mixed[-1].phase == 5
+    for got, tr in zip(short, truth, strict=True):
+        assert got.locked and (got.phase, got.inverted, got.bit_errors) == tr
