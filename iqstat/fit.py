@@ -1113,42 +1113,93 @@ def _ks_uniform(u: np.ndarray) -> tuple[float, float]:
 _KS_BLOCKS = (16, 4)
 
 
-def _ks_monotone(y_sorted: np.ndarray, cdf) -> tuple[float, float]:
-    """The KS test of :func:`_ks_uniform` on cdf(y) for a nondecreasing cdf and sorted y.
+def _chi2_2_cdf_rows(y: np.ndarray, lam: np.ndarray) -> np.ndarray:
+    """:func:`_chi2_2_cdf` with one noncentrality per value (the same three regimes)."""
+    x = 0.5 * y
+    out = -np.expm1(-x)  # λ = 0, and P(1, x) for the small-λ series
+    small = (lam > 0.0) & (lam < _SMALL_NONCENTRALITY)
+    if small.any():
+        xs, p1, half = x[small], out[small], 0.5 * lam[small]
+        out[small] = np.exp(-half) * (p1 + half * (p1 - xs * np.exp(-xs)))
+    big = lam >= _SMALL_NONCENTRALITY
+    if big.any():
+        out[big] = special.chndtr(y[big], 2.0, lam[big])
+    return out
 
-    The statistic D = max_k max((k + 1)/n − F_k, F_k − k/n), F_k = cdf(y_k), is the same
-    number, but F is evaluated only where it can matter: between two evaluated points i0 < i1,
-    monotonicity bounds every deviation inside by max(i1/n − F_i0, F_i1 − (i0 + 1)/n), and an
-    interval whose bound does not exceed the largest deviation found so far is skipped.
-    Passes at every 16th, then every 4th value of the open intervals, then all values left
-    (at 540 symbols about a quarter of the CDF evaluations; fewer for more symbols).
+
+def _ks_marginal_many(
+    y: np.ndarray, starts: np.ndarray, n: np.ndarray, lam: np.ndarray, priors: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Branchwise KS statistics and p-values of many bursts against their marginal laws.
+
+    ``y`` (N, M): energies over N0/2, bursts concatenated (burst b at ``starts[b]``, ``n[b]``
+    symbols); ``lam`` (B, H, M) noncentralities and ``priors`` (B, H). Returns D and p, each
+    (B, M). The CDF of branch j, F(y) = Σ_h π_h F(y; 2, λ_hj), is nondecreasing, so D =
+    max_k max((k + 1)/n − F_k, F_k − k/n) over the sorted values is found evaluating F only
+    where it can matter: between two evaluated points i0 < i1, monotonicity bounds every
+    deviation inside by max(i1/n − F_i0, F_i1 − (i0 + 1)/n), and an interval whose bound does
+    not exceed the largest deviation found so far in its row is skipped. Passes at every 16th,
+    then every 4th value of the open intervals, then all values left (at 540 symbols about a
+    quarter of the CDF evaluations). All rows (burst × branch) go through each pass together.
+    The p-value is Stephens' (√n + 0.12 + 0.11/√n)·D with the Kolmogorov limit law, see
+    :func:`_ks_uniform`.
     """
-    n = y_sorted.size
-    f = np.empty(n)
-    known = np.zeros(n, dtype=bool)
-    new = np.arange(0, n, _KS_BLOCKS[0])
-    if new[-1] != n - 1:
-        new = np.r_[new, n - 1]
-    d = 0.0
+    b_count, m = len(n), y.shape[1]
+    n_max = int(n.max())
+    seg = np.repeat(np.arange(b_count), n)
+    pos = np.arange(len(y)) - np.repeat(starts, n)
+    pad = np.full((b_count, m, n_max), np.inf)
+    pad[seg, :, pos] = y  # rows (burst, branch), each sorted below
+    pad.sort(axis=2)
+    n_row = np.repeat(n, m)  # values per row
+    valid = np.arange(n_max) < n_row[:, None]
+    ys = pad.reshape(b_count * m, n_max)[valid]  # rows concatenated, each ascending
+    off = np.cumsum(n_row) - n_row
+    row_of = np.repeat(np.arange(b_count * m), n_row)
+    k_of = np.arange(len(ys)) - np.repeat(off, n_row)
+    lam_rows = lam.transpose(0, 2, 1).reshape(b_count * m, -1)  # (row, h)
+    pri_rows = np.repeat(priors, m, axis=0)  # (row, h)
+
+    def cdf(sel: np.ndarray) -> np.ndarray:
+        rr = row_of[sel]
+        out = np.zeros(len(sel))
+        for h in range(lam_rows.shape[1]):  # hypotheses (≤ 4), vectorised over values
+            out += pri_rows[rr, h] * _chi2_2_cdf_rows(ys[sel], lam_rows[rr, h])
+        return np.clip(out, 0.0, 1.0)
+
+    f = np.empty(len(ys))
+    known = np.zeros(len(ys), dtype=bool)
+    d = np.zeros(b_count * m)
+    last = off + n_row - 1
+    new = np.union1d(np.flatnonzero(k_of % _KS_BLOCKS[0] == 0), last)
     for block in (*_KS_BLOCKS[1:], 1, 0):
         if new.size:
-            f[new] = cdf(y_sorted[new])
+            f[new] = cdf(new)
             known[new] = True
-            d = max(d, float(np.max(np.maximum((new + 1) / n - f[new], f[new] - new / n))))
+            k, nr = k_of[new], n_row[row_of[new]]
+            dev = np.maximum((k + 1) / nr - f[new], f[new] - k / nr)
+            rows_new = row_of[new]
+            cut = np.flatnonzero(np.r_[True, rows_new[1:] != rows_new[:-1]])
+            here = rows_new[cut]
+            d[here] = np.maximum(d[here], np.maximum.reduceat(dev, cut))
         if block == 0:
             break
         ev = np.flatnonzero(known)
         lo, hi = ev[:-1], ev[1:]
-        bound = np.maximum(hi / n - f[lo], f[hi] - (lo + 1) / n)
-        keep = (bound > d) & (hi - lo > 1)
+        same = row_of[lo] == row_of[hi]
+        lo, hi = lo[same], hi[same]
+        nr = n_row[row_of[lo]]
+        bound = np.maximum(k_of[hi] / nr - f[lo], f[hi] - (k_of[lo] + 1) / nr)
+        keep = (bound > d[row_of[lo]]) & (hi - lo > 1)
         lo, hi = lo[keep], hi[keep]
         # every block-th index strictly inside each open interval (lo, hi)
         count = (hi - lo - 1) // block
         first = np.cumsum(count) - count
         step = np.arange(int(count.sum())) - np.repeat(first, count) + 1
         new = np.repeat(lo, count) + block * step
-    rn = math.sqrt(n)
-    return d, float(special.kolmogorov((rn + 0.12 + 0.11 / rn) * d))
+    rn = np.sqrt(n_row)
+    p = special.kolmogorov((rn + 0.12 + 0.11 / rn) * d)
+    return d.reshape(b_count, m), p.reshape(b_count, m)
 
 
 def check_energy_laws(
@@ -1218,16 +1269,10 @@ def check_energy_laws(
         pi = _check_priors(priors, modulation)
         lam = _noncentrality(amplitude, noise_var, r, modulation)
         y = energy / (0.5 * noise_var)
-        tests = []
-        for j in range(m):  # branches, each vectorised over symbols
-
-            def cdf(v, j=j):
-                out = pi[0] * _chi2_2_cdf(v, lam[0, j])  # same sums as branch_energy_cdf
-                for h in range(1, len(pi)):
-                    out += pi[h] * _chi2_2_cdf(v, lam[h, j])
-                return np.clip(out, 0.0, 1.0)
-
-            tests.append(_ks_monotone(np.sort(y[:, j]), cdf))
+        d, p = _ks_marginal_many(
+            y, np.zeros(1, dtype=np.intp), np.array([len(y)]), lam[None], pi[None]
+        )
+        tests = list(zip(d[0], p[0], strict=True))
     else:
         cdf = branch_energy_cdf(
             energy,
@@ -1273,7 +1318,39 @@ def _energy_laws_many(
     symbols: np.ndarray | None,
     max_values: int,
 ) -> list[tuple[float, float, int]]:
-    """:func:`check_energy_laws` for every burst of a preparation (scaled outputs)."""
+    """:func:`check_energy_laws` for every burst of a preparation (scaled outputs).
+
+    Marginal laws (``symbols`` None): all bursts through :func:`_ks_marginal_many` at once.
+    Known symbols: burst by burst (not on the measurement path).
+    """
+    m = prep.z.shape[1]
+    if symbols is None:
+        n_keep = max_values // m
+        n = prep.n
+        rows = None
+        if (n > n_keep).any():  # fixed-seed subsample of the long bursts, as check_energy_laws
+            parts = []
+            for s, k in zip(prep.starts, n, strict=True):
+                if k > n_keep:
+                    rng = np.random.default_rng(_GOF_SEED)
+                    parts.append(s + np.sort(rng.choice(k, size=n_keep, replace=False)))
+                else:
+                    parts.append(np.arange(s, s + k))
+            rows = np.concatenate(parts)
+            n = np.minimum(n, n_keep)
+        z = prep.z if rows is None else prep.z[rows]
+        starts = np.cumsum(n) - n
+        g = amplitude * amplitude / noise_var
+        if modulation == "ook":
+            lam = np.zeros((len(n), 2, 1))
+            lam[:, 1, 0] = 2.0 * g
+        else:
+            lam = 2.0 * g[:, None, None] * np.abs(prep.grams.transpose(0, 2, 1)) ** 2  # eq. 6
+        y = (z.real**2 + z.imag**2) / np.repeat(0.5 * noise_var, n)[:, None]
+        d, p = _ks_marginal_many(y, starts, n, lam, priors)
+        stat = d.max(axis=1)
+        pval = np.minimum(1.0, m * p.min(axis=1))  # Bonferroni over branches
+        return [(float(a), float(b), int(k) * m) for a, b, k in zip(stat, pval, n, strict=True)]
     ends = prep.starts + prep.n
     return [
         check_energy_laws(
