@@ -1034,8 +1034,9 @@ def mean_ber_over_bursts(
         Non-negative weight per burst, normally its number of bits or symbols; None = equal.
     modulation : {"2fsk", "4fsk", "ook"}
         The link's modulation.
-    rho_abs : float or array_like of shape (4, 4)
-        Tone correlation magnitude, as in :func:`predicted_ber`.
+    rho_abs : float, array_like of shape (n_bursts,), (4, 4) or (n_bursts, 4, 4)
+        Tone correlation magnitude, as in :func:`predicted_ber`: one for the capture, or one
+        per burst.
 
     Returns
     -------

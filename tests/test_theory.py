@@ -747,3 +747,14 @@ def test_ook_batch_thresholds_and_ber(ref):
         assert ber[i] == pytest.approx(
             f(ref["ber_table"]["nc_ook_optimum"][key]), rel=REL_CLOSED_FORM, abs=0
         )
+
+
+def test_mean_ber_over_bursts_with_one_rho_per_burst(ref):
+    # Weighted mean of Stein's per-burst values (mpmath rows, Stein 1964) with |ρ| per burst.
+    rows = ref["stein"][:3]
+    g = np.array([undb(float(r["ebn0_db"])) for r in rows])
+    rho = np.array([float(r["rho_abs"]) for r in rows])
+    w = np.array([100.0, 200.0, 300.0])
+    expected = sum(wi * f(r["ber"]) for wi, r in zip(w, rows, strict=True)) / w.sum()
+    got = th.mean_ber_over_bursts(g, w, "2fsk", rho_abs=rho)
+    assert got == pytest.approx(expected, rel=REL_CLOSED_FORM, abs=0)
