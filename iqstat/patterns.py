@@ -5,6 +5,11 @@ receiver does not know where in the sequence a burst starts, so :func:`check_prb
 phase (and the polarity) by circular cross-correlation with one period, then counts errors
 against a free-running copy of the sequence from that phase. Every wrong bit counts once.
 
+The checks work on batches of bursts: :func:`check_prbs_many` and :func:`check_known_many`
+process a list of ragged bit arrays with a fixed number of array operations (concatenation,
+one fold, one FFT pair per block of bursts), and :func:`check_prbs` / :func:`check_known` are
+those functions on a list of one. :func:`clopper_pearson` takes arrays of counts.
+
 The module is a pure array core: no I/O, nothing computed at import time (the one period of
 each sequence is generated on first use and cached).
 """
