@@ -937,7 +937,7 @@ def predicted_ber(ebn0: ArrayLike, modulation: Modulation, rho_abs: float | Arra
 
 
 #: Gray labels of the four 4fsk tones, lowest first (00, 01, 11, 10).
-_GRAY_4 = np.arange(4) ^ (np.arange(4) >> 1)
+_GRAY_4 = np.array([0, 1, 3, 2])
 
 
 def required_ebn0_db(
