@@ -446,9 +446,9 @@ def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Pr
     starts = np.cumsum(n) - n
     z = np.concatenate([arrs[i] for i in keep]) if keep.size else np.zeros((0, m), complex)
     _check_finite(z, starts, keep, count)
+    flat = z.view(np.float64).reshape(len(z), 2 * m)  # (re, im) columns
     if keep.size:
-        flat = z.view(np.float64).reshape(len(z), 2 * m)
-        scale = np.maximum.reduceat(np.max(np.abs(flat), axis=1), starts)
+        scale = np.max(np.maximum.reduceat(np.abs(flat), starts, axis=0), axis=1)
     else:
         scale = np.zeros(0)
     zero = scale == 0.0
@@ -456,19 +456,28 @@ def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Pr
         for i in keep[zero]:
             early[int(i)] = _no_energy(method, modulation, int(n_all[i]), priors)
         rows = np.repeat(~zero, n)
-        z, keep, n, scale = z[rows], keep[~zero], n[~zero], scale[~zero]
+        flat, keep, n, scale = flat[rows], keep[~zero], n[~zero], scale[~zero]
         starts = np.cumsum(n) - n
-    z = z / np.repeat(scale, n)[:, None]
+    flat = flat / np.repeat(scale, n)[:, None]
+    z = flat.view(np.complex128)
     grams_k, identity = r_all[keep], id_all[keep]
-    q = np.sum(z.real**2 + z.imag**2, axis=1)
+    sq = flat * flat
+    energy = sq[:, 0::2] + sq[:, 1::2]  # |z_j|²
+    q = energy[:, 0].copy()
+    for j in range(1, m):  # columns, not a reduction along the short axis (10x slower)
+        q += energy[:, j]
     if not identity.all():
-        # q_k = z_kᴴ R⁻¹ z_k with the Gram matrix of each symbol's burst (eq. 4)
-        rows = np.flatnonzero(np.repeat(~identity, n))
-        rinv = np.linalg.inv(grams_k[~identity])
-        which = np.repeat(np.arange(int((~identity).sum())), n[~identity])
-        rz = np.einsum("kij,kj->ki", rinv[which], z[rows])
-        qw = np.sum(z[rows].real * rz.real + z[rows].imag * rz.imag, axis=1)  # Re(zᴴ·R⁻¹z)
-        q[rows] = np.maximum(qw, 0.0)
+        # q_k = z_kᴴ R⁻¹ z_k with the Gram matrix of each symbol's burst (eq. 4), expanded
+        # over the entries of the Hermitian R⁻¹: Σ_i c_ii|z_i|² + 2·Σ_{i<j} Re(c_ij·z̄_i·z_j)
+        rinv = np.linalg.inv(grams_k)
+        rinv[identity] = np.eye(m)
+        which = np.repeat(np.arange(len(n)), n)
+        qw = np.zeros(len(z))
+        for i in range(m):  # M ≤ 4 branches: at most 10 terms, each vectorised over symbols
+            qw += rinv[which, i, i].real * energy[:, i]
+            for j in range(i + 1, m):
+                qw += 2.0 * (rinv[which, i, j] * (z[:, i].conj() * z[:, j])).real
+        q = np.where(np.repeat(identity, n), q, np.maximum(qw, 0.0))
     return _Prepared(z, q, starts, n, scale, grams_k, identity, keep, early)
 
 
