@@ -19,8 +19,10 @@ from iqstat.bursts import Burst, BurstDetection, detect_bursts
 from iqstat.capture import Capture
 from iqstat.correlate import (
     correlate_symbols,
+    correlate_symbols_many,
     interval_energies,
     mix_cumulative,
+    mix_cumulative_many,
     template_gram,
 )
 from iqstat.errors import IqstatError, MeasurementError
@@ -49,8 +51,8 @@ from iqstat.summary import profile_mismatch, summarise
 from iqstat.sync import (
     FrameAlignment,
     SymbolTiming,
-    align_frame,
-    recover_timing,
+    align_frame_many,
+    recover_timing_many,
     refine_timing_known,
 )
 from iqstat.units import db
@@ -488,24 +490,29 @@ def _stage_link(batch: list[_Work], ctx: _Context) -> None:
             w.link = _as_estimated(est, ctx.profile)
 
 
-def _stage_timing(works: list[_Work], ctx: _Context) -> None:
+def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
     """Tone mixing, symbol timing (searched blind where the symbol-rate line is weak), bank."""
-
-    def step(w: _Work) -> None:
-        link = w.link
-        cum = mix_cumulative(w.x, ctx.fs, link.tone_freqs_hz)
-        timing = recover_timing(
-            w.x, ctx.fs, link.symbol_rate_hz, link.tone_freqs_hz, cumulative=cum
-        )
-        sps = ctx.fs / ctx.symbol_rate_hz
-        lo = w.burst.start_sample - w.x0 - 0.5 * sps
-        hi = w.burst.stop_sample - w.x0 + 0.5 * sps
+    fs = ctx.fs
+    xs = [w.x for w in batch]
+    tones = [w.link.tone_freqs_hz for w in batch]
+    cums = mix_cumulative_many(xs, fs, tones)
+    timings = recover_timing_many(
+        xs, fs, [w.link.symbol_rate_hz for w in batch], tones, cumulatives=cums, errors="return"
+    )
+    sps = fs / ctx.symbol_rate_hz
+    edges = [
+        (w.burst.start_sample - w.x0 - 0.5 * sps, w.burst.stop_sample - w.x0 + 0.5 * sps)
+        for w in batch
+    ]
+    for i, (w, timing) in enumerate(zip(batch, timings, strict=True)):
+        if isinstance(timing, MeasurementError):
+            continue
         if timing.quality.get("line_snr_db", np.inf) < BLIND_SEARCH_LINE_DB:
             # No usable symbol-rate line (weak burst, or h = 1/2 whose feature line is faint):
             # search the timing phase directly for the largest decision margin.
-            k0, k1 = _symbols_inside(timing, lo, hi)
-            timing, _ = _search_timing(
-                cum,
+            k0, k1 = _symbols_inside(timing, *edges[i])
+            timings[i], _ = _search_timing(
+                cums[i],
                 timing,
                 len(w.x),
                 k0,
@@ -513,22 +520,36 @@ def _stage_timing(works: list[_Work], ctx: _Context) -> None:
                 None,
                 np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
             )
-        z_all, gram = _bank(w.x, ctx.fs, link, timing, cum)
+    ok = [i for i, t in enumerate(timings) if not isinstance(t, MeasurementError)]
+    zs = correlate_symbols_many(
+        [xs[i] for i in ok],
+        fs,
+        [tones[i] for i in ok],
+        [timings[i].t0_samples for i in ok],
+        [timings[i].period_samples for i in ok],
+        [timings[i].n_symbols for i in ok],
+        cumulatives=[cums[i] for i in ok],
+    )
+    z_of = dict(zip(ok, zs, strict=True))
+    for i, w in enumerate(batch):
+        timing = timings[i]
+        if isinstance(timing, MeasurementError):
+            w.result = _unmeasured(w.burst, "not-measured", str(timing))
+            continue
         # Symbols within the detected burst (a symbol's worth of slack at each detected edge).
-        k0, k1 = _symbols_inside(timing, lo, hi)
-        w.cum, w.timing, w.z_all, w.gram = cum, timing, z_all, gram
-        w.lo_edge, w.hi_edge, w.k0, w.k1 = lo, hi, k0, k1
+        k0, k1 = _symbols_inside(timing, *edges[i])
+        w.cum, w.timing, w.z_all = cums[i], timing, z_of[i]
+        w.gram = template_gram(w.link.tone_freqs_hz, timing.period_samples, fs)
+        w.lo_edge, w.hi_edge, w.k0, w.k1 = *edges[i], k0, k1
         if k1 - k0 < MIN_FIT_SYMBOLS:
             w.result = _unmeasured(
                 w.burst,
                 "too-few-symbols",
                 f"only {k1 - k0} whole symbols: too few to fit",
-                link=link,
+                link=w.link,
                 timing=timing,
                 symbols=k1 - k0,
             )
-
-    _each(works, step)
 
 
 def _hard_decisions(w: _Work, modulation: str) -> np.ndarray:
@@ -573,17 +594,15 @@ def _stage_frame(batch: list[_Work], ctx: _Context) -> None:
         softs = [None if m == "ook" else np.abs(w.z_all) ** 2 for w in batch]
 
         def align(ws, idx, **kw):
-            return [
-                align_frame(
-                    ws[i].hard,
-                    header,
-                    soft=softs[i],
-                    n_tones=n_tones,
-                    detect_inverted=m != "ook",
-                    **kw,
-                )
-                for i in idx
-            ]
+            idx = list(idx)
+            return align_frame_many(
+                [ws[i].hard for i in idx],
+                header,
+                softs=None if m == "ook" else [softs[i] for i in idx],
+                n_tones=n_tones,
+                detect_inverted=m != "ook",
+                **kw,
+            )
 
         frames = align(batch, range(len(batch)))
         found = [i for i, f in enumerate(frames) if f.found]
@@ -768,7 +787,7 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     windows = _read_bursts(capture, bursts, margin)
     works = [_Work(burst=b, x0=a, x=x) for b, (a, x) in zip(bursts, windows, strict=True)]
     _batched(works, lambda batch: _stage_link(batch, ctx))
-    _stage_timing(works, ctx)
+    _batched(works, lambda batch: _stage_timing(batch, ctx))
     _stage_decide(works, ctx)
     _batched(works, lambda batch: _stage_frame(batch, ctx))
     _each(works, lambda w: _refine_on_known(w, ctx))
