@@ -427,6 +427,7 @@ class _Work:
     fit_da: NoncoherentFit | None = None
     fit_dd: NoncoherentFit | None = None
     available_ebn0_db: float | None = None
+    predicted_ber: float | None = None
 
 
 @dataclasses.dataclass(frozen=True)
@@ -735,19 +736,39 @@ def _stage_available(batch: list[_Work], ctx: _Context) -> None:
         w.available_ebn0_db = a
 
 
+def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
+    """The BER theory predicts at each fitted Eb/N0, for the burst's tone correlation."""
+    m = ctx.profile.modulation
+    use = [w for w in batch if w.fit.converged and w.fit.ebn0_db is not None]
+    if not use:
+        return
+    ebn0 = 10.0 ** (np.array([w.fit.ebn0_db for w in use]) / 10.0)
+    if m == "2fsk":
+        rho = np.array([_theory_rho(np.abs(w.gram), m) for w in use])
+    elif m == "4fsk":
+        # A zero matrix is the orthogonal case (what _theory_rho's 0.0 stands for).
+        rho = np.stack(
+            [
+                r if isinstance(r, np.ndarray) else np.zeros((4, 4))
+                for r in (_theory_rho(np.abs(w.gram), m) for w in use)
+            ]
+        )
+    else:
+        rho = 0.0
+    pred = np.atleast_1d(theory.predicted_ber(ebn0, m, rho_abs=rho))
+    for w, p in zip(use, pred, strict=True):
+        w.predicted_ber = float(p)
+
+
 def _finish(w: _Work, ctx: _Context) -> None:
-    """Flags, predicted BER and available Eb/N0: the burst's result."""
-    m, fit, flags = ctx.profile.modulation, w.fit, w.flags
+    """Flags and the burst's result."""
+    fit, flags = w.fit, w.flags
     if w.check is not None and not w.check.locked:
         flags.append("pattern-not-locked")
     if not fit.converged:
         flags.append("fit-failed")
     elif fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
         flags.append("not-awgn")
-    pred = None
-    if fit.converged and fit.ebn0_db is not None:
-        rho = _theory_rho(np.abs(w.gram), m)
-        pred = float(theory.predicted_ber(10 ** (fit.ebn0_db / 10), m, rho_abs=rho))
     b = w.burst
     res = BurstResult(
         index=b.index,
@@ -763,7 +784,7 @@ def _finish(w: _Work, ctx: _Context) -> None:
         fit_dd=w.fit_dd,
         bit_check=w.check,
         available_ebn0_db=w.available_ebn0_db,
-        predicted_ber=pred,
+        predicted_ber=w.predicted_ber,
         flags=(),
         message=fit.message,
     )
@@ -793,6 +814,7 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     _each(works, lambda w: _refine_on_known(w, ctx))
     _stage_fit(works, ctx)
     _batched(works, lambda batch: _stage_available(batch, ctx))
+    _batched(works, lambda batch: _stage_predict(batch, ctx))
     _each(works, lambda w: _finish(w, ctx))
     return [
         dataclasses.replace(w.result, start_time=capture.sample_datetime(w.burst.start_sample))
