@@ -21,6 +21,7 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 import scipy.fft
+from numpy.lib.stride_tricks import sliding_window_view
 from scipy import stats
 from scipy.ndimage import median_filter
 
@@ -50,6 +51,13 @@ _SPLIT_LOG_LR = math.log(1e4)
 _MATMUL_MAX_BIN_FRACTION = 1.0 / 6.0
 # Sample-level edge search: this many frames either side of the frame-level edge.
 _REFINE_HALF_FRAMES = 3
+# Edge refinement reads regions less than this many samples apart with one call (one read
+# costs about as much as converting this many samples), in spans of about _READ_SPAN_MAX.
+_READ_MERGE_GAP = 1 << 15
+_READ_SPAN_MAX = 1 << 19
+# Groups refined per batch: bounds the temporaries (a few 2-D arrays of 2 edges × ~2 k
+# samples per group, complex64) to ~20 MB.
+_REFINE_BATCH_GROUPS = 256
 # At most this many gap frames are read back for the noise PSD.
 # Lowest in-band SNR reported, dB (a burst whose in-band excess is not positive).
 _MIN_BAND_SNR_DB = -30.0
@@ -580,106 +588,211 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
 # --------------------------------------------------------------------------------------------
 # Edge refinement and burst figures (read back a few samples)
 # --------------------------------------------------------------------------------------------
-def _band_power_samples(
-    capture: Capture,
-    lo: int,
-    hi: int,
-    band_hz: tuple[float, float] | None,
-    raw: list | None = None,
-) -> np.ndarray:
-    """|y|² of samples [lo, hi) band-limited to band_hz (brick-wall FFT mask, padded).
+def _read_windows(capture: Capture, starts: np.ndarray, width: int) -> np.ndarray:
+    """Samples ``[starts_i, starts_i + width)`` of a capture as rows (zeros past its end).
 
-    ``raw``, if given, receives ``(first index, samples read)`` for reuse by the caller.
+    Parameters
+    ----------
+    capture : Capture
+    starts : ndarray of int, shape (n,)
+        First sample of each window, sorted ascending.
+    width : int
+
+    Returns
+    -------
+    ndarray of complex64, shape (n, width)
+
+    Notes
+    -----
+    Windows less than ``_READ_MERGE_GAP`` samples apart are read with one call (one read
+    costs about as much as converting that many samples), in spans of about
+    ``_READ_SPAN_MAX`` samples; the rows are copied out of each span's samples through a
+    sliding-window view.
     """
-    fs = capture.sample_rate_hz
-    if band_hz is None:
-        x = capture.read(lo, hi - lo)
-        if raw is not None:
-            raw.append((lo, x))
-        return (x.real.astype(np.float64) ** 2) + x.imag.astype(np.float64) ** 2
-    width = band_hz[1] - band_hz[0]
-    pad = int(math.ceil(8.0 * fs / width))
-    a, b = max(0, lo - pad), min(capture.n_samples, hi + pad)
-    x = capture.read(a, b - a)
-    if raw is not None:
-        raw.append((a, x))
-    nfft = scipy.fft.next_fast_len(x.size + pad)
-    X = scipy.fft.fft(x, nfft)
-    f = scipy.fft.fftfreq(nfft, 1.0 / fs)
-    X[(f < band_hz[0]) | (f > band_hz[1])] = 0
-    y = scipy.fft.ifft(X)[lo - a : hi - a]
-    return y.real**2 + y.imag**2
+    starts = np.asarray(starts, dtype=np.int64)
+    out = np.zeros((starts.size, width), dtype=np.complex64)
+    if starts.size == 0:
+        return out
+    new = np.ones(starts.size, dtype=bool)
+    new[1:] = (starts[1:] > starts[:-1] + width + _READ_MERGE_GAP) | (
+        starts[1:] // _READ_SPAN_MAX != starts[:-1] // _READ_SPAN_MAX
+    )
+    bounds = np.append(np.flatnonzero(new), starts.size).tolist()
+    n = capture.n_samples
+    for i0, i1 in zip(bounds[:-1], bounds[1:], strict=True):
+        lo = int(starts[i0])
+        hi = int(starts[i1 - 1]) + width
+        x = capture.read(lo, min(hi, n) - lo)
+        if x.size < hi - lo:
+            x = np.concatenate((x, np.zeros(hi - lo - x.size, dtype=np.complex64)))
+        out[i0:i1] = sliding_window_view(x, width)[starts[i0:i1] - lo]
+    return out
 
 
-def _change_point(p: np.ndarray, noise: float, burst: float, rising: bool) -> int | None:
-    """ML position of a step between two known mean powers, or None when they do not differ.
+def _change_points(
+    rows: np.ndarray, lengths: np.ndarray, noise: float, burst: np.ndarray, rising: np.ndarray
+) -> np.ndarray:
+    """ML positions of steps between two known mean powers, one per row; −1 where none.
 
+    Parameters
+    ----------
+    rows : ndarray, shape (n_edges, width)
+        Powers; row e holds ``lengths[e]`` values, the rest is padding.
+    lengths : ndarray of int, shape (n_edges,)
+    noise : float
+        Mean power N before a rising (after a falling) edge.
+    burst : ndarray, shape (n_edges,)
+        Mean power B of the burst beside each edge.
+    rising : ndarray of bool, shape (n_edges,)
+
+    Notes
+    -----
     Each sample adds the log-likelihood ratio r = p·(1/N − 1/B) − ln(B/N) of exponential
     powers of mean B (burst) against N (noise); the step maximises Σ r after it (rising edge)
     or before it (falling edge), a CUSUM with known levels (Page, Biometrika 41, 1954 [mem]).
     Signal-plus-noise power is not exponential, but r stays linear in p, so only the
-    variance, not the location, of the estimate depends on that approximation.
+    variance, not the location, of the estimate depends on that approximation. No step is
+    placed (−1) when B ≤ 1.01·N or a row has fewer than two values. The sums run in the
+    rows' precision.
     """
-    if not (burst > 1.01 * noise > 0) or p.size < 2:
-        return None
-    r = p * (1.0 / noise - 1.0 / burst) - math.log(burst / noise)
-    c = np.concatenate(([0.0], np.cumsum(r)))
-    # rising: maximise c[n] − c[τ] → minimise c[τ]; falling: maximise c[τ]
-    return int(np.argmin(c)) if rising else int(np.argmax(c))
+    burst = np.asarray(burst, dtype=np.float64)
+    ok = (burst > 1.01 * noise) & (1.01 * noise > 0) & (lengths >= 2)
+    n = noise if noise > 0 else 1.0
+    b = np.where(ok, burst, 2.0 * n)
+    dt = rows.dtype
+    r = rows * (1.0 / n - 1.0 / b).astype(dt)[:, None] - np.log(b / n).astype(dt)[:, None]
+    c = np.zeros((rows.shape[0], rows.shape[1] + 1), dtype=dt)
+    np.cumsum(r, axis=1, out=c[:, 1:])
+    # rising: maximise c[n] − c[τ] → minimise c[τ]; falling: maximise c[τ] (minimise −c[τ])
+    np.negative(c, out=c, where=~rising[:, None])
+    c[np.arange(c.shape[1]) > lengths[:, None]] = np.inf
+    return np.where(ok, np.argmin(c, axis=1), -1)
 
 
-def _energy(x: np.ndarray) -> float:
-    """Σ|x|² in float64 (the partial frames of :func:`_mean_power`)."""
-    return float(np.sum(np.abs(x.astype(np.complex128)) ** 2))
-
-
-def _refine(
-    capture,
-    g: _Group,
+def _refine_many(
+    capture: Capture,
+    groups: list[_Group],
     L: int,
     band_hz,
     p: np.ndarray,
     floor: float,
     dof: float,
     end_energy: dict | None = None,
-) -> tuple[int, int]:
-    """Edges of a group to one sample: frame-level CUSUM, then sample level around it.
+) -> list[tuple[int, int]]:
+    """Edges of every group to one sample: frame-level CUSUM, then sample level around it.
 
-    ``end_energy``, if given, receives Σ|x|² of the partial frame inside each refined edge,
-    keyed by its sample range, from the samples read here (:func:`_mean_power` needs them).
+    Groups are refined in batches of ``_REFINE_BATCH_GROUPS`` with a fixed number of numpy
+    calls per batch (plus one read per span of nearby edges, and one FFT per distinct length
+    of the band-limited windows). ``end_energy``, if given, receives Σ|x|² of the partial frame
+    inside each refined edge, keyed by its sample range, from the samples read here
+    (:func:`_mean_power` needs them).
     """
+    out: list[tuple[int, int]] = []
+    for i in range(0, len(groups), _REFINE_BATCH_GROUPS):
+        batch = groups[i : i + _REFINE_BATCH_GROUPS]
+        out.extend(_refine_batch(capture, batch, L, band_hz, p, floor, dof, end_energy))
+    return out
+
+
+def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
     n = capture.n_samples
     n_frames = p.size
-    level = float(np.mean(p[g.start : g.stop]))
-    start, stop = g.start * L, min(g.stop * L, n)
-    edges = []
-    for lo, hi, rising, default in (
-        (g.start_lo, g.start_hi, True, start),
-        (g.stop_lo, g.stop_hi, False, stop),
-    ):
-        # Frame level: the same CUSUM on frame powers (Gamma(dof) ≈ dof exponential samples).
-        t = _change_point(p[lo:hi] * dof, floor * dof, level * dof, rising)
-        if t is None:
-            edges.append(default)
-            continue
-        e = lo + t
-        a = max(lo, e - _REFINE_HALF_FRAMES) * L
-        b = min(hi, e + _REFINE_HALF_FRAMES)
-        # A window reaching the last frame also takes the partial frame after it.
-        b = n if b >= n_frames else b * L
-        raw: list = []
-        t = _change_point(_band_power_samples(capture, a, b, band_hz, raw), floor, level, rising)
-        edge = a + t if t is not None else e * L
-        edges.append(edge)
-        if end_energy is not None:
-            r0, r1 = (edge, -(-edge // L) * L) if rising else (edge // L * L, edge)
-            x0, x = raw[0]
-            if r1 > r0 and x0 <= r0 and r1 <= x0 + x.size:
-                end_energy[(r0, r1)] = _energy(x[r0 - x0 : r1 - x0])
-    start, stop = edges
-    if stop <= start:
-        start, stop = g.start * L, min(g.stop * L, n)
-    return start, stop
+    fs = capture.sample_rate_hz
+    g = np.array(
+        [(x.start, x.stop, x.start_lo, x.start_hi, x.stop_lo, x.stop_hi) for x in groups],
+        dtype=np.int64,
+    ).reshape(-1, 6)
+    n_g = g.shape[0]
+    if n_g == 0:
+        return []
+    # Mean in-band frame power of each group (pairs [start, stop) of an index list).
+    level = np.add.reduceat(np.append(p, 0.0), g[:, :2].ravel())[0::2] / np.maximum(
+        g[:, 1] - g[:, 0], 1
+    )
+    # Both edges of every group: starts (rising) first, then stops (falling).
+    lo = np.concatenate((g[:, 2], g[:, 4]))
+    hi = np.concatenate((g[:, 3], g[:, 5]))
+    rising = np.repeat([True, False], n_g)
+    lev = np.concatenate((level, level))
+    edges = np.concatenate((g[:, 0] * L, np.minimum(g[:, 1] * L, n)))
+
+    # Frame level: the same CUSUM on frame powers (Gamma(dof) ≈ dof exponential samples).
+    w = np.maximum(hi - lo, 0)
+    j = np.arange(max(int(w.max()), 1))
+    pd = p * dof
+    rows = np.where(j < w[:, None], pd[np.clip(lo[:, None] + j, 0, n_frames - 1)], 0.0)
+    t = _change_points(rows, w, floor * dof, lev * dof, rising)
+    e = lo + t
+    a = np.maximum(lo, e - _REFINE_HALF_FRAMES) * L
+    b = np.minimum(hi, e + _REFINE_HALF_FRAMES)
+    # A window reaching the last frame also takes the partial frame after it.
+    b = np.where(b >= n_frames, n, b * L)
+    # Sample level, on the edges that have a frame-level change point, in capture order.
+    sel = np.flatnonzero(t >= 0)
+    sel = sel[np.argsort(a[sel], kind="stable")]
+    if sel.size == 0:
+        return _edges_to_spans(edges, g, L, n)
+    e, a, b, rising, lev = e[sel], a[sel], b[sel], rising[sel], lev[sel]
+    m = b - a
+    pad = 0 if band_hz is None else int(math.ceil(8.0 * fs / (band_hz[1] - band_hz[0])))
+    ra, rb = np.maximum(a - pad, 0), np.minimum(b + pad, n)
+    size = rb - ra
+    x = _read_windows(capture, ra, int(size.max()))
+    k = np.arange(int(m.max()))
+    if band_hz is None:
+        power = x.real.astype(np.float64) ** 2 + x.imag.astype(np.float64) ** 2
+    else:
+        # Brick-wall FFT mask on each window padded by `pad` samples each side (zero-padded
+        # to its own FFT length: one FFT per distinct length).
+        x[np.arange(x.shape[1]) >= size[:, None]] = 0
+        power = np.zeros((sel.size, k.size), dtype=np.float32)
+        nffts = np.array([scipy.fft.next_fast_len(s + pad) for s in np.unique(size).tolist()])
+        nfft_of = nffts[np.searchsorted(np.unique(size), size)]
+        shift = a - ra  # pad, except where the window was clipped at the capture's start
+        for nfft in np.unique(nfft_of).tolist():
+            r = np.flatnonzero(nfft_of == nfft)
+            X = scipy.fft.fft(x[r, : min(x.shape[1], nfft)], nfft, axis=1)
+            f = scipy.fft.fftfreq(nfft, 1.0 / fs)
+            r0, r1 = _runs((f < band_hz[0]) | (f > band_hz[1]))
+            for u, v in zip(r0.tolist(), r1.tolist(), strict=True):
+                X[:, u:v] = 0
+            y = scipy.fft.ifft(X, axis=1)
+            for s in np.unique(shift[r]).tolist():
+                rs = r[shift[r] == s]
+                ys = y[shift[r] == s, s : s + k.size]
+                power[rs, : ys.shape[1]] = ys.real**2 + ys.imag**2
+    t = _change_points(power, m, floor, lev, rising)
+    edge = np.where(t >= 0, a + t, e * L)
+    edges[sel] = edge
+    if end_energy is not None:
+        # Σ|x|² of the partial frame inside the edge: [edge, next frame) or [frame, edge).
+        r0 = np.where(rising, edge, edge // L * L)
+        r1 = np.where(rising, -(-edge // L) * L, edge)
+        has = (r1 > r0) & (ra <= r0) & (r1 <= rb)
+        if has.any():
+            r0, r1 = r0[has], r1[has]
+            q = np.arange(L)
+            col = np.minimum((r0 - ra[has])[:, None] + q, x.shape[1] - 1)
+            e2 = np.abs(np.take_along_axis(x[has], col, axis=1).astype(np.complex128)) ** 2
+            e2[q >= (r1 - r0)[:, None]] = 0.0
+            keys = zip(r0.tolist(), r1.tolist(), strict=True)
+            end_energy.update(zip(keys, e2.sum(axis=1).tolist(), strict=True))
+    return _edges_to_spans(edges, g, L, n)
+
+
+def _edges_to_spans(edges: np.ndarray, g: np.ndarray, L: int, n: int) -> list[tuple[int, int]]:
+    """(start, stop) per group from its refined edges; the coarse extent if they cross."""
+    n_g = g.shape[0]
+    start, stop = edges[:n_g].copy(), edges[n_g:].copy()
+    bad = stop <= start
+    start[bad] = g[bad, 0] * L
+    stop[bad] = np.minimum(g[bad, 1] * L, n)
+    return list(zip(start.tolist(), stop.tolist(), strict=True))
+
+
+def _energy(x: np.ndarray) -> float:
+    """Σ|x|² in float64 (the partial frames of :func:`_mean_power`)."""
+    return float(np.sum(np.abs(x.astype(np.complex128)) ** 2))
 
 
 def _mean_power(
@@ -926,10 +1039,8 @@ def detect_bursts(
         cut_before = {i for i, g in enumerate(split) if g.start not in originals}
         groups = split
     end_energy: dict = {}
-    spans = [
-        (*_refine(capture, g, L, band_edges, p, floor, dof, end_energy), i in cut_before)
-        for i, g in enumerate(groups)
-    ]
+    refined = _refine_many(capture, groups, L, band_edges, p, floor, dof, end_energy)
+    spans = [(s0, s1, i in cut_before) for i, (s0, s1) in enumerate(refined)]
     spans.sort()
     joined: list[list[int]] = []
     for s0, s1, was_cut in spans:
@@ -941,17 +1052,24 @@ def detect_bursts(
         # Edge refinement can still join neighbours (a stop edge found at the far end of a
         # burst the coarse detection ran into): split what is still too long.
         e_frames = expected_burst_s * fs / L
-        again = []
+        pieces: list[list[_Group]] = []
         for s0, s1 in joined:
             if (s1 - s0) / L <= LONG_BURST_FACTOR * e_frames:
-                again.append([s0, s1])
+                pieces.append([])
                 continue
             f0, f1 = s0 // L, min(-(-s1 // L), n_frames)
             whole = _Group(f0, f1, max(f0 - 1, 0), f0 + 2, max(f1 - 2, f0 + 1), f1)
-            pieces = _split_long_groups([whole], p, e_frames)
-            for k, g in enumerate(pieces):
-                a, b = _refine(capture, g, L, band_edges, p, floor, dof, end_energy)
-                again.append([s0 if k == 0 else a, s1 if k == len(pieces) - 1 else b])
+            pieces.append(_split_long_groups([whole], p, e_frames))
+        flat = [g for pc in pieces for g in pc]
+        ends = iter(_refine_many(capture, flat, L, band_edges, p, floor, dof, end_energy))
+        again = []
+        for (s0, s1), pc in zip(joined, pieces, strict=True):
+            if not pc:
+                again.append([s0, s1])
+                continue
+            for k in range(len(pc)):
+                a, b = next(ends)
+                again.append([s0 if k == 0 else a, s1 if k == len(pc) - 1 else b])
         joined = again
     joined = [sp for sp in joined if sp[1] - sp[0] >= max(min_burst, 1)]
 
