@@ -87,143 +87,190 @@ def compute_facts(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) 
     even when bursts fill most of the capture. The occupied bandwidth is the band holding
     99 % of the spectral power that exceeds the noise floor (the 0.5 %-each-side method of
     ITU-R SM.328 applied to the excess), reported only when the excess is significant.
+    :func:`iqstat.bursts.survey_capture` gives the same facts from the pass that also
+    measures the frame powers of burst detection.
     """
-    n = capture.n_samples
-    fs = capture.sample_rate_hz
-    total_power = 0.0
-    peak = 0.0
-    dc = 0.0 + 0.0j
-    n_bad = 0
-    frame_powers = []
-    welch_stride = max(1, (n // WELCH_FFT) // WELCH_MAX_FRAMES)
-    window = np.hanning(WELCH_FFT).astype(np.float32)
-    psd_acc = np.zeros(WELCH_FFT)
-    psd_frames = 0
-    pw = np.empty(chunk_samples, dtype=np.float32)
-    carry = 0  # samples to skip at the start of a chunk so Welch frames stay on the global grid
-    n_clip = 0
-    for start, x, bad, clip in _fact_chunks(capture, chunk_samples):
+    acc = FactsAccumulator(capture, chunk_samples)
+    for start, x, bad, raw in iter_unscaled_chunks(capture, chunk_samples):
+        acc.add(start, x, bad, raw)
+    return acc.finish()
+
+
+class FactsAccumulator:
+    """Running sums of the facts pass: feed every chunk of :func:`iter_unscaled_chunks` in
+    order with :meth:`add`, then :meth:`finish` returns the :class:`CaptureFacts`.
+
+    Lets another streaming pass (burst detection's frame powers) share the one read of the
+    samples; the figures equal :func:`compute_facts` exactly for the same chunk size.
+    """
+
+    def __init__(self, capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES) -> None:
+        n = capture.n_samples
+        self.capture = capture
+        self.total_power = 0.0
+        self.peak = 0.0
+        self.dc = 0.0 + 0.0j
+        self.n_bad = 0
+        self.n_clip = 0
+        self.frame_powers: list[np.ndarray] = []
+        self.welch_stride = max(1, (n // WELCH_FFT) // WELCH_MAX_FRAMES)
+        self.window = np.hanning(WELCH_FFT).astype(np.float32)
+        self.psd_acc = np.zeros(WELCH_FFT)
+        self.psd_frames = 0
+        self.pw = np.empty(int(chunk_samples), dtype=np.float32)
+        # Samples to skip at the start of a chunk so Welch frames stay on the global grid.
+        self.carry = 0
+        self.clip_lo, self.clip_hi, self.clip_radius = _clip_levels(capture.datatype)
+
+    def add(self, start: int, x: np.ndarray, bad: int, raw: np.ndarray | None) -> None:
+        """Add chunk ``x`` (complex64, unscaled) starting at sample ``start``.
+
+        ``bad`` counts its non-finite samples; ``raw`` holds its stored integer components,
+        shape (len(x), 2), for the clipping count (None for float recordings).
+        """
         m = len(x)
-        n_bad += bad
-        n_clip += clip
-        p = pw[:m]
+        self.n_bad += bad
+        if m > self.pw.size:
+            self.pw = np.empty(m, dtype=np.float32)
+        p = self.pw[:m]
         np.abs(x, out=p)
         p *= p
-        peak = max(peak, float(p.max()))
-        dc += complex(x.sum())  # pairwise summation in complex64: ample for a mean
+        chunk_peak = float(p.max()) if m else 0.0
+        self.peak = max(self.peak, chunk_peak)
+        # A component at the clipping level makes |x| at least that level: count only then
+        # (with a margin for the float32 rounding of |x|²); most chunks never come near.
+        if raw is not None and chunk_peak >= (self.clip_radius * (1 - 1e-5)) ** 2:
+            hi, lo = self.clip_hi, self.clip_lo
+            self.n_clip += int(np.count_nonzero(((raw >= hi) | (raw <= lo)).any(axis=1)))
+        self.dc += complex(x.sum())  # pairwise summation in complex64: ample for a mean
         n_frames = m // FLOOR_FRAME
         used = n_frames * FLOOR_FRAME
         if n_frames:
             sums = p[:used].reshape(n_frames, FLOOR_FRAME).sum(1)
-            total_power += float(sums.sum(dtype=np.float64))
-            frame_powers.append(sums / FLOOR_FRAME)
+            self.total_power += float(sums.sum(dtype=np.float64))
+            self.frame_powers.append(sums / FLOOR_FRAME)
         if used < m:
-            total_power += float(p[used:].sum(dtype=np.float64))
-        first = start + carry
-        idx = np.arange(first, start + m - WELCH_FFT + 1, WELCH_FFT * welch_stride) - start
+            self.total_power += float(p[used:].sum(dtype=np.float64))
+        first = start + self.carry
+        step = WELCH_FFT * self.welch_stride
+        idx = np.arange(first, start + m - WELCH_FFT + 1, step) - start
         if len(idx):
-            frames = x[idx[:, None] + np.arange(WELCH_FFT)] * window
+            frames = x[idx[:, None] + np.arange(WELCH_FFT)] * self.window
             spec = np.fft.fft(frames, axis=1)
-            psd_acc += (np.abs(spec) ** 2).sum(0)
-            psd_frames += len(idx)
-            carry = int(idx[-1] + WELCH_FFT * welch_stride - m)
+            self.psd_acc += (np.abs(spec) ** 2).sum(0)
+            self.psd_frames += len(idx)
+            self.carry = int(idx[-1] + step - m)
         else:
-            carry = max(0, carry - m)
-    # Integer chunks were left unscaled (saves a multiply per sample): scale the sums now.
-    sc = _unscaled_factor(capture)
-    total_power *= sc * sc
-    peak *= sc * sc
-    dc *= sc
-    psd_acc *= sc * sc
-    mean_power = total_power / n
-    dc /= n
-    clipped = n_clip / n if capture.datatype.is_integer else None
-    floor = None
-    if frame_powers:
-        fp = np.concatenate(frame_powers)
-        # Robust to bursts filling most of the capture (see iqstat.noise).
-        # Long captures: join frames so the estimator sees at most FLOOR_MAX_FRAMES of them
-        # (its fixed-point iterations scan every value; gaps of a few ms remain resolved).
-        k = max(1, -(-len(fp) // FLOOR_MAX_FRAMES))
-        if k > 1:
-            fp = fp[: len(fp) // k * k].reshape(-1, k).mean(axis=1)
-        floor = sc * sc * noise_floor_lowest_cluster(fp, FLOOR_FRAME * k)
-    freqs = np.fft.fftshift(np.fft.fftfreq(WELCH_FFT, 1.0 / fs))
-    psd = np.zeros(WELCH_FFT)
-    occ_bw = occ_center = None
-    psd_floor = None
-    if psd_frames:
-        # Density scaling: Σ|X|² / (fs·Σw²) so that ∫ psd df = mean power.
-        psd = np.fft.fftshift(psd_acc / psd_frames) / (fs * float((window**2).sum()))
-        # Noise level of the spectrum: the median bin (the signal of a narrowband link holds
-        # far fewer than half the bins of the capture band).
-        psd_floor = float(np.median(psd))
-        occ_bw, occ_center = _occupied_band(freqs, psd, psd_floor, fs, psd_frames)
-    noise_psd = floor / fs if floor else None
-    return CaptureFacts(
-        name=capture.name,
-        datatype=capture.datatype.name,
-        is_complex=capture.is_complex,
-        num_channels=capture.num_channels,
-        channel=capture.channel,
-        sample_rate_hz=fs,
-        center_frequency_hz=capture.center_frequency_hz,
-        samples=n,
-        duration_s=capture.duration_s,
-        start_datetime=capture.start_datetime,
-        segments=len(capture.segments),
-        annotations=len(capture.annotations),
-        mean_power_dbfs=_finite_db(mean_power),
-        peak_power_dbfs=_finite_db(peak),
-        crest_factor_db=_finite_db(peak / mean_power) if mean_power > 0 else None,
-        clipped_fraction=clipped,
-        dc_offset_i=float(dc.real),
-        dc_offset_q=float(dc.imag),
-        dc_offset_dbfs=_finite_db(abs(dc) ** 2),
-        noise_floor_dbfs=_finite_db(floor) if floor else None,
-        noise_psd_dbfs_per_hz=_finite_db(noise_psd) if noise_psd else None,
-        occupied_bandwidth_hz=occ_bw,
-        occupied_center_hz=occ_center,
-        nonfinite_samples=n_bad,
-        leftover_bytes=capture.leftover_bytes,
-        spectrum_freq_hz=tuple(float(f) for f in freqs),
-        spectrum_dbfs_per_hz=tuple(float(v) for v in db(np.maximum(psd, 1e-30))),
-    )
+            self.carry = max(0, self.carry - m)
+
+    def finish(self) -> CaptureFacts:
+        """The facts of the chunks added (all of the capture's, in order)."""
+        capture = self.capture
+        n = capture.n_samples
+        fs = capture.sample_rate_hz
+        # Integer chunks were left unscaled (saves a multiply per sample): scale the sums now.
+        sc = unscaled_factor(capture)
+        total_power = self.total_power * (sc * sc)
+        peak = self.peak * (sc * sc)
+        psd_acc = self.psd_acc * (sc * sc)
+        mean_power = total_power / n
+        dc = self.dc * sc / n
+        clipped = self.n_clip / n if capture.datatype.is_integer else None
+        psd_frames = self.psd_frames
+        window = self.window
+        floor = None
+        if self.frame_powers:
+            fp = np.concatenate(self.frame_powers)
+            # Robust to bursts filling most of the capture (see iqstat.noise).
+            # Long captures: join frames so the estimator sees at most FLOOR_MAX_FRAMES of
+            # them (its fixed-point iterations scan every value; gaps of a few ms remain
+            # resolved).
+            k = max(1, -(-len(fp) // FLOOR_MAX_FRAMES))
+            if k > 1:
+                fp = fp[: len(fp) // k * k].reshape(-1, k).mean(axis=1)
+            floor = sc * sc * noise_floor_lowest_cluster(fp, FLOOR_FRAME * k)
+        freqs = np.fft.fftshift(np.fft.fftfreq(WELCH_FFT, 1.0 / fs))
+        psd = np.zeros(WELCH_FFT)
+        occ_bw = occ_center = None
+        psd_floor = None
+        if psd_frames:
+            # Density scaling: Σ|X|² / (fs·Σw²) so that ∫ psd df = mean power.
+            psd = np.fft.fftshift(psd_acc / psd_frames) / (fs * float((window**2).sum()))
+            # Noise level of the spectrum: the median bin (the signal of a narrowband link holds
+            # far fewer than half the bins of the capture band).
+            psd_floor = float(np.median(psd))
+            occ_bw, occ_center = _occupied_band(freqs, psd, psd_floor, fs, psd_frames)
+        noise_psd = floor / fs if floor else None
+        return CaptureFacts(
+            name=capture.name,
+            datatype=capture.datatype.name,
+            is_complex=capture.is_complex,
+            num_channels=capture.num_channels,
+            channel=capture.channel,
+            sample_rate_hz=fs,
+            center_frequency_hz=capture.center_frequency_hz,
+            samples=n,
+            duration_s=capture.duration_s,
+            start_datetime=capture.start_datetime,
+            segments=len(capture.segments),
+            annotations=len(capture.annotations),
+            mean_power_dbfs=_finite_db(mean_power),
+            peak_power_dbfs=_finite_db(peak),
+            crest_factor_db=_finite_db(peak / mean_power) if mean_power > 0 else None,
+            clipped_fraction=clipped,
+            dc_offset_i=float(dc.real),
+            dc_offset_q=float(dc.imag),
+            dc_offset_dbfs=_finite_db(abs(dc) ** 2),
+            noise_floor_dbfs=_finite_db(floor) if floor else None,
+            noise_psd_dbfs_per_hz=_finite_db(noise_psd) if noise_psd else None,
+            occupied_bandwidth_hz=occ_bw,
+            occupied_center_hz=occ_center,
+            nonfinite_samples=self.n_bad,
+            leftover_bytes=capture.leftover_bytes,
+            spectrum_freq_hz=tuple(float(f) for f in freqs),
+            spectrum_dbfs_per_hz=tuple(float(v) for v in db(np.maximum(psd, 1e-30))),
+        )
 
 
-def _unscaled_factor(capture: Capture) -> float:
+def unscaled_factor(capture: Capture) -> float:
+    """Factor from the samples of :func:`iter_unscaled_chunks` to full scale (a power of 2)."""
     dt = capture.datatype
     return dt.scale if (dt.is_integer and dt.is_complex) else 1.0
 
 
-def _fact_chunks(capture: Capture, chunk_samples: int):
-    """Yield ``(start, samples, n_nonfinite, n_clipped)`` for the facts pass.
+def _clip_levels(dt) -> tuple[float, float, float]:
+    """Stored-value levels at or beyond which a component counts as clipped, and the least
+    |x| (unscaled, offset removed) a sample with such a component has."""
+    if not (dt.is_integer and dt.is_complex):
+        return -np.inf, np.inf, np.inf
+    span = dt.full_scale_max - dt.full_scale_min
+    lo = dt.full_scale_min + (1 - NEAR_FULL_SCALE) * span / 2
+    hi = dt.full_scale_max - (1 - NEAR_FULL_SCALE) * span / 2
+    return lo, hi, min(hi - dt.offset, dt.offset - lo)
 
-    Complex integer recordings are read from their stored components in one pass that both
-    counts samples with a component at or beyond 99 % of full scale and converts to complex64
-    without the final scaling (the caller applies :func:`_unscaled_factor`). Other types use
-    the capture's ordinary conversion (which also counts non-finite values).
+
+def iter_unscaled_chunks(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SAMPLES):
+    """Yield ``(start, samples, n_nonfinite, raw)`` chunks of a whole capture, in order.
+
+    Complex integer recordings are read from their stored components and converted to
+    complex64 without the final scaling (multiply by :func:`unscaled_factor`, a power of two,
+    so that results equal those on scaled samples exactly); ``raw`` is then the stored
+    components, shape (n, 2), for counting clipped samples. Other types use the capture's
+    ordinary conversion (which also counts non-finite values) and ``raw`` is None. The
+    yielded arrays are reused buffers.
     """
     dt = capture.datatype
     if not (dt.is_integer and dt.is_complex):
         for start, x, bad in capture.iter_chunks_counted(chunk_samples):
-            yield start, x, bad, 0
+            yield start, x, bad, None
         return
-    span = dt.full_scale_max - dt.full_scale_min
-    lo = dt.full_scale_min + (1 - NEAR_FULL_SCALE) * span / 2
-    hi = dt.full_scale_max - (1 - NEAR_FULL_SCALE) * span / 2
     buf = np.empty((int(chunk_samples), 2), dtype=np.float32)
     for start, raw in capture.iter_raw_chunks(chunk_samples):
-        m = len(raw)
-        clip = 0
-        # Cheap test first: most chunks of a healthy recording never approach full scale.
-        if raw.max() >= hi or raw.min() <= lo:
-            clip = int(np.count_nonzero(((raw >= hi) | (raw <= lo)).any(axis=1)))
-        b = buf[:m]
+        b = buf[: len(raw)]
         np.copyto(b, raw, casting="unsafe")
         if dt.offset:
             b -= np.float32(dt.offset)
-        yield start, b.reshape(-1).view(np.complex64), 0, clip
+        yield start, b.reshape(-1).view(np.complex64), 0, raw
 
 
 def _occupied_band(freqs, psd, psd_floor, fs, n_frames) -> tuple[float | None, float | None]:
