@@ -34,7 +34,7 @@ from iqstat.estimate import (
     refine_link_across_bursts,
 )
 from iqstat.facts import CaptureFacts, compute_facts
-from iqstat.fit import NoncoherentFit, decide_symbols, fit_da, fit_dd, fit_nda
+from iqstat.fit import NoncoherentFit, decide_symbols, fit_da_many, fit_dd_many, fit_nda_many
 from iqstat.formats.open import open_capture
 from iqstat.patterns import BitCheck, check_known_many, check_prbs_many, prbs_bits
 from iqstat.profile import (
@@ -566,7 +566,12 @@ def _stage_decide(works: list[_Work], ctx: _Context) -> None:
     if m == "ook":
         # The decision threshold depends on the fitted amplitude and noise.
         def first(batch: list[_Work]) -> None:
-            fits = [fit_nda(w.z_all[w.k0 : w.k1], w.gram, modulation=m, gof=False) for w in batch]
+            fits = fit_nda_many(
+                [w.z_all[w.k0 : w.k1] for w in batch],
+                [w.gram for w in batch],
+                modulation=m,
+                gof=False,
+            )
             for w, f in zip(batch, fits, strict=True):
                 w.first_fit = f
 
@@ -708,15 +713,21 @@ def _stage_fit(works: list[_Work], ctx: _Context) -> None:
     def fits(batch: list[_Work]) -> None:
         zs = [w.z_all[w.sel[0] : w.sel[1]] for w in batch]
         grams = [w.gram for w in batch]
-        nda = [fit_nda(z, g, modulation=m) for z, g in zip(zs, grams, strict=True)]
-        dd = [fit_dd(z, g, modulation=m, gof=False) for z, g in zip(zs, grams, strict=True)]
+        nda = fit_nda_many(zs, grams, modulation=m)
+        dd = fit_dd_many(zs, grams, modulation=m, gof=False)
         aided = []
         for w, z in zip(batch, zs, strict=True):
             if w.known is not None:
                 mask = w.known >= 0
                 if mask.sum() >= MIN_FIT_SYMBOLS:
                     aided.append((w, z[mask], w.known[mask]))
-        da = [fit_da(z, s, w.gram, modulation=m, gof=False) for w, z, s in aided]
+        da = fit_da_many(
+            [a[1] for a in aided],
+            [a[2] for a in aided],
+            [a[0].gram for a in aided],
+            modulation=m,
+            gof=False,
+        )
         for w, f, g in zip(batch, nda, dd, strict=True):
             w.fit, w.fit_dd, w.fit_da = f, g, None
         for (w, _, _), f in zip(aided, da, strict=True):
