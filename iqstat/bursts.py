@@ -25,8 +25,14 @@ from numpy.lib.stride_tricks import sliding_window_view
 from scipy import stats
 from scipy.ndimage import median_filter
 
-from iqstat.capture import Capture
+from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture
 from iqstat.errors import MeasurementError, ParameterError
+from iqstat.facts import (
+    CaptureFacts,
+    FactsAccumulator,
+    iter_unscaled_chunks,
+    unscaled_factor,
+)
 from iqstat.noise import (
     noise_floor_lowest_cluster,
     threshold_from_floor,
@@ -331,63 +337,89 @@ def measure_frame_powers(
        Theory, Prentice Hall, 1998, §2.2 [mem].
     """
     L = int(frame_samples)
-    fs = capture.sample_rate_hz
-    n_frames = capture.n_samples // L
-    p_full = np.empty(n_frames, dtype=np.float32)
-    if band_hz is None:
-        bins, p_band, edges = None, p_full, None
-        dof = float(L if capture.is_complex else L / 2)
-    else:
-        bins = _bins_for_band(band_hz, L, fs)
-        p_band = np.empty(n_frames, dtype=np.float32)
-        edges = _band_edges(bins, L, fs)
-        dof = float(bins.size)
-    use_mm = bins is not None and bins.size <= _MATMUL_MAX_BIN_FRACTION * L
-    if use_mm:
-        # Real form of the partial DFT, so that a float32 matrix product (fast, and cheap on a
-        # busy core) gives [Re X_k, Im X_k] from the interleaved [re, im] samples.
-        w = np.exp(-2j * np.pi * np.arange(L)[:, None] * bins[None, :] / L)
-        dft = np.empty((2 * L, 2 * bins.size), dtype=np.float32)
-        dft[0::2, 0::2], dft[1::2, 0::2] = w.real, -w.imag
-        dft[0::2, 1::2], dft[1::2, 1::2] = w.imag, w.real
+    fpass = _FramePowerPass(capture, L, band_hz)
+    sc = unscaled_factor(capture)
+    for _, x, _, _ in iter_unscaled_chunks(capture, int(chunk_samples)):
+        fpass.add(x, sc * sc)
+    return fpass.result()
 
-    fi = 0
 
-    def process(frames: np.ndarray) -> None:
-        nonlocal fi
-        m = frames.shape[0]
-        v = frames.view(np.float32)
-        p_full[fi : fi + m] = np.einsum("ij,ij->i", v, v) / L
-        if bins is not None:
-            if use_mm:
-                vb = v @ dft
-                p_band[fi : fi + m] = np.einsum("ij,ij->i", vb, vb) / (L * L)
+class _FramePowerPass:
+    """Frame powers of :func:`measure_frame_powers`, fed chunk by chunk (any chunk sizes).
+
+    Chunks may be unscaled (integer recordings, see :func:`iqstat.facts.iter_unscaled_chunks`):
+    the powers are multiplied by ``scale2`` (a power of two, so the result equals that of
+    scaled samples exactly).
+    """
+
+    def __init__(self, capture: Capture, L: int, band_hz) -> None:
+        fs = capture.sample_rate_hz
+        self.L = L
+        self.n_frames = capture.n_samples // L
+        self.p_full = np.empty(self.n_frames, dtype=np.float32)
+        if band_hz is None:
+            self.bins, self.p_band, self.edges = None, self.p_full, None
+            self.dof = float(L if capture.is_complex else L / 2)
+        else:
+            self.bins = _bins_for_band(band_hz, L, fs)
+            self.p_band = np.empty(self.n_frames, dtype=np.float32)
+            self.edges = _band_edges(self.bins, L, fs)
+            self.dof = float(self.bins.size)
+        bins = self.bins
+        self.use_mm = bins is not None and bins.size <= _MATMUL_MAX_BIN_FRACTION * L
+        if self.use_mm:
+            # Real form of the partial DFT, so that a float32 matrix product (fast, and cheap
+            # on a busy core) gives [Re X_k, Im X_k] from the interleaved [re, im] samples.
+            w = np.exp(-2j * np.pi * np.arange(L)[:, None] * bins[None, :] / L)
+            dft = np.empty((2 * L, 2 * bins.size), dtype=np.float32)
+            dft[0::2, 0::2], dft[1::2, 0::2] = w.real, -w.imag
+            dft[0::2, 1::2], dft[1::2, 1::2] = w.imag, w.real
+            self.dft = dft
+        self.fi = 0  # frames done
+        self.carry = np.empty(L, dtype=np.complex64)
+        self.n_carry = 0
+
+    def _process(self, frames: np.ndarray, scale2: float) -> None:
+        L, fi = self.L, self.fi
+        m = min(frames.shape[0], self.n_frames - fi)
+        if m <= 0:
+            return
+        v = frames[:m].view(np.float32)
+        pf = np.einsum("ij,ij->i", v, v) / L
+        self.p_full[fi : fi + m] = pf if scale2 == 1.0 else pf * scale2
+        if self.bins is not None:
+            if self.use_mm:
+                vb = v @ self.dft
+                pb = np.einsum("ij,ij->i", vb, vb) / (L * L)
             else:
-                xb = np.fft.fft(frames, axis=1)[:, bins]
-                p_band[fi : fi + m] = np.sum(xb.real**2 + xb.imag**2, axis=1) / (L * L)
-        fi += m
+                xb = np.fft.fft(frames[:m], axis=1)[:, self.bins]
+                pb = np.sum(xb.real**2 + xb.imag**2, axis=1) / (L * L)
+            self.p_band[fi : fi + m] = pb if scale2 == 1.0 else pb * scale2
+        self.fi += m
 
-    carry = np.empty(L, dtype=np.complex64)
-    n_carry = 0
-    for _, x in capture.iter_chunks(chunk_samples, 0, n_frames * L):
+    def add(self, x: np.ndarray, scale2: float = 1.0) -> None:
+        """Add the next chunk of samples (complex64); the powers are scaled by ``scale2``."""
+        L = self.L
         pos = 0
-        if n_carry:
-            take = min(L - n_carry, x.size)
-            carry[n_carry : n_carry + take] = x[:take]
-            n_carry += take
+        if self.n_carry:
+            take = min(L - self.n_carry, x.size)
+            self.carry[self.n_carry : self.n_carry + take] = x[:take]
+            self.n_carry += take
             pos = take
-            if n_carry < L:
-                continue
-            process(carry[None, :])
-            n_carry = 0
+            if self.n_carry < L:
+                return
+            self._process(self.carry[None, :], scale2)
+            self.n_carry = 0
         nf = (x.size - pos) // L
         if nf:
-            process(x[pos : pos + nf * L].reshape(nf, L))
+            self._process(x[pos : pos + nf * L].reshape(nf, L), scale2)
         rest = x.size - pos - nf * L
         if rest:
-            carry[:rest] = x[pos + nf * L :]
-            n_carry = rest
-    return FramePowers(p_full, p_band, dof, edges, L)
+            self.carry[:rest] = x[pos + nf * L :]
+            self.n_carry = rest
+
+    def result(self) -> FramePowers:
+        return FramePowers(self.p_full, self.p_band, self.dof, self.edges, self.L)
 
 
 # --------------------------------------------------------------------------------------------
@@ -858,6 +890,13 @@ def _check_nonneg(name: str, value) -> float:
     return v
 
 
+def _is_chunk_size(value) -> bool:
+    try:
+        return int(value) == value and int(value) >= 1
+    except (TypeError, ValueError):
+        return False
+
+
 def _split_long_groups(groups: list[_Group], p: np.ndarray, expected: float) -> list[_Group]:
     """Split groups much longer than the expected burst at their quietest stretches.
 
@@ -956,6 +995,82 @@ def detect_bursts(
     6. noise_var is the mean full-band power of the gap frames; the noise PSD the median over
        the band's bins (DC excluded) of a Hann-window periodogram of up to 1024 gap frames.
     """
+    return _detect_bursts(
+        capture,
+        None,
+        min_burst_s=min_burst_s,
+        merge_gap_s=merge_gap_s,
+        pfa=pfa,
+        frame_samples=frame_samples,
+        band_hz=band_hz,
+        chunk_samples=chunk_samples,
+        expected_burst_s=expected_burst_s,
+        signal_bandwidth_hz=signal_bandwidth_hz,
+    )
+
+
+def survey_capture(
+    capture: Capture,
+    *,
+    min_burst_s: float | None = None,
+    merge_gap_s: float | None = None,
+    pfa: float = 1e-6,
+    frame_samples: int | None = None,
+    band_hz: tuple[float, float] | None = None,
+    chunk_samples: int = DEFAULT_CHUNK_SAMPLES,
+    expected_burst_s: float | None = None,
+    signal_bandwidth_hz: float | None = None,
+) -> tuple[CaptureFacts, BurstDetection]:
+    """Capture facts and burst detection from one streaming pass over the samples.
+
+    Parameters
+    ----------
+    capture : Capture
+    min_burst_s, merge_gap_s, pfa, frame_samples, band_hz, expected_burst_s, signal_bandwidth_hz
+        As for :func:`detect_bursts`.
+    chunk_samples : int
+        Samples per read of the streaming pass (both results are those of that chunk size).
+
+    Returns
+    -------
+    (CaptureFacts, BurstDetection)
+        Equal to ``compute_facts(capture, chunk_samples)`` and ``detect_bursts(capture, ...,
+        chunk_samples=chunk_samples)``; the samples are read once for both (plus the band
+        survey's blocks and the bursts' edges, which detection reads back).
+    """
+    if isinstance(capture, Capture) and _is_chunk_size(chunk_samples):
+        facts = FactsAccumulator(capture, int(chunk_samples))
+    else:
+        facts = None  # _detect_bursts raises on the bad parameter
+    detection = _detect_bursts(
+        capture,
+        facts,
+        min_burst_s=min_burst_s,
+        merge_gap_s=merge_gap_s,
+        pfa=pfa,
+        frame_samples=frame_samples,
+        band_hz=band_hz,
+        chunk_samples=chunk_samples,
+        expected_burst_s=expected_burst_s,
+        signal_bandwidth_hz=signal_bandwidth_hz,
+    )
+    return facts.finish(), detection
+
+
+def _detect_bursts(
+    capture: Capture,
+    facts: FactsAccumulator | None,
+    *,
+    min_burst_s: float | None,
+    merge_gap_s: float | None,
+    pfa: float,
+    frame_samples: int | None,
+    band_hz: tuple[float, float] | None,
+    chunk_samples: int,
+    expected_burst_s: float | None,
+    signal_bandwidth_hz: float | None,
+) -> BurstDetection:
+    """:func:`detect_bursts`; the streaming pass also feeds ``facts`` when given."""
     if not isinstance(capture, Capture):
         raise ParameterError(f"capture must be an iqstat Capture, got {type(capture).__name__}")
     fs = capture.sample_rate_hz
@@ -969,7 +1084,7 @@ def detect_bursts(
                 f"frame_samples {frame_samples!r} must be an integer >= 16 (e.g. 256)"
             )
         L = int(frame_samples)
-    if int(chunk_samples) != chunk_samples or int(chunk_samples) < 1:
+    if not _is_chunk_size(chunk_samples):
         raise ParameterError(f"chunk_samples {chunk_samples!r} must be a positive integer")
     min_burst = 2 * L if min_burst_s is None else _check_nonneg("min_burst_s", min_burst_s) * fs
     merge_gap = L if merge_gap_s is None else _check_nonneg("merge_gap_s", merge_gap_s) * fs
@@ -998,9 +1113,14 @@ def detect_bursts(
                 band = (max(mid - half, -0.5 * fs), min(mid + half, 0.5 * fs - fs / L))
                 bins = _bins_for_band(band, L, fs)
     band_edges = None if bins is None else _band_edges(bins, L, fs)
-    fp = measure_frame_powers(
-        capture, frame_samples=L, band_hz=band_edges, chunk_samples=int(chunk_samples)
-    )
+    # The one streaming pass: frame powers, and the capture's facts when asked for.
+    fpass = _FramePowerPass(capture, L, band_edges)
+    sc2 = unscaled_factor(capture) ** 2
+    for start, x, bad, raw in iter_unscaled_chunks(capture, int(chunk_samples)):
+        if facts is not None:
+            facts.add(start, x, bad, raw)
+        fpass.add(x, sc2)
+    fp = fpass.result()
     p = fp.band.astype(np.float64)
     dof = fp.band_dof
 
