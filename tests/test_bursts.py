@@ -19,9 +19,12 @@ from iqstat.bursts import (
     BurstDetection,
     detect_bursts,
     measure_frame_powers,
+    survey_capture,
 )
 from iqstat.capture import Capture
 from iqstat.errors import IqstatError, MeasurementError, ParameterError
+from iqstat.facts import compute_facts
+from iqstat.formats.open import open_capture
 from iqstat.noise import noise_floor_from_frames, noise_floor_lowest_cluster, threshold_from_floor
 from iqstat.synth import modulate
 
@@ -401,3 +404,110 @@ def test_lowest_cluster_floor_with_bursts_filling_most_frames():
     p = rng.gamma(dof, level / dof)
     assert noise_floor_lowest_cluster(p, dof) == pytest.approx(1.0, abs=0.03)
     assert noise_floor_from_frames(p, dof, 0.1) > 1.1  # the quantile estimator fails here
+
+
+# ------------------------------------------------------------------------------------------
+# One pass for facts and detection; batched edge refinement
+# ------------------------------------------------------------------------------------------
+def _write_ci16(path, x: np.ndarray) -> None:
+    comps = np.empty(2 * x.size)
+    comps[0::2], comps[1::2] = x.real, x.imag
+    np.clip(np.rint(comps * 32768), -32768, 32767).astype("<i2").tofile(path)
+
+
+@pytest.mark.parametrize("stored", ["array", "ci16"])
+def test_survey_capture_equals_facts_and_detection_separately(tmp_path, stored):
+    # The one streaming pass must give exactly what the two separate passes give (same
+    # chunks, same arithmetic): project requirement, no external reference needed for
+    # equality. Chunks of 100 003 samples are not a multiple of any frame length.
+    rng = np.random.default_rng(97)
+    cap, _ = _capture_with_bursts(rng, 400_000, [(30_000, 6), (150_000, 15), (300_000, 25)])
+    if stored == "ci16":
+        _write_ci16(tmp_path / "s.cs16", cap.read())
+        cap = open_capture(tmp_path / "s.cs16", datatype="ci16_le", sample_rate_hz=FS_HZ)
+    for chunk in (1 << 20, 100_003):
+        facts, det = survey_capture(cap, chunk_samples=chunk, expected_burst_s=N_SYM / RS_HZ)
+        assert len(det.bursts) == 3
+        assert facts.to_dict() == compute_facts(cap, chunk_samples=chunk).to_dict()
+        assert (
+            det.to_dict()
+            == detect_bursts(cap, chunk_samples=chunk, expected_burst_s=N_SYM / RS_HZ).to_dict()
+        )
+
+
+def test_survey_capture_rejects_bad_parameters():
+    cap = Capture.from_array(np.zeros(10_000, np.complex64), FS_HZ)
+    with pytest.raises(ParameterError, match="chunk_samples"):
+        survey_capture(cap, chunk_samples="many")
+    with pytest.raises(ParameterError, match="capture must be"):
+        survey_capture(np.zeros(10))
+
+
+def test_batched_refinement_equals_one_group_at_a_time():
+    # Edges refined for all groups in one batch must equal those refined one group at a
+    # time: bursts of different lengths and SNRs, one at the very start of the capture, one
+    # running into its end, and a degenerate group on noise alone (no step: its coarse
+    # frame extent is kept) in the middle, which must not disturb the others.
+    from iqstat.bursts import _Group, _refine_many
+
+    rng = np.random.default_rng(59)
+    n = 600_000
+    x = _noise(rng, n)
+    spans = [(0, 120, 25), (40_000, 560, 4), (150_000, 200, 12), (400_000, 800, 8)]
+    for start, n_sym, ebn0_db in spans:
+        amp = math.sqrt(10 ** (ebn0_db / 10) * NOISE_VAR * RS_HZ / FS_HZ)
+        s = modulate(
+            rng.integers(0, 2, n_sym),
+            modulation="2fsk",
+            sample_rate_hz=FS_HZ,
+            symbol_rate_hz=RS_HZ,
+            tone_spacing_hz=SPACING_HZ,
+            cfo_hz=CFO_HZ,
+            amplitude=amp,
+        )
+        x[start : start + s.size] += s
+    amp = math.sqrt(10 ** (15 / 10) * NOISE_VAR * RS_HZ / FS_HZ)
+    tail = modulate(
+        rng.integers(0, 2, 400),
+        modulation="2fsk",
+        sample_rate_hz=FS_HZ,
+        symbol_rate_hz=RS_HZ,
+        tone_spacing_hz=SPACING_HZ,
+        cfo_hz=CFO_HZ,
+        amplitude=amp,
+    )
+    x[n - 5_000 :] += tail[:5_000]  # cut off by the end of the capture
+    L = 256
+    band = (CFO_HZ - 8e3, CFO_HZ + 8e3)
+    cap = Capture.from_array(x.astype(np.complex64), FS_HZ)
+    fp = measure_frame_powers(cap, frame_samples=L, band_hz=band)
+    p = fp.band.astype(np.float64)
+    floor = noise_floor_lowest_cluster(p, fp.band_dof)
+    n_frames = p.size
+
+    def group(a: int, b: int) -> _Group:
+        return _Group(a, b, max(a - 3, 0), a + 3, b - 3, min(b + 3, p.size))
+
+    sizes = [(s, s + int(n_sym * SPS)) for s, n_sym, _ in spans]
+    groups = [group(a // L, -(-b // L)) for a, b in sizes]
+    groups.insert(2, group(1000, 1040))  # noise only
+    groups.append(
+        _Group(n_frames - 20, n_frames, n_frames - 23, n_frames - 17, n_frames - 2, n_frames)
+    )
+    for band_hz in (fp.band_hz, None):
+        e_all: dict = {}
+        together = _refine_many(cap, groups, L, band_hz, p, floor, fp.band_dof, e_all)
+        e_one: dict = {}
+        alone = [
+            _refine_many(cap, [g], L, band_hz, p, floor, fp.band_dof, e_one)[0] for g in groups
+        ]
+        assert together == alone
+        assert e_all.keys() == e_one.keys()
+        for k, v in e_all.items():
+            assert v == pytest.approx(e_one[k], rel=1e-12)
+        # The noise-only group keeps its coarse extent; the real bursts' edges are found
+        # within a few symbols of the truth (spread: test_three_bursts_found_with_edges).
+        assert together[2] == (1000 * L, 1040 * L)
+        for (a, b), (t0, t1) in zip(together[:2] + together[3:5], sizes, strict=True):
+            assert abs(a - t0) < 20 * SPS and abs(b - t1) < 20 * SPS
+        assert together[-1][1] == n

@@ -8,6 +8,7 @@ statistical spreads of sample means for DC and power.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from scipy import signal
 
 from iqstat.capture import Capture
@@ -119,3 +120,26 @@ def test_integer_and_float_recordings_give_the_same_figures(tmp_path, rng):
     np.testing.assert_allclose(a.spectrum_dbfs_per_hz, b.spectrum_dbfs_per_hz, atol=1e-3)
     # A continuous tone is part of every frame: the time-domain floor holds noise + tone.
     assert abs(a.noise_floor_dbfs - 10 * np.log10(1e-3 + 1e-4)) < 0.1
+
+
+@pytest.mark.parametrize("datatype, scale, offset", [("ci16_le", 32768, 0), ("cu8", 128, 128)])
+def test_clipping_counted_in_every_chunk_that_has_it(tmp_path, rng, datatype, scale, offset):
+    """Samples with a component at ≥ 99 % of full scale, counted directly on the stored
+    values (definition of the count, common practice, no source) in chunks far from full
+    scale and in chunks holding only one or a few clipped samples."""
+    n = 100_000
+    x = _noise(rng, n, 0.001)
+    x[[5, 40_000, 40_001, 99_999]] = [1.2, -1.2j, 0.995 + 0j, -0.999 - 0.1j]
+    comps = np.empty(2 * n)
+    comps[0::2], comps[1::2] = x.real, x.imag
+    lo, hi = (-scale, scale - 1) if offset == 0 else (0, 2 * scale - 1)
+    q = np.clip(np.rint(comps * scale) + offset, lo, hi)
+    q.astype("<i2" if datatype == "ci16_le" else "u1").tofile(tmp_path / "c.bin")
+    span = hi - lo
+    clipped = (q >= hi - 0.005 * span) | (q <= lo + 0.005 * span)
+    expected = int(np.count_nonzero(clipped.reshape(-1, 2).any(axis=1)))
+    assert expected == 4
+    cap = open_capture(tmp_path / "c.bin", datatype=datatype, sample_rate_hz=FS)
+    for chunk in (1 << 12, 30_001, 1 << 20):
+        f = compute_facts(cap, chunk_samples=chunk)
+        assert f.clipped_fraction == expected / n, chunk
