@@ -245,11 +245,9 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
         return None
     starts = np.round(np.linspace(0, n_frames - bf, n_blk)).astype(np.int64)
     w = np.hanning(L + 2)[1:-1].astype(np.float32)  # no zero end points
-    spec = np.empty((n_blk, L))
-    for i, s in enumerate(starts):
-        x = capture.read(int(s) * L, bf * L).reshape(bf, L)
-        X = np.fft.fft(x * w, axis=1)
-        spec[i] = np.mean(X.real**2 + X.imag**2, axis=0)
+    x = _read_windows(capture, starts * L, bf * L).reshape(n_blk, bf, L)
+    X = np.fft.fft(x * w, axis=2)
+    spec = np.mean(X.real**2 + X.imag**2, axis=1).astype(np.float64)  # as float32 means
     spec = np.fft.fftshift(spec, axes=1)
     q = 0.1
     # Hann-windowed bins of white noise are complex Gaussian, so a block mean over bf frames is
@@ -455,17 +453,36 @@ class _Group:
     stop_hi: int
 
 
-def _split_gap(p: np.ndarray, dof: float, floor: float, a, b) -> bool:
+class _Prefix:
+    """Means of frame powers over frame ranges from prefix sums (O(1) per mean).
+
+    The grouping asks for thousands of short means; one numpy call each cost more than the
+    rest of the grouping. Ranges are clipped to [0, n) like slices.
+    """
+
+    def __init__(self, p: np.ndarray) -> None:
+        self.cs = np.concatenate(([0.0], np.cumsum(p, dtype=np.float64))).tolist()
+        self.size = p.size
+
+    def count(self, a: int, b: int) -> int:
+        return max(min(b, self.size) - max(a, 0), 0)
+
+    def mean(self, a: int, b: int) -> float:
+        a, b = max(a, 0), min(b, self.size)
+        return (self.cs[b] - self.cs[a]) / (b - a) if b > a else math.nan
+
+
+def _split_gap(p: _Prefix, dof: float, floor: float, a, b) -> bool:
     """Whether the frames between pieces a and b are decisively noise rather than burst."""
-    gap = p[a[1] : b[0]]
-    if gap.size == 0 or floor <= 0:
+    n_gap = p.count(a[1], b[0])
+    if n_gap == 0 or floor <= 0:
         return False
-    s = min(p[a[0] : a[1]].mean(), p[b[0] : b[1]].mean()) - floor
+    s = min(p.mean(a[0], a[1]), p.mean(b[0], b[1])) - floor
     if s <= 0:
         return False
-    n, x = floor, float(gap.mean())
+    n, x = floor, p.mean(a[1], b[0])
     # log p(gap | noise N) − log p(gap | burst N + S) for a Gamma(G, ·/G) mean, G = n_gap·dof
-    llr = gap.size * dof * (math.log((n + s) / n) - x / n + x / (n + s))
+    llr = n_gap * dof * (math.log((n + s) / n) - x / n + x / (n + s))
     return llr > _SPLIT_LOG_LR
 
 
@@ -474,18 +491,18 @@ def reach_of(cluster) -> int:
     return max(iv[1] for iv in cluster)
 
 
-def _part_of_burst(p: np.ndarray, dof: float, floor: float, level: float, a: int, b: int) -> bool:
+def _part_of_burst(p: _Prefix, dof: float, floor: float, level: float, a: int, b: int) -> bool:
     """Whether frames [a, b) belong to a burst of mean power ``level`` next to them.
 
     Their mean must be clearly above the noise (3 σ) and at least half-way from the floor
     to the burst's level: a noise bump beside a strong burst is not part of it, the weak
     fringe of a burst that only a longer average saw is.
     """
-    seg = p[max(a, 0) : b]
-    if seg.size == 0:
+    count = p.count(a, b)
+    if count == 0:
         return False
-    mean = float(seg.mean())
-    return mean > floor * (1.0 + 3.0 / math.sqrt(seg.size * dof)) and mean > 0.5 * (floor + level)
+    mean = p.mean(a, b)
+    return mean > floor * (1.0 + 3.0 / math.sqrt(count * dof)) and mean > 0.5 * (floor + level)
 
 
 class _Intervals:
@@ -513,7 +530,7 @@ class _Intervals:
         return self.items[i0:i1] if i0 < i1 else []
 
 
-def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int]]:
+def _split_by_scale(p: _Prefix, dof, floor, by_scale, scales_desc, a, b) -> list[list[int]]:
     """Pieces ``[start, stop, m_first, m_last]`` of the frames [a, b), coarse to fine."""
     if not scales_desc:
         return []
@@ -552,7 +569,7 @@ def _split_by_scale(p, dof, floor, by_scale, scales_desc, a, b) -> list[list[int
             f = finer[0]
             # The coarse group's own mean: a short fine piece of a weak burst is a lucky,
             # inflated sample of its level.
-            level = float(p[g[0] : g[1]].mean())
+            level = p.mean(g[0], g[1])
             ext_lo = f[0] > g[0] + m and _part_of_burst(p, dof, floor, level, g[0], f[0])
             ext_hi = f[1] < g[1] - m and _part_of_burst(p, dof, floor, level, f[1], g[1])
             out.append(
@@ -576,6 +593,7 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
     allint = [(int(a), int(b), m) for m, r in per_scale for a, b in r]
     if not allint:
         return []
+    pm = _Prefix(p)
     # Clusters: connected components of the union of all intervals.
     order = sorted(allint)
     clusters, cur, reach = [], [order[0]], order[0][1]
@@ -595,7 +613,7 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
         # sees it whole gives its edges. (Taking the finest fragments everywhere would let a
         # weak burst's dips mask the true gaps, and bursts would merge.)
         by_scale = {m: _Intervals((a, b) for a, b, mm in cl if mm == m) for m in scales}
-        merged = _split_by_scale(p, dof, floor, by_scale, scales[::-1], cl[0][0], reach_of(cl))
+        merged = _split_by_scale(pm, dof, floor, by_scale, scales[::-1], cl[0][0], reach_of(cl))
         # A piece found at smoothing length m may start up to m frames before the true edge.
         for i, (a, b, m_first, m_last) in enumerate(merged):
             left = merged[i - 1][1] if i else 0
