@@ -35,7 +35,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass, field, fields, replace
 from functools import cached_property
 from typing import Literal
 
@@ -135,7 +135,7 @@ class LinkEstimate:
 
     def to_dict(self) -> dict:
         """Plain JSON-ready dict of the fields plus the derived properties."""
-        d = asdict(self)
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
         d["tone_freqs_hz"] = [float(f) for f in self.tone_freqs_hz]
         d["quality"] = dict(self.quality)
         d["modulation_index"] = self.modulation_index

@@ -30,7 +30,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass, replace
+from dataclasses import dataclass, fields, replace
 from typing import Literal
 
 import numpy as np
@@ -177,7 +177,7 @@ class NoncoherentFit:
     def to_dict(self) -> dict:
         """JSON-safe dictionary: floats or None (never NaN), lists for tuples."""
         out = {}
-        for key, value in asdict(self).items():
+        for key, value in {f.name: getattr(self, f.name) for f in fields(self)}.items():
             if isinstance(value, (tuple, list)):
                 items = [_finite_or_none(v) for v in value]
                 out[key] = None if any(v is None for v in items) else items

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass, fields
 from functools import lru_cache
 from typing import Literal
 
@@ -216,7 +216,7 @@ class BitCheck:
     message: str
 
     def to_dict(self) -> dict:
-        d = asdict(self)
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
         d["ber_ci95"] = None if self.ber_ci95 is None else list(self.ber_ci95)
         return d
 
