@@ -660,7 +660,7 @@ def _read_windows(capture: Capture, starts: np.ndarray, width: int) -> np.ndarra
     sliding-window view.
     """
     starts = np.asarray(starts, dtype=np.int64)
-    out = np.zeros((starts.size, width), dtype=np.complex64)
+    out = np.empty((starts.size, width), dtype=np.complex64)
     if starts.size == 0:
         return out
     new = np.ones(starts.size, dtype=bool)
@@ -675,7 +675,10 @@ def _read_windows(capture: Capture, starts: np.ndarray, width: int) -> np.ndarra
         x = capture.read(lo, min(hi, n) - lo)
         if x.size < hi - lo:
             x = np.concatenate((x, np.zeros(hi - lo - x.size, dtype=np.complex64)))
-        out[i0:i1] = sliding_window_view(x, width)[starts[i0:i1] - lo]
+        if i1 - i0 == 1:
+            out[i0] = x[:width]
+        else:
+            out[i0:i1] = sliding_window_view(x, width)[starts[i0:i1] - lo]
     return out
 
 
