@@ -12,8 +12,9 @@ import time
 
 import numpy as np
 
-from iqstat.bursts import detect_bursts
+from iqstat.bursts import detect_bursts, survey_capture
 from iqstat.capture import Capture
+from iqstat.facts import compute_facts
 from iqstat.synth import modulate
 
 FS_HZ = 250e3
@@ -61,10 +62,15 @@ def main() -> None:
     cap = make_capture()
     t_bare = best_of(lambda: bare_pass(cap))
     t_det = best_of(lambda: detect_bursts(cap))
+    t_facts = best_of(lambda: compute_facts(cap))
+    t_one = best_of(lambda: survey_capture(cap))
     det = detect_bursts(cap)
     print(f"bare pass (read + |x|^2): {N_SAMPLES / t_bare / 1e6:8.1f} M samples/s")
     print(f"detect_bursts:            {N_SAMPLES / t_det / 1e6:8.1f} M samples/s")
     print(f"ratio detect/bare:        {t_det / t_bare:8.2f}")
+    print(f"compute_facts:            {N_SAMPLES / t_facts / 1e6:8.1f} M samples/s")
+    print(f"survey_capture (both):    {N_SAMPLES / t_one / 1e6:8.1f} M samples/s")
+    print(f"ratio survey/bare:        {t_one / t_bare:8.2f}")
     print(f"{len(det.bursts)} bursts, band {det.band_hz}, {det.message}")
 
 
