@@ -23,6 +23,7 @@ from iqstat.correlate import (
     interval_energies,
     mix_cumulative,
     mix_cumulative_many,
+    mix_many,
     template_gram,
 )
 from iqstat.errors import IqstatError, MeasurementError
@@ -49,10 +50,12 @@ from iqstat.profile import (
 from iqstat.results import BurstResult, LinkSummary, MeasurementReport
 from iqstat.summary import profile_mismatch, summarise
 from iqstat.sync import (
+    STRONG_LINE_DB,
     FrameAlignment,
     SymbolTiming,
     align_frame_many,
     recover_timing_many,
+    recover_timing_mixed_many,
     refine_timing_known,
 )
 from iqstat.units import db
@@ -70,8 +73,9 @@ LOOSE_HEADER_ERROR_FRACTION = 0.3
 HEADER_CONSISTENCY_P = 1e-5
 #: Below this symbol-rate line SNR [dB] the timing phase is searched blind instead.
 BLIND_SEARCH_LINE_DB = 10.0
-#: Below this line SNR [dB] the timing is refined on the known symbols of a found frame.
-DA_REFINE_LINE_DB = 20.0
+#: Below this line SNR [dB] the timing is refined on the known symbols of a found frame (the
+#: bursts timed again at full rate, see :func:`_stage_timing`).
+DA_REFINE_LINE_DB = STRONG_LINE_DB
 #: Candidates per pass of a timing search.
 TIMING_SEARCH_POINTS = 41
 #: 4-FSK tones whose |ρ| stay below this are treated as orthogonal by the theory.
@@ -492,21 +496,42 @@ def _stage_link(batch: list[_Work], ctx: _Context) -> None:
 
 
 def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
-    """Tone mixing, symbol timing (searched blind where the symbol-rate line is weak), bank."""
+    """Tone mixing, symbol timing (searched blind where the symbol-rate line is weak), bank.
+
+    Every burst is timed on the decimated feature first; where its symbol-rate line is below
+    STRONG_LINE_DB the burst is timed again on the full-rate feature with the matched-energy
+    check (and its running sums serve the blind search and the known-symbol refinement).
+    """
     fs = ctx.fs
     xs = [w.x for w in batch]
     tones = [w.link.tone_freqs_hz for w in batch]
-    cums = mix_cumulative_many(xs, fs, tones)
-    timings = recover_timing_many(
-        xs, fs, [w.link.symbol_rate_hz for w in batch], tones, cumulatives=cums, errors="return"
-    )
+    mixed = mix_many(xs, fs, tones)
+    timings = recover_timing_mixed_many(mixed, fs, ctx.symbol_rate_hz)
+    again = [
+        i
+        for i, t in enumerate(timings)
+        if t is None or (isinstance(t, SymbolTiming) and t.quality["line_snr_db"] < STRONG_LINE_DB)
+    ]
+    cums: list[np.ndarray | None] = [None] * len(batch)
+    if again:
+        sub = mix_cumulative_many([xs[i] for i in again], fs, [tones[i] for i in again])
+        full = recover_timing_many(
+            [xs[i] for i in again],
+            fs,
+            ctx.symbol_rate_hz,
+            [tones[i] for i in again],
+            cumulatives=sub,
+            errors="return",
+        )
+        for i, c, t in zip(again, sub, full, strict=True):
+            cums[i], timings[i] = c, t
     sps = fs / ctx.symbol_rate_hz
     edges = [
         (w.burst.start_sample - w.x0 - 0.5 * sps, w.burst.stop_sample - w.x0 + 0.5 * sps)
         for w in batch
     ]
     for i, (w, timing) in enumerate(zip(batch, timings, strict=True)):
-        if isinstance(timing, MeasurementError):
+        if isinstance(timing, MeasurementError) or cums[i] is None:
             continue
         if timing.quality.get("line_snr_db", np.inf) < BLIND_SEARCH_LINE_DB:
             # No usable symbol-rate line (weak burst, or h = 1/2 whose feature line is faint):
@@ -521,17 +546,25 @@ def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
                 None,
                 np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
             )
-    ok = [i for i, t in enumerate(timings) if not isinstance(t, MeasurementError)]
-    zs = correlate_symbols_many(
-        [xs[i] for i in ok],
-        fs,
-        [tones[i] for i in ok],
-        [timings[i].t0_samples for i in ok],
-        [timings[i].period_samples for i in ok],
-        [timings[i].n_symbols for i in ok],
-        cumulatives=[cums[i] for i in ok],
-    )
-    z_of = dict(zip(ok, zs, strict=True))
+    z_of = {}
+    for group in (
+        [i for i in range(len(batch)) if cums[i] is not None],
+        [i for i in range(len(batch)) if cums[i] is None],
+    ):
+        ok = [i for i in group if not isinstance(timings[i], MeasurementError)]
+        if not ok:
+            continue
+        zs = correlate_symbols_many(
+            [xs[i] for i in ok],
+            fs,
+            [tones[i] for i in ok],
+            [timings[i].t0_samples for i in ok],
+            [timings[i].period_samples for i in ok],
+            [timings[i].n_symbols for i in ok],
+            cumulatives=[cums[i] for i in ok] if cums[ok[0]] is not None else None,
+            mixed=[mixed[i] for i in ok] if cums[ok[0]] is None else None,
+        )
+        z_of.update(zip(ok, zs, strict=True))
     for i, w in enumerate(batch):
         timing = timings[i]
         if isinstance(timing, MeasurementError):
