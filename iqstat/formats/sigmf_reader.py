@@ -3,7 +3,7 @@
 Metadata is parsed with ``json`` (so syntax errors can name their line and column) and checked
 with the ``sigmf`` library's validator plus our own stricter checks (the library accepts
 datatypes such as ``cf32`` that the specification does not). Samples are never read by the
-library: the :class:`~iqstat.capture.Capture` maps them with ``numpy.memmap``, from the data file
+library: the :class:`~iqstat.capture.Capture` reads them window by window, from the data file
 or in place from inside a ``.sigmf`` tar archive.
 
 References
