@@ -15,7 +15,7 @@ import scipy.fft
 from scipy import stats
 
 from iqstat import theory
-from iqstat.bursts import Burst, BurstDetection, detect_bursts
+from iqstat.bursts import Burst, BurstDetection, detect_bursts, survey_capture
 from iqstat.capture import Capture
 from iqstat.correlate import (
     correlate_symbols,
@@ -1054,7 +1054,6 @@ def measure_capture(
         raise MeasurementError(
             "this recording is real-valued; Eb/N0 measurement needs complex baseband (I/Q) samples"
         )
-    facts = compute_facts(capture) if facts is None else facts
     layout = frame_layout(profile)
     if detection is None:
         merge_gap_s = None
@@ -1070,12 +1069,15 @@ def measure_capture(
         if profile.symbol_rate_hz:
             spread = (profile.n_tones - 1) * (profile.tone_spacing_hz or 0.0)
             bandwidth = spread + 2.0 * profile.symbol_rate_hz
-        detection = detect_bursts(
-            capture,
-            merge_gap_s=merge_gap_s,
-            expected_burst_s=expected_s,
-            signal_bandwidth_hz=bandwidth,
+        options = dict(
+            merge_gap_s=merge_gap_s, expected_burst_s=expected_s, signal_bandwidth_hz=bandwidth
         )
+        if facts is None:
+            # One pass over the samples gives both.
+            facts, detection = survey_capture(capture, **options)
+        else:
+            detection = detect_bursts(capture, **options)
+    facts = compute_facts(capture) if facts is None else facts
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))
