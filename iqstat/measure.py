@@ -430,6 +430,7 @@ class _Work:
     fit: NoncoherentFit | None = None
     fit_da: NoncoherentFit | None = None
     fit_dd: NoncoherentFit | None = None
+    band: tuple[float, float] = (0.0, 0.0)
     available_ebn0_db: float | None = None
     predicted_ber: float | None = None
 
@@ -483,6 +484,7 @@ def _stage_link(batch: list[_Work], ctx: _Context) -> None:
         modulation=ctx.profile.modulation,
         symbol_rate_hz=ctx.symbol_rate_hz,
         tone_spacing_hz=ctx.tone_spacing_hz,
+        band_margin_symbols=AVAILABLE_BAND_SYMBOLS,
     )
     for w, est in zip(batch, links, strict=True):
         if isinstance(est, MeasurementError):
@@ -492,7 +494,10 @@ def _stage_link(batch: list[_Work], ctx: _Context) -> None:
                 "carrier and rates could not be estimated on this burst",
             )
         else:
-            w.link = _as_estimated(est, ctx.profile)
+            # The in-band energy is for the available Eb/N0, not part of the link's report.
+            quality = dict(est.quality)
+            w.band = (quality.pop("band_energy"), quality.pop("band_width_hz"))
+            w.link = _as_estimated(dataclasses.replace(est, quality=quality), ctx.profile)
 
 
 def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
@@ -770,14 +775,15 @@ def _stage_fit(works: list[_Work], ctx: _Context) -> None:
 
 
 def _stage_available(batch: list[_Work], ctx: _Context) -> None:
-    avail = _available_ebn0_db(
-        [w.x[int(w.burst.start_sample - w.x0) : int(w.burst.stop_sample - w.x0)] for w in batch],
-        ctx.detection,
-        [w.link for w in batch],
-        ctx.profile.bits_per_symbol,
-    )
-    for w, a in zip(batch, avail, strict=True):
-        w.available_ebn0_db = a
+    bits = ctx.profile.bits_per_symbol
+    for w in batch:
+        w.available_ebn0_db = _available_ebn0_db(
+            *w.band,
+            len(w.x),
+            w.burst.stop_sample - w.burst.start_sample,
+            ctx.detection.noise_psd_db_per_hz,
+            w.link.symbol_rate_hz * bits,
+        )
 
 
 def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
@@ -918,48 +924,30 @@ def _batches(bursts: Sequence[Burst], margin: int) -> list[list[Burst]]:
 
 
 def _available_ebn0_db(
-    segments: Sequence[np.ndarray],
-    detection: BurstDetection,
-    links: Sequence[LinkEstimate],
-    bits_per_symbol: int,
-) -> list[float | None]:
+    band_energy: float,
+    band_width_hz: float,
+    n_window: int,
+    n_burst: int,
+    noise_psd_db_per_hz: float,
+    bit_rate_hz: float,
+) -> float | None:
     """Eb/N0 from power alone: (burst power − noise power) / (N0 · bit rate) (METHODS §9).
 
-    One value per burst segment (its detected samples). Measured in the signal's band (outer
-    tones ± AVAILABLE_BAND_SYMBOLS symbol rates), not the full capture band: at 52 samples per
-    bit the full-band SNR is ~17 dB below Eb/N0, and a 1 % error of the gap noise would move
-    the result by half a dB. The segments of a batch share one FFT length (zero padding).
+    ``band_energy`` is Σ|x_band|² over the burst's read window of ``n_window`` samples, the
+    band being the outer tones ± AVAILABLE_BAND_SYMBOLS symbol rates (``band_width_hz`` wide;
+    from :func:`~iqstat.estimate.estimate_link_many`); the burst holds ``n_burst`` of those
+    samples. The noise the band holds over the whole window, N0·B·n_window, is subtracted.
+    Measured in the band, not the full capture band: at 52 samples per bit the full-band SNR
+    is ~17 dB below Eb/N0, and a 1 % error of the gap noise would move the result by half a
+    dB. None when the noise PSD is unknown or the band holds no more than noise.
     """
-    out: list[float | None] = [None] * len(segments)
-    n0 = 10.0 ** (detection.noise_psd_db_per_hz / 10.0)
-    use = [i for i, x in enumerate(segments) if len(x)]
-    if not use or not np.isfinite(detection.noise_psd_db_per_hz) or n0 <= 0:
-        return out
-    fs = links[use[0]].sample_rate_hz
-    n = np.array([len(segments[i]) for i in use], dtype=np.float64)
-    nfft = scipy.fft.next_fast_len(int(n.max()))
-    block = np.zeros((len(use), nfft), dtype=np.complex64)
-    for row, i in enumerate(use):
-        block[row, : len(segments[i])] = segments[i]
-    # Zero padding: Σ_k |X_k|² = nfft·Σ|x|², so the band's mean power is Σ_band |X|²/(n·nfft).
-    spec = scipy.fft.fft(block, axis=1)
-    half = AVAILABLE_BAND_SYMBOLS * np.array([links[i].symbol_rate_hz for i in use])
-    lo = np.array([min(links[i].tone_freqs_hz) for i in use]) - half
-    hi = np.array([max(links[i].tone_freqs_hz) for i in use]) + half
-    # Only the bins of the batch's bands (a few percent of the spectrum) are squared and summed.
-    f = np.fft.fftfreq(nfft, 1.0 / fs)
-    cols = np.flatnonzero((f >= lo.min()) & (f <= hi.max()))
-    band = spec[:, cols]
-    power = (band.real.astype(np.float64) ** 2 + band.imag.astype(np.float64) ** 2) / (
-        n[:, None] * nfft
-    )
-    sel = (f[cols][None, :] >= lo[:, None]) & (f[cols][None, :] <= hi[:, None])
-    c = (power * sel).sum(axis=1) - n0 * fs * sel.sum(axis=1) / nfft
-    bit_rate = np.array([links[i].symbol_rate_hz for i in use]) * bits_per_symbol
-    for row, i in enumerate(use):
-        if c[row] > 0:
-            out[i] = float(db(c[row] / (n0 * bit_rate[row])))
-    return out
+    if n_burst <= 0 or not np.isfinite(noise_psd_db_per_hz):
+        return None
+    n0 = 10.0 ** (noise_psd_db_per_hz / 10.0)
+    c = (band_energy - n0 * band_width_hz * n_window) / n_burst
+    if not (c > 0 and n0 > 0):
+        return None
+    return float(db(c / (n0 * bit_rate_hz)))
 
 
 def _theory_rho(rho_abs: np.ndarray, modulation: str):
