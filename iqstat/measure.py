@@ -12,7 +12,7 @@ from collections.abc import Sequence
 
 import numpy as np
 import scipy.fft
-from scipy import stats
+from scipy import special
 
 from iqstat import theory
 from iqstat.bursts import Burst, BurstDetection, detect_bursts, survey_capture
@@ -355,11 +355,13 @@ def _header_consistent_many(
         if f.bit_errors is not None and c.bits_checked
     ]
     if test:
-        errors = np.array([frames[i].bit_errors for i in test], dtype=np.float64)
-        n_bits = np.array([frames[i].header_bits for i in test], dtype=np.float64)
+        errors = np.array([frames[i].bit_errors for i in test], dtype=np.int64)
+        n_bits = np.array([frames[i].header_bits for i in test], dtype=np.int64)
         p = np.array([(checks[i].bit_errors + 0.5) / (checks[i].bits_checked + 1) for i in test])
         p = np.maximum(p, 1e-6)
-        ok[test] = stats.binom.sf(errors - 1, n_bits, p) >= HEADER_CONSISTENCY_P
+        # P(X >= errors) = binomial survival function at errors − 1 (scipy.special.bdtrc is
+        # the routine under scipy.stats.binom.sf).
+        ok[test] = special.bdtrc(errors - 1, n_bits, p) >= HEADER_CONSISTENCY_P
     return ok
 
 

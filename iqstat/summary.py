@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from iqstat import theory
 from iqstat.errors import IqstatError
@@ -113,8 +113,9 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
     if meas is not None and pred is not None and n_bits:
         # Measured errors far outside what the fitted Eb/N0 predicts point at something
         # other than white noise (interference, fading, bit slips).
-        p_lo = stats.binom.cdf(errors, n_bits, pred)
-        p_hi = stats.binom.sf(errors - 1, n_bits, pred)
+        # Binomial tails by the routines under scipy.stats.binom.cdf/sf (errors >= 0).
+        p_lo = special.bdtr(int(errors), int(n_bits), pred)
+        p_hi = special.bdtrc(int(errors) - 1, int(n_bits), pred)
         if min(p_lo, p_hi) < 1e-4:
             flags.append("ber-disagrees-with-ebn0")
     if not results:

@@ -32,7 +32,7 @@ from typing import Literal
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy import optimize, special, stats
+from scipy import optimize, special
 
 from iqstat.errors import ParameterError
 
@@ -215,7 +215,7 @@ def marcum_q(a: ArrayLike, b: ArrayLike, m: int = 1):
         central = (a_b < _TINY_A) & (b_b > 0)
         gen = (a_b >= _TINY_A) & (b_b > 0)
         if central.any():
-            q[central] = stats.chi2.sf(b_b[central] ** 2, 2 * int(m))
+            q[central] = special.chdtrc(2 * int(m), b_b[central] ** 2)  # chi2.sf(x, 2m)
         if gen.any():
             ab, bb = a_b[gen], b_b[gen]
             x = ab * bb
