@@ -22,6 +22,7 @@ from scipy import integrate, optimize, special, stats
 from iqstat.errors import ParameterError
 from iqstat.fit import (
     NoncoherentFit,
+    _bessel_terms,
     _log_i0,
     branch_energy_cdf,
     check_energy_laws,
@@ -108,6 +109,52 @@ def test_log_i0_matches_scipy_iv_including_series_region():
     # just above the series cut (x = 1e-2) log(i0e(x)) + x cancels: relative 1e-11 there, i.e.
     # an absolute error below 1e-15, irrelevant in a log-likelihood
     np.testing.assert_allclose(_log_i0(x), np.log1p(series), rtol=1e-11)
+
+
+def test_bessel_terms_match_scipy_over_the_whole_range():
+    # The likelihood's piecewise polynomials against scipy.special.i0e/i1e (reference library)
+    # on a dense grid over [0, 1e6], the three METHODS §8 values, and u = 0 (I1/I0 = 0).
+    u = np.concatenate(
+        [
+            [0.0, 1.0, 50.0, 700.0],
+            np.geomspace(1e-6, 1.0, 20001),
+            np.linspace(1.0, 60.0, 200001),
+            np.geomspace(60.0, 1e6, 20001),
+        ]
+    )
+    log_i0e, one_minus_rho = _bessel_terms(u)
+    i0e = special.i0e(u)
+    rho = special.i1e(u) / i0e
+    log_i0 = np.log(i0e) + u
+    # log i0e enters ℓ as log I0 = log i0e + u: absolute error ≤ 1e-14 of max(1, log I0)
+    assert np.max(np.abs(log_i0e - np.log(i0e)) / np.maximum(1.0, log_i0)) < 1e-14
+    refs = [0.0, *(r for _, r in _LOG_I0_REFS)]  # log I0(0) = 0, METHODS §8
+    np.testing.assert_allclose(log_i0e[:4] + u[:4], refs, atol=2e-13)
+    # ψ = u·ρ and κ = u²(1 − ρ²) enter the gradient and Hessian; 1 − ρ → 1/(2u) for large u
+    # (A&S 9.7.1 with 9.7.3), so it is checked relative to itself
+    np.testing.assert_allclose(1.0 - one_minus_rho[u >= 0.1], rho[u >= 0.1], rtol=3e-12)
+    assert np.max(np.abs((1.0 - one_minus_rho) - rho)) < 3e-12
+    mid = (u > 1.0) & (u <= 500.0)
+    np.testing.assert_allclose(one_minus_rho[mid], 1.0 - rho[mid], rtol=1e-12)
+    # above 500, 1 − i1e/i0e from scipy loses ~1e-10 of itself; the reference there is the
+    # asymptotic series e^{−x}·√(2πx)·I_ν(x) ~ Σ_k (−1)^k·Π_{j≤k}(4ν² − (2j − 1)²)/(k!·8^k·x^k)
+    # (Abramowitz & Stegun 9.7.1), 30 terms, far more than enough there
+    far = u[u > 500.0]
+
+    def terms(nu):
+        term, out = np.ones_like(far), [np.ones_like(far)]
+        for k in range(1, 30):
+            term = term * -(4 * nu * nu - (2 * k - 1) ** 2) / (k * 8 * far)
+            out.append(term)
+        return out
+
+    t0, t1 = terms(0), terms(1)
+    # 1 − ρ = Σ_k (t0_k − t1_k) / Σ_k t0_k, the difference taken term by term (no cancellation)
+    ref = sum(a - b for a, b in zip(t0, t1, strict=True)) / sum(t0)
+    np.testing.assert_allclose(one_minus_rho[u > 500.0], ref, rtol=1e-12)
+
+
+_LOG_I0_REFS = [(1.0, 0.23591435850717865), (50.0, 47.127575501871805), (700.0, 695.80569999844345)]
 
 
 def _independent_log_likelihood(z, a, n0):
