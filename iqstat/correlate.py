@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -38,6 +39,11 @@ from iqstat.errors import ParameterError
 
 #: Symbols processed per block in :func:`correlate_symbols` (bounds the padded work array).
 _BLOCK_SYMBOLS = 4096
+
+#: Block-rate mixing (:func:`mix_blocks_many`): blocks are as long as possible while a symbol
+#: still spans at least this many of them (4 samples at 52 samples per symbol).
+MIN_BLOCKS_PER_SYMBOL = 12
+
 
 
 def _check_rate(name: str, value: float) -> float:
@@ -216,6 +222,7 @@ def correlate_symbols_many(
     *,
     cumulatives: Sequence[np.ndarray] | None = None,
     mixed: Sequence[np.ndarray] | None = None,
+    blocks: BlockSums | None = None,
 ) -> list[np.ndarray]:
     """:func:`correlate_symbols` of a batch of bursts, in a fixed number of numpy calls.
 
@@ -237,6 +244,10 @@ def correlate_symbols_many(
         :func:`mix_many` of the same bursts and tones: each symbol's sums are then one
         ``np.add.reduceat`` per burst of the mixed samples (complex64 sums of one symbol,
         ~1e-7 relative to the cumulative path), and no running sums are needed.
+    blocks : BlockSums, optional
+        :func:`mix_blocks_many` of the same bursts and tones: each boundary's running sum is
+        the block-start sum plus the at most L − 1 samples from there to the boundary, eq. (3)
+        (complex64 products for complex64 samples, ~1e-7 relative).
 
     Returns
     -------
@@ -248,7 +259,12 @@ def correlate_symbols_many(
     With running sums, all bursts' symbol boundaries are gathered at once from the batch's
     padded sum buffer, one gather per tone. Without them, the symbols of all bursts are
     gathered into one zero-padded (symbols × max N_k) array, multiplied per burst (a stacked
-    matmul) by that burst's (max N_k, M) table of conjugate templates, eq. (1).
+    matmul) by that burst's (max N_k, M) table of conjugate templates, eq. (1). With block
+    sums S_q (blocks of L samples) the running sum at a boundary b = qL + ρ, 0 <= ρ < L, is
+
+        S(b) = S_q + e^{−jω_i qL}·Σ_{l<ρ} x[qL + l]·e^{−jω_i l},                         (3)
+
+    one gather of L samples per boundary and a small matrix product per burst.
     """
     fs = _check_rate("sample_rate_hz", sample_rate_hz)
     n_b = len(xs)
@@ -281,6 +297,9 @@ def correlate_symbols_many(
     starts = np.concatenate([b[:-1] for b in bnd])
     nk = np.concatenate([np.diff(b) for b in bnd])
     out = np.empty((total, m), dtype=np.complex128)
+    if blocks is not None:
+        _bank_from_blocks(blocks, arrays, freqs / fs, bnd, offs, out)
+        return [out[offs[i] : offs[i + 1]] for i in range(n_b)]
     if mixed is not None:
         if len(mixed) != n_b:
             raise ParameterError(f"mixed has {len(mixed)} entries for {n_b} bursts; give one each")
@@ -334,6 +353,100 @@ def correlate_symbols_many(
         z /= np.sqrt(nb)[:, None]
         out[k0:k1] = z
     return [out[offs[i] : offs[i + 1]] for i in range(n_b)]
+
+
+def _bank_from_blocks(blocks: BlockSums, arrays, c, bnd, offs, out) -> None:
+    """Check ``blocks`` against the bursts and tones, then :func:`_bank_blocks` into out."""
+    n_b = len(arrays)
+    if blocks.samples is None:
+        raise ParameterError(
+            "blocks were made from mixed samples (no raw samples for the symbol edges); pass "
+            "mix_blocks_many of the bursts and tones"
+        )
+    if len(blocks) != n_b:
+        raise ParameterError(
+            f"blocks holds {len(blocks)} bursts for {n_b}; pass mix_blocks_many of the same "
+            "bursts and tones"
+        )
+    if blocks.sums.shape[1] != c.shape[1] or not np.allclose(
+        blocks.cycles_per_sample, c, rtol=0, atol=1e-12
+    ):
+        raise ParameterError(
+            "blocks were mixed with other tones than tone_freqs_list; pass mix_blocks_many of "
+            "the same bursts and tones"
+        )
+    for i, a in enumerate(arrays):
+        if blocks.samples[i].size != a.size:
+            raise ParameterError(
+                f"blocks burst {i} has {blocks.samples[i].size} samples but xs[{i}] has {a.size}"
+                "; pass mix_blocks_many of the same bursts"
+            )
+    out[:] = _bank_blocks(blocks, bnd)
+
+
+def _phasor_tables(c: np.ndarray, step: float, n_max: int) -> tuple[int, np.ndarray, np.ndarray]:
+    """Two tables for exp(j2π·c·step·h), h = 0..n_max − 1, per row of c (B, M): returns
+    R and tables (B, ⌈n/R⌉, M), (B, R, M); the phasor of h is hi[h // R]·lo[h % R]."""
+    r_len, s_len = _phasor_block(n_max)
+    lo = unit_phasors(c[:, None, :] * (step * np.arange(r_len))[None, :, None])
+    hi = unit_phasors(c[:, None, :] * (step * r_len * np.arange(s_len))[None, :, None])
+    return r_len, hi, lo
+
+
+def _bank_blocks(blocks: BlockSums, bnd: Sequence[np.ndarray]) -> np.ndarray:
+    """z[k, i] of every symbol of every burst (boundaries ``bnd``, one array per burst) from
+    block sums: eq. (3) then eq. (2) of :func:`correlate_symbols_many`. Returns (total, M)."""
+    blk = blocks.block_samples
+    c = blocks.cycles_per_sample
+    sums = blocks.sums
+    n_b, m, width = sums.shape
+    sizes = np.array([b.size for b in bnd], dtype=np.int64)
+    b_all = np.concatenate(bnd)
+    row = np.repeat(np.arange(n_b), sizes)
+    q, rho = np.divmod(b_all, blk)
+    q = np.minimum(q, width - 1)
+    # S_q at each boundary's block start, all tones in one gather.
+    f = sums.reshape(-1)[(row * (m * width) + q)[:, None] + width * np.arange(m)]
+    if blk > 1:
+        # The samples qL .. b − 1 (at most L − 1), eq. (3): Σ_l g_l·w^l by Horner's rule with
+        # w = e^{−jω_i}, then turned by e^{−jω_i qL} (two-table phasors).
+        lm = np.arange(blk)
+        n_of = np.array([a.size for a in blocks.samples], dtype=np.int64)
+        idx = np.minimum(q[:, None] * blk + lm, n_of[row][:, None] - 1)
+        g = np.empty((b_all.size, blk), dtype=np.result_type(*blocks.samples))
+        o = 0
+        for a, k in zip(blocks.samples, sizes, strict=True):  # one gather per burst
+            g[o : o + k] = a[idx[o : o + k]]
+            o += k
+        g *= lm < rho[:, None]
+        w1 = unit_phasors(-c)[row]  # (T, M)
+        part = w1 * g[:, blk - 1, None]
+        for ll in range(blk - 2, -1, -1):
+            part += g[:, ll, None]
+            if ll:
+                part *= w1
+        r_len, hi, lo = _phasor_tables(c, -float(blk), int(q.max()) + 1)
+        qh, ql = np.divmod(q, r_len)
+        part *= hi[row, qh]
+        part *= lo[row, ql]
+        f += part
+    d = f[1:] - f[:-1]
+    # Drop the differences across bursts (the last boundary of one and the first of the next).
+    ends = np.cumsum(sizes)
+    keep = np.ones(d.shape[0], dtype=bool)
+    keep[ends[:-1] - 1] = False
+    d = d[keep]
+    # Centre phase of eq. (2): e^{j2πc·c_k} with 2c_k = b_k + b_{k+1} − 1 a whole number.
+    sym_row = np.repeat(np.arange(n_b), sizes - 1)
+    lo_b = np.delete(b_all, ends - 1)
+    hi_b = np.delete(b_all, np.r_[0, ends[:-1]])
+    h = lo_b + hi_b - 1
+    r_len, hi, lo = _phasor_tables(c, 0.5, int(h.max()) + 1)
+    hh, hl = np.divmod(h, r_len)
+    d *= hi[sym_row, hh]
+    d *= lo[sym_row, hl]
+    d /= np.sqrt(hi_b - lo_b)[:, None]
+    return d
 
 
 def branch_energies(z: np.ndarray) -> np.ndarray:
@@ -675,3 +788,200 @@ def interval_energies(
         e += d.imag**2
         np.divide(e, nk, out=out[i] if tones_first else out[..., i])
     return out
+
+
+def block_samples_for(period_samples: float) -> int:
+    """Samples per block of :func:`mix_blocks_many` for a symbol period: the largest whole
+    number with at least MIN_BLOCKS_PER_SYMBOL blocks per symbol (1 below that)."""
+    return max(1, int(_check_period(period_samples) // MIN_BLOCKS_PER_SYMBOL))
+
+
+@dataclass(frozen=True, eq=False)
+class BlockSums:
+    """Running sums of a batch of bursts mixed down by each tone, at block starts.
+
+    Attributes
+    ----------
+    sums : ndarray of complex128, shape (B, M, J_max + 1)
+        sums[b, i, q] = Σ_{n < qL} x_b[n]·exp(−j2πf_{b,i} n/fs) for q <= n_blocks[b], held
+        at the last value past it (as if the samples after the last whole block were zero).
+    n_blocks : ndarray of int64, shape (B,)
+        Whole blocks of L samples in each burst, ⌊n_b / L⌋.
+    n_samples : ndarray of int64, shape (B,)
+        Samples per burst n_b.
+    block_samples : int
+        Block length L [samples].
+    sample_rate_hz : float
+    cycles_per_sample : ndarray of float64, shape (B, M)
+        The tones as f_{b,i}/fs.
+    samples : tuple of B ndarrays, or None
+        The bursts (the bank takes the few samples between a symbol boundary and the next
+        block start from them); None when made from mixed samples (:func:`blocks_of_mixed`),
+        which only the timing reads.
+    """
+
+    sums: np.ndarray
+    n_blocks: np.ndarray
+    n_samples: np.ndarray
+    block_samples: int
+    sample_rate_hz: float
+    cycles_per_sample: np.ndarray
+    samples: tuple | None
+
+    def __len__(self) -> int:
+        return int(self.n_samples.size)
+
+
+def _phasors_at(c: np.ndarray, block: int, q: np.ndarray) -> np.ndarray:
+    """exp(−j2π·c_i·L·q) for the block indices q (K,) and tones c (M,), complex128 (K, M),
+    from two tables of ~√max(q) entries (see :func:`tone_phasors`)."""
+    r_len, s_len = _phasor_block(int(q.max()) + 1)
+    step = c[None, :] * block
+    within = unit_phasors(-step * np.arange(r_len)[:, None])
+    starts = unit_phasors(-step * (np.arange(s_len) * r_len)[:, None])
+    hi, lo = np.divmod(q, r_len)
+    out = starts[hi]
+    out *= within[lo]
+    return out
+
+
+def mix_blocks_many(
+    xs: Sequence[np.ndarray],
+    sample_rate_hz: float,
+    tone_freqs_list: Sequence[Sequence[float]],
+    block_samples: int,
+) -> BlockSums:
+    """Block sums of each burst mixed down by each of its tones, and their running sums.
+
+    Parameters
+    ----------
+    xs : sequence of B ndarrays, shapes (n_b,)
+        The bursts' samples (ragged); complex64 stays complex64 in the products.
+    sample_rate_hz : float
+        Sample rate fs [Hz].
+    tone_freqs_list : sequence of B sequences of float
+        Each burst's tones [Hz]; the same count M for every burst.
+    block_samples : int
+        Block length L [samples], e.g. :func:`block_samples_for` of the symbol period.
+
+    Returns
+    -------
+    BlockSums
+        What :func:`~iqstat.sync.recover_timing_blocks_many` times the bursts on and
+        :func:`correlate_symbols_many` (``blocks=``) takes the symbols' sums from.
+
+    Notes
+    -----
+    With ω_i = 2πf_i/fs and block q holding samples qL .. qL + L − 1,
+
+        Σ_l x[qL + l]·e^{−jω_i(qL + l)} = e^{−jω_i qL}·(X·w_i)[q],                        (1)
+
+    X = x[:JL] reshaped to (J, L) (a view) and w_i[l] = e^{−jω_i l}: one small matrix product
+    per burst for all its tones, then one phasor per block and tone (two-table products,
+    :func:`tone_phasors`) and the running sums along the blocks. There are no full-rate
+    phasors and no full-rate products; the only full-rate pass is the matrix product's read
+    of the samples. The products are complex64 for complex64 samples (a relative error of
+    ~1e-7 per block sum); the phasors, rotated sums and running sums are complex128.
+    """
+    fs = _check_rate("sample_rate_hz", sample_rate_hz)
+    if isinstance(block_samples, bool) or int(block_samples) != block_samples or block_samples < 1:
+        raise ParameterError(f"block_samples {block_samples!r} must be a positive whole number")
+    blk = int(block_samples)
+    if len(tone_freqs_list) != len(xs):
+        raise ParameterError(
+            f"xs has {len(xs)} bursts but tone_freqs_list has {len(tone_freqs_list)} entries; "
+            "give one tone list per burst"
+        )
+    if len(xs) == 0:
+        raise ParameterError("xs is empty; give at least one burst")
+    arrays = [check_samples(x) for x in xs]
+    freqs = _check_tone_list(tone_freqs_list, fs)
+    return _mix_blocks(arrays, freqs / fs, blk, fs, Scratch())
+
+
+class Scratch:
+    """Work arrays reused across the chunks of a batch (a fresh large temporary costs its
+    page faults on every pass; a reused one is already mapped, and often still cached)."""
+
+    def __init__(self) -> None:
+        self._bufs: dict[str, np.ndarray] = {}
+
+    def get(self, name: str, shape: tuple, dtype) -> np.ndarray:
+        """A C-contiguous array of ``shape`` (contents undefined) backed by the named buffer."""
+        size = math.prod(shape)
+        buf = self._bufs.get(name)
+        if buf is None or buf.dtype != np.dtype(dtype) or buf.size < size:
+            buf = np.empty(max(size, 1), dtype=dtype)
+            self._bufs[name] = buf
+        return buf[:size].reshape(shape)
+
+
+def _mix_blocks(arrays, c: np.ndarray, blk: int, fs: float, scratch: Scratch) -> BlockSums:
+    """:func:`mix_blocks_many` of validated bursts (tones as cycles per sample, (B, M)); the
+    running sums live in ``scratch`` (valid until its next use)."""
+    n_b, m = c.shape
+    nbk = np.array([a.size // blk for a in arrays], dtype=np.int64)
+    j_max = int(nbk.max())
+    sums = scratch.get("block_sums", (n_b, m, j_max + 1), np.complex128)
+    sums[:, :, 0] = 0.0
+    single = all(a.dtype == np.complex64 for a in arrays)
+    dt = np.complex64 if single else np.complex128
+    w_t = unit_phasors(-c[:, :, None] * np.arange(blk)).astype(dt)  # (B, M, L): w_i[l], eq. (1)
+    # Block phasors e^{−jω_i qL}, q = sR + r, as two tables (see tone_phasors), applied in place.
+    r_len, s_len = _phasor_block(j_max)
+    step = c[:, :, None] * blk
+    within = unit_phasors(-step * np.arange(r_len)).astype(dt)
+    starts = unit_phasors(-step * (np.arange(s_len) * r_len)).astype(dt)
+    y = scratch.get("block_products", (n_b, m, s_len * r_len), dt)
+    for b in range(n_b):  # ragged rows: one product per burst
+        k = int(nbk[b])
+        np.matmul(w_t[b], arrays[b][: k * blk].reshape(k, blk).T, out=y[b, :, :k])
+        y[b, :, k:] = 0.0
+    y4 = y.reshape(n_b, m, s_len, r_len)
+    y4 *= starts[:, :, :, None]  # eq. (1)
+    y4 *= within[:, :, None, :]
+    np.cumsum(y[:, :, :j_max], axis=2, dtype=np.complex128, out=sums[:, :, 1:])
+    return BlockSums(
+        sums=sums,
+        n_blocks=nbk,
+        n_samples=np.array([a.size for a in arrays], dtype=np.int64),
+        block_samples=blk,
+        sample_rate_hz=fs,
+        cycles_per_sample=c,
+        samples=tuple(arrays),
+    )
+
+
+def blocks_of_mixed(
+    mixed: Sequence[np.ndarray], sample_rate_hz: float, block_samples: int
+) -> BlockSums:
+    """:class:`BlockSums` of bursts already mixed down (:func:`mix_many`): the block sums of
+    the mixed samples by a reshape, and their running sums (``samples`` None, tones unknown:
+    only the timing, :func:`~iqstat.sync.recover_timing_blocks_many`, reads this form).
+    """
+    fs = _check_rate("sample_rate_hz", sample_rate_hz)
+    if isinstance(block_samples, bool) or int(block_samples) != block_samples or block_samples < 1:
+        raise ParameterError(f"block_samples {block_samples!r} must be a positive whole number")
+    blk = int(block_samples)
+    ys = [np.asarray(y) for y in mixed]
+    if not ys:
+        raise ParameterError("mixed is empty; give at least one burst")
+    m = ys[0].shape[0]
+    if any(y.ndim != 2 or y.shape[0] != m for y in ys):
+        raise ParameterError("mixed must hold (M, n) arrays with one tone count M per batch")
+    nbk = np.array([y.shape[1] // blk for y in ys], dtype=np.int64)
+    j_max = int(nbk.max())
+    sums = np.zeros((len(ys), m, j_max + 1), dtype=np.complex128)
+    for b, y in enumerate(ys):
+        k = int(nbk[b])
+        sums[b, :, 1 : k + 1] = y[:, : k * blk].reshape(m, k, blk).sum(axis=2)
+    np.cumsum(sums, axis=2, out=sums)
+    return BlockSums(
+        sums=sums,
+        n_blocks=nbk,
+        n_samples=np.array([y.shape[1] for y in ys], dtype=np.int64),
+        block_samples=blk,
+        sample_rate_hz=fs,
+        cycles_per_sample=np.full((len(ys), m), np.nan),
+        samples=None,
+    )

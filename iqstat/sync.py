@@ -24,9 +24,12 @@ import scipy.signal
 import scipy.stats
 
 from iqstat.correlate import (
+    BlockSums,
     _check_rate,
     _check_tone_list,
     batch_buffer,
+    block_samples_for,
+    blocks_of_mixed,
     check_samples,
     mix_cumulative_many,
     symbol_boundaries,
@@ -637,7 +640,7 @@ def recover_timing_mixed_many(
     *,
     track_clock: bool = True,
 ) -> list[SymbolTiming | MeasurementError | None]:
-    """Symbol timing of a batch from its mixed samples on a decimated feature (fast path).
+    """Symbol timing of a batch from its mixed samples on a decimated feature.
 
     Parameters
     ----------
@@ -653,50 +656,75 @@ def recover_timing_mixed_many(
     Returns
     -------
     list of B SymbolTiming, MeasurementError or None
+        As :func:`recover_timing_blocks_many` (the same core, on block sums of the mixed
+        samples, :func:`~iqstat.correlate.blocks_of_mixed`).
+    """
+    fs = _check_rate("sample_rate_hz", sample_rate_hz)
+    rate = _check_rate("symbol_rate_hz", symbol_rate_hz)
+    if len(mixed) == 0:
+        return []
+    blocks = blocks_of_mixed(mixed, fs, block_samples_for(fs / rate))
+    return recover_timing_blocks_many(blocks, rate, track_clock=track_clock)
+
+
+def recover_timing_blocks_many(
+    blocks: BlockSums,
+    symbol_rate_hz: float,
+    *,
+    track_clock: bool = True,
+) -> list[SymbolTiming | MeasurementError | None]:
+    """Symbol timing of a batch from its block-rate running sums (the fast path).
+
+    Parameters
+    ----------
+    blocks : BlockSums
+        :func:`~iqstat.correlate.mix_blocks_many` of the bursts and their tones (blocks of
+        :func:`~iqstat.correlate.block_samples_for` the nominal period, or shorter).
+    symbol_rate_hz : float
+        Nominal symbol rate Rs [Bd], common to the batch.
+    track_clock : bool
+        Estimate the clock offset (see :func:`recover_timing`).
+
+    Returns
+    -------
+    list of B SymbolTiming, MeasurementError or None
         The grid from the feature's symbol-rate line, without the matched-energy check of
         :func:`recover_timing_many`. It is final where the line is strong
         (``quality["line_snr_db"] >= STRONG_LINE_DB``); re-time weaker bursts with
         :func:`recover_timing_many`. MeasurementError: the burst is too short or has no
-        energy. None: a symbol spans fewer than 2·FEATURE_MIN_BLOCKS samples, too few to
-        decimate (use :func:`recover_timing_many`).
+        energy. None: a symbol spans fewer than 2·FEATURE_MIN_BLOCKS samples, or fewer than
+        FEATURE_MIN_BLOCKS blocks (use :func:`recover_timing_many`).
 
     Notes
     -----
     The feature of :func:`recover_timing` (max over tones of the energy in a one-symbol
-    window) is evaluated at D ≈ FEATURE_BLOCKS_PER_SYMBOL positions per symbol instead of
-    at every sample: the mixed samples are summed over blocks [c_j, c_{j+1}),
-    c_j = ceil(j·P0/D) (one ``np.add.reduceat`` per burst, the only full-rate pass), and the
-    window energies are |S_{j+D} − S_j|²/(c_{j+D} − c_j) of the blocks' running sums S. The
-    line coefficient Σ_j e_j·exp(−j2π u_j/P0) uses each window's exact centre u_j in
-    samples, so it locates the symbol centres directly (Oerder & Meyr with the feature
-    sampled D times per symbol [1]_; harmonics D ± 1 of the feature alias onto the line, at
-    D = 16 a few thousandths of a symbol). The spectral floor, the block clock fit and the
-    significance test are those of :func:`recover_timing`.
+    window) is evaluated at every block start instead of at every sample: with S_q the
+    running sums at block starts (blocks of L samples) and a window of W = round(P0/L)
+    blocks, e_q = max_i |S_{q+W} − S_q|², the energy of samples qL .. qL + WL − 1. Its centre
+    u_q = qL + (WL − 1)/2 is exact, so the line coefficient Σ_q e_q·exp(−j2πu_q/P0) locates
+    the symbol centres directly (Oerder & Meyr with the feature sampled P0/L times per
+    symbol [1]_; the feature's harmonics near P0/L alias close to the line and beat along
+    the burst, which leaves a few thousandths of a symbol). The spectral floor, the block
+    clock fit and the significance test are those of :func:`recover_timing`. Bursts are
+    worked a few at a time (~2 MB of temporaries), the floor's transform once per FFT length.
 
     References
     ----------
     .. [1] M. Oerder, H. Meyr, "Digital filter and square timing recovery", IEEE Trans.
        Commun. 36(5):605–612, 1988.
     """
-    fs = _check_rate("sample_rate_hz", sample_rate_hz)
     rate = _check_rate("symbol_rate_hz", symbol_rate_hz)
-    nb = len(mixed)
+    nb = len(blocks)
     out: list = [None] * nb
     if nb == 0:
         return out
+    fs = blocks.sample_rate_hz
     p0 = fs / rate
-    d = min(FEATURE_BLOCKS_PER_SYMBOL, int(p0 // 2))
-    if d < FEATURE_MIN_BLOCKS:
+    blk = blocks.block_samples
+    window = int(round(p0 / blk))
+    if p0 < 2 * FEATURE_MIN_BLOCKS or window < FEATURE_MIN_BLOCKS:
         return out
-    ys = [np.asarray(y) for y in mixed]
-    m = ys[0].shape[0]
-    if any(y.ndim != 2 or y.shape[0] != m for y in ys):
-        raise ParameterError("mixed must hold (M, n) arrays with one tone count M per batch")
-    n = np.array([y.shape[1] for y in ys], dtype=np.int64)
-    n_max = int(n.max())
-    c = np.ceil(np.arange(int(n_max * d / p0) + 2) * (p0 / d)).astype(np.int64)
-    c = c[c <= n_max]
-    blocks = np.searchsorted(c, n, side="right") - 1  # whole blocks inside each burst
+    n = blocks.n_samples
     ok = []
     for j in range(nb):
         if n[j] < (MIN_SYMBOLS + 2) * p0:
@@ -708,55 +736,91 @@ def recover_timing_mixed_many(
             ok.append(j)
     if not ok:
         return out
-    ok_a = np.array(ok)
-    j_max = int(blocks[ok_a].max())
-    s = np.zeros((ok_a.size, m, j_max + 1), dtype=np.complex128)
-    for r, j in enumerate(ok):  # the one full-rate pass: block sums, one call per burst
-        kb = int(blocks[j])
-        s[r, :, 1 : kb + 1] = np.add.reduceat(ys[j][:, : c[kb]], c[:kb], axis=1)
-    np.cumsum(s, axis=2, out=s)
-    n_feat = j_max + 1 - d
-    length = (c[d : d + n_feat] - c[:n_feat]).astype(np.float64)
-    dd = s[:, :, d : d + n_feat] - s[:, :, :n_feat]
-    e = (dd.real**2 + dd.imag**2).max(axis=1) / length
-    ne = blocks[ok_a] + 1 - d  # valid windows per burst
-    valid = np.arange(n_feat) < ne[:, None]
+    ok_a = np.array(ok, dtype=np.int64)
+    # Work buffers for a chunk of bursts, reused by every chunk (fresh large temporaries
+    # cost their page faults on every pass).
+    n_feat = int(blocks.n_blocks[ok_a].max()) + 1 - window
+    block_f = int(round(CLOCK_BLOCK_SYMBOLS * p0 / blk))  # feature points per clock block
+    width = -(-n_feat // block_f) * block_f
+    step = max(1, min(ok_a.size, _CHUNK_BYTES // (width * (16 + 8 + 8 + 8))))
+    bufs = (
+        np.empty((step, n_feat), dtype=np.complex128),
+        np.empty((step, n_feat)),
+        np.empty((step, n_feat)),
+        np.empty((step, width)),
+    )
+    for i in range(0, ok_a.size, step):
+        _time_blocks_chunk(blocks, ok_a[i : i + step], p0, window, block_f, track_clock, bufs, out)
+    return out
+
+
+def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock, bufs, out):
+    """:func:`recover_timing_blocks_many` of the bursts ``part``; fills ``out``."""
+    blk = blocks.block_samples
+    s = _rows_of(blocks.sums, part)
+    jb = blocks.n_blocks[part]
+    n = blocks.n_samples[part]
+    bc, m = s.shape[0], s.shape[1]
+    ne = jb + 1 - window  # whole windows per burst
+    n_feat = int(ne.max())
+    q_tot = -(-n_feat // block_f)
+    d, pw, pw2 = (b[:bc, :n_feat] for b in bufs[:3])
+    e = bufs[3][:bc, : q_tot * block_f]
+    e[:, n_feat:] = 0.0
+    ev = e[:, :n_feat]
+    for i in range(m):  # M <= 4 tones: e_q = max_i |S_{q+W} − S_q|²
+        np.subtract(s[:, i, window : window + n_feat], s[:, i, :n_feat], out=d)
+        if i == 0:
+            np.square(d.real, out=ev)
+            np.square(d.imag, out=pw)
+            ev += pw
+        else:
+            np.square(d.real, out=pw)
+            pw += np.square(d.imag, out=pw2)
+            np.maximum(ev, pw, out=ev)
+    valid = np.arange(e.shape[1]) < ne[:, None]
     e *= valid
     peak = e.max(axis=1)
-    e -= (e.sum(axis=1) / np.maximum(ne, 1))[:, None]
+    e -= (e.sum(axis=1) / ne)[:, None]
     e *= valid
-    u = (c[:n_feat] + c[d : d + n_feat] - 1) / 2.0  # window centres [samples]
-    ph = unit_phasors(-u / p0)
-    x_all = e @ ph
-    # Spectral floor around the line: the feature spacing is P0/D on average, so the line
-    # sits at bin nf/D of an nf-point transform (the same Hz per bin as the full-rate one).
-    nf = scipy.fft.next_fast_len(n_feat, real=True)
-    kk = int(round(nf / d))
-    n_bins = nf // 2 + 1
-    lo, hi = max(1, kk - 200), min(n_bins, kk + 201)
-    bins = np.r_[np.arange(lo, max(lo, kk - 3)), np.arange(min(hi, kk + 4), hi)]
-    spec = scipy.fft.rfft(e, nf, axis=1)[:, bins]
-    floor = np.median(spec.real**2 + spec.imag**2, axis=1)
+    # Line coefficient per clock block: u_q = u_0 + L·q is uniform, so e^{−j2πu/P0} splits
+    # into a per-block start phasor and one within-block table (a real matrix product).
+    u0 = (window * blk - 1) / 2.0
+    within = unit_phasors(-(blk * np.arange(block_f)) / p0)
+    cs = np.stack([within.real, within.imag], axis=1)
+    r = e.reshape(bc * q_tot, block_f) @ cs
+    xq = (r[:, 0] + 1j * r[:, 1]).reshape(bc, q_tot)
+    xq *= unit_phasors(-(u0 + blk * block_f * np.arange(q_tot)) / p0)
+    x_all = xq.sum(axis=1)
+    # Spectral floor around the line: the line sits at bin nf·L/P0 of an nf-point transform
+    # of the feature (the same Hz per bin as the full-rate one); one transform per length.
+    floor = np.full(bc, np.nan)
+    n_fft = np.array([scipy.fft.next_fast_len(int(k), real=True) for k in ne])
+    for nf in np.unique(n_fft):
+        sel = np.nonzero(n_fft == nf)[0]
+        kk = int(round(nf * blk / p0))
+        n_bins = nf // 2 + 1
+        lo, hi = max(1, kk - 200), min(n_bins, kk + 201)
+        bins = np.r_[np.arange(lo, max(lo, kk - 3)), np.arange(min(hi, kk + 4), hi)]
+        if bins.size == 0:
+            continue
+        seg = e[sel, : min(int(nf), e.shape[1])]
+        spec = scipy.fft.rfft(seg, int(nf), axis=1)[:, bins]
+        floor[sel] = np.median(spec.real**2 + spec.imag**2, axis=1)
     with np.errstate(divide="ignore"):
         line_snr = np.where(
             floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf
         )
-    block_f = CLOCK_BLOCK_SYMBOLS * d
-    n_blocks = ne // block_f if track_clock else np.zeros(ok_a.size, dtype=np.int64)
+    n_blocks = ne // block_f if track_clock else np.zeros(bc, dtype=np.int64)
     fit = n_blocks >= MIN_CLOCK_BLOCKS
-    nq = int(n_blocks[fit].max()) if fit.any() else 0
-    if nq:
-        xq = (e[:, : nq * block_f] * ph[: nq * block_f]).reshape(ok_a.size, nq, block_f).sum(2)
-        centre = u[: nq * block_f].reshape(nq, block_f).mean(axis=1)
-    else:
-        xq = np.zeros((ok_a.size, 1), dtype=np.complex128)
-        centre = np.zeros(1)
-        fit[:] = False
+    nq = int(n_blocks[fit].max()) if fit.any() else 1
+    xb = xq[:, :nq]
     # Positions of the symbol centres modulo P0 per block; they drift as (P − P0)/P per
     # sample when P != P0 (block-wise line phase, unwrapped and line-fitted: METHODS §4).
-    off = -np.unwrap(np.angle(xq), axis=1) / (2 * np.pi) * p0
-    use = np.arange(xq.shape[1]) < np.where(fit, n_blocks, 0)[:, None]
-    w = np.abs(xq) * use
+    off = -np.unwrap(np.angle(xb), axis=1) / (2 * np.pi) * p0
+    centre = u0 + blk * (np.arange(nq) * block_f + (block_f - 1) / 2.0)
+    use = np.arange(nq) < np.where(fit, n_blocks, 0)[:, None]
+    w = np.abs(xb) * use
     sl, cl, rms, se = _weighted_lines(centre, off, w, np.where(fit, n_blocks, 0))
     with np.errstate(divide="ignore", invalid="ignore"):
         c_flat = (w * off).sum(axis=1) / w.sum(axis=1)
@@ -764,19 +828,20 @@ def recover_timing_mixed_many(
         peak=peak, line_snr=line_snr, x_all=x_all, n_blocks=n_blocks, fit=fit,
         s=sl, c=cl, c_flat=c_flat, rms=rms, se=se,
     )  # fmt: skip
-    for r, j in enumerate(ok):
-        if not peak[r] > 0:
+    ppb = p0 / blk
+    for r_, j in enumerate(part):
+        if not peak[r_] > 0:
             out[j] = MeasurementError(
                 "burst has no energy at the tones (all-zero samples); check the burst limits"
             )
             continue
         # window=1: the line phase gives the symbol centres, so t0 = centre − P0/2.
-        t0, period, nbk, rms_j, se_ppm, snr, status = _clock_decision(co, r, p0, 1, track_clock)
-        n_sym = _whole_symbols(int(n[j]), t0, period)
+        t0, period, nbk, rms_j, se_ppm, snr, status = _clock_decision(co, r_, p0, 1, track_clock)
+        n_sym = _whole_symbols(int(n[r_]), t0, period)
         reliable = snr >= MIN_LINE_SNR_DB
         message = (
             f"{n_sym} symbols, t0 {t0:.3f} samples, period {period:.5f} samples; "
-            f"symbol-rate line {snr:.1f} dB (feature at {d} points per symbol); {status}"
+            f"symbol-rate line {snr:.1f} dB (feature at {ppb:.1f} points per symbol); {status}"
         )
         if not reliable:
             message += f"; line below {MIN_LINE_SNR_DB:g} dB: timing unreliable"
@@ -801,7 +866,6 @@ def recover_timing_mixed_many(
             message=message,
             reliable=bool(reliable),
         )
-    return out
 
 
 def recover_timing(
