@@ -28,6 +28,7 @@ from scipy.ndimage import median_filter
 from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.facts import (
+    FLOOR_FRAME,
     CaptureFacts,
     FactsAccumulator,
     iter_unscaled_chunks,
@@ -57,9 +58,10 @@ _SPLIT_LOG_LR = math.log(1e4)
 _MATMUL_MAX_BIN_FRACTION = 1.0 / 6.0
 # Sample-level edge search: this many frames either side of the frame-level edge.
 _REFINE_HALF_FRAMES = 3
-# Edge refinement reads regions less than this many samples apart with one call (one read
-# costs about as much as converting this many samples), in spans of about _READ_SPAN_MAX.
-_READ_MERGE_GAP = 1 << 15
+# Edge refinement reads regions less than this many samples apart with one call (one
+# positional read costs about 10 us, as much as converting a few thousand samples), in spans of
+# about _READ_SPAN_MAX.
+_READ_MERGE_GAP = 1 << 12
 _READ_SPAN_MAX = 1 << 19
 # Groups refined per batch: bounds the temporaries (a few 2-D arrays of 2 edges × ~2 k
 # samples per group, complex64) to ~20 MB.
@@ -377,13 +379,13 @@ class _FramePowerPass:
         self.carry = np.empty(L, dtype=np.complex64)
         self.n_carry = 0
 
-    def _process(self, frames: np.ndarray, scale2: float) -> None:
+    def _process(self, frames: np.ndarray, scale2: float, energy=None) -> None:
         L, fi = self.L, self.fi
         m = min(frames.shape[0], self.n_frames - fi)
         if m <= 0:
             return
         v = frames[:m].view(np.float32)
-        pf = np.einsum("ij,ij->i", v, v) / L
+        pf = (np.einsum("ij,ij->i", v, v) if energy is None else energy[:m]) / L
         self.p_full[fi : fi + m] = pf if scale2 == 1.0 else pf * scale2
         if self.bins is not None:
             if self.use_mm:
@@ -395,10 +397,18 @@ class _FramePowerPass:
             self.p_band[fi : fi + m] = pb if scale2 == 1.0 else pb * scale2
         self.fi += m
 
-    def add(self, x: np.ndarray, scale2: float = 1.0) -> None:
-        """Add the next chunk of samples (complex64); the powers are scaled by ``scale2``."""
+    def add(self, x: np.ndarray, scale2: float = 1.0, energy: np.ndarray | None = None) -> None:
+        """Add the next chunk of samples (complex64); the powers are scaled by ``scale2``.
+
+        ``energy`` may give Σ|x|² of the chunk's consecutive L-sample frames from its first
+        sample, computed as here (one dot product per frame of the interleaved values, as
+        :class:`iqstat.facts.FactsAccumulator` does); it is used when the chunk's frames start
+        at its first sample.
+        """
         L = self.L
         pos = 0
+        if energy is not None and (self.n_carry or energy.size != x.size // L):
+            energy = None
         if self.n_carry:
             take = min(L - self.n_carry, x.size)
             self.carry[self.n_carry : self.n_carry + take] = x[:take]
@@ -410,7 +420,7 @@ class _FramePowerPass:
             self.n_carry = 0
         nf = (x.size - pos) // L
         if nf:
-            self._process(x[pos : pos + nf * L].reshape(nf, L), scale2)
+            self._process(x[pos : pos + nf * L].reshape(nf, L), scale2, energy)
         rest = x.size - pos - nf * L
         if rest:
             self.carry[:rest] = x[pos + nf * L :]
@@ -718,7 +728,7 @@ def _change_points(
     np.cumsum(r, axis=1, out=c[:, 1:])
     # rising: maximise c[n] − c[τ] → minimise c[τ]; falling: maximise c[τ] (minimise −c[τ])
     np.negative(c, out=c, where=~rising[:, None])
-    c[np.arange(c.shape[1]) > lengths[:, None]] = np.inf
+    np.copyto(c, np.inf, where=np.arange(c.shape[1]) > lengths[:, None])
     return np.where(ok, np.argmin(c, axis=1), -1)
 
 
@@ -797,7 +807,7 @@ def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
     else:
         # Brick-wall FFT mask on each window padded by `pad` samples each side (zero-padded
         # to its own FFT length: one FFT per distinct length).
-        x[np.arange(x.shape[1]) >= size[:, None]] = 0
+        np.copyto(x, 0, where=np.arange(x.shape[1]) >= size[:, None])
         power = np.zeros((sel.size, k.size), dtype=np.float32)
         nffts = np.array([scipy.fft.next_fast_len(s + pad) for s in np.unique(size).tolist()])
         nfft_of = nffts[np.searchsorted(np.unique(size), size)]
@@ -810,10 +820,19 @@ def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
             for u, v in zip(r0.tolist(), r1.tolist(), strict=True):
                 X[:, u:v] = 0
             y = scipy.fft.ifft(X, axis=1)
-            for s in np.unique(shift[r]).tolist():
-                rs = r[shift[r] == s]
-                ys = y[shift[r] == s, s : s + k.size]
-                power[rs, : ys.shape[1]] = ys.real**2 + ys.imag**2
+            shifts = shift[r]
+            for s in np.unique(shifts).tolist():
+                if shifts[0] == shifts[-1]:  # one shift (the usual case): no row selection
+                    rs, ys = r, y[:, s : s + k.size]
+                else:
+                    rs, ys = r[shifts == s], y[shifts == s, s : s + k.size]
+                yr, yi = ys.real, ys.imag
+                pw = yr * yr
+                pw += yi * yi
+                if rs.size == r.size and r[0] + r.size - 1 == r[-1]:
+                    power[r[0] : r[-1] + 1, : ys.shape[1]] = pw
+                else:
+                    power[rs, : ys.shape[1]] = pw
     t = _change_points(power, m, floor, lev, rising)
     edge = np.where(t >= 0, a + t, e * L)
     edges[sel] = edge
@@ -1138,9 +1157,12 @@ def _detect_bursts(
     fpass = _FramePowerPass(capture, L, band_edges)
     sc2 = unscaled_factor(capture) ** 2
     for start, x, bad, raw in iter_unscaled_chunks(capture, int(chunk_samples)):
+        energy = None
         if facts is not None:
             facts.add(start, x, bad, raw)
-        fpass.add(x, sc2)
+            if L == FLOOR_FRAME:
+                energy = facts.last_frame_energy  # the same frames' Σ|x|², computed alike
+        fpass.add(x, sc2, energy)
     fp = fpass.result()
     p = fp.band.astype(np.float64)
     dof = fp.band_dof

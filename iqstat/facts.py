@@ -9,6 +9,8 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 import numpy as np
+import scipy.fft
+from numpy.lib.stride_tricks import sliding_window_view
 
 from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture
 from iqstat.noise import noise_floor_lowest_cluster
@@ -132,10 +134,10 @@ class FactsAccumulator:
         self.n_bad += bad
         if m > self.pw.size:
             self.pw = np.empty(m, dtype=np.float32)
-        p = self.pw[:m]
-        np.abs(x, out=p)
-        p *= p
-        chunk_peak = float(p.max()) if m else 0.0
+        # Peak |x|²: the largest |x| squared in float32 (squaring is monotone, so this equals
+        # the largest float32 |x|²).
+        a = np.abs(x, out=self.pw[:m])
+        chunk_peak = float(np.square(a.max())) if m else 0.0
         self.peak = max(self.peak, chunk_peak)
         # A component at the clipping level makes |x| at least that level: count only then
         # (with a margin for the float32 rounding of |x|²); most chunks never come near.
@@ -145,21 +147,34 @@ class FactsAccumulator:
         self.dc += complex(x.sum())  # pairwise summation in complex64: ample for a mean
         n_frames = m // FLOOR_FRAME
         used = n_frames * FLOOR_FRAME
+        self.last_frame_energy = None
         if n_frames:
-            sums = p[:used].reshape(n_frames, FLOOR_FRAME).sum(1)
+            # Σ|x|² per frame as one dot product of the interleaved [re, im] values per frame.
+            v = x[:used].view(np.float32).reshape(n_frames, 2 * FLOOR_FRAME)
+            sums = np.einsum("ij,ij->i", v, v)
+            self.last_frame_energy = sums
             self.total_power += float(sums.sum(dtype=np.float64))
             self.frame_powers.append(sums / FLOOR_FRAME)
         if used < m:
-            self.total_power += float(p[used:].sum(dtype=np.float64))
+            t = x[used:].view(np.float32)
+            self.total_power += float(np.dot(t, t))
         first = start + self.carry
         step = WELCH_FFT * self.welch_stride
-        idx = np.arange(first, start + m - WELCH_FFT + 1, step) - start
-        if len(idx):
-            frames = x[idx[:, None] + np.arange(WELCH_FFT)] * self.window
-            spec = np.fft.fft(frames, axis=1)
-            self.psd_acc += (np.abs(spec) ** 2).sum(0)
-            self.psd_frames += len(idx)
-            self.carry = int(idx[-1] + step - m)
+        count = max(0, (start + m - WELCH_FFT - first) // step + 1)
+        if count:
+            off = first - start
+            # Frames every `step` samples: rows of a strided view (no gather).
+            span = x[off : off + (count - 1) * step + WELCH_FFT]
+            frames = sliding_window_view(span, WELCH_FFT)[::step]
+            spec = scipy.fft.fft(frames * self.window, axis=1, overwrite_x=True)
+            sv = spec.view(np.float32).reshape(count, 2 * WELCH_FFT)
+            sq = np.square(sv, out=sv)
+            self.psd_acc += sq.sum(axis=0).reshape(WELCH_FFT, 2).sum(axis=1)
+            self.psd_frames += count
+            # The next frame on the grid; one that starts here but runs past the chunk's end
+            # is skipped (frames never straddle chunks).
+            nxt = off + count * step - m
+            self.carry = int(nxt + step if nxt < 0 else nxt)
         else:
             self.carry = max(0, self.carry - m)
 
