@@ -706,6 +706,8 @@ def _row_sums(batch: _Batch, u: np.ndarray, g: np.ndarray, p: np.ndarray, deriva
         psi = u0 * (1.0 - o0)
         return np.stack([lse, psi, np.zeros_like(psi), u0 * u0 * o0 * (2.0 - o0)])
     lik += batch.log_prior[:, None]
+    if lik.shape[0] == 2:
+        return _two_hypotheses(lik, u, omr, derivatives)
     top = lik.max(axis=0)
     e = np.exp(lik - top)
     tot = e.sum(axis=0)
@@ -723,6 +725,43 @@ def _row_sums(batch: _Batch, u: np.ndarray, g: np.ndarray, p: np.ndarray, deriva
     u *= omr  # κ = u²(1 − ρ²) = u²·(1 − ρ)·(1 + ρ)
     u *= e
     return np.stack([lse, e_psi, wpsi.sum(axis=0) - e_psi * e_psi, u.sum(axis=0)])
+
+
+def _two_hypotheses(lik: np.ndarray, u: np.ndarray, omr: np.ndarray, derivatives: bool):
+    """:func:`_row_sums` of 2-FSK NDA rows: the same four sums with one exp per symbol.
+
+    With d = ℓ_0 − ℓ_1 and t = e^{−|d|}: log Σ = max(ℓ_0, ℓ_1) + log1p(t), the posterior of
+    the likelier hypothesis 1/(1 + t), and over the two hypotheses E_w ψ = ψ_1 + w_0(ψ_0 − ψ_1),
+    Var_w ψ = w_0·w_1·(ψ_0 − ψ_1)², E_w κ = κ_1 + w_0(κ_0 − κ_1).
+    """
+    d = lik[0] - lik[1]
+    t = np.abs(d)
+    np.negative(t, out=t)
+    np.exp(t, out=t)
+    out = np.empty((4 if derivatives else 1, d.size))
+    np.maximum(lik[0], lik[1], out=out[0])
+    out[0] += np.log1p(t)
+    if not derivatives:
+        return out
+    w0 = t
+    w0 += 1.0
+    np.divide(1.0, w0, out=w0)  # posterior of the likelier hypothesis
+    w0 = np.where(d >= 0.0, w0, 1.0 - w0)
+    psi = 1.0 - omr
+    psi *= u  # ψ = u·I1/I0
+    u *= u
+    omr *= 2.0 - omr
+    u *= omr  # κ = u²(1 − ρ²) = u²·(1 − ρ)·(1 + ρ)
+    dpsi = psi[0] - psi[1]
+    np.multiply(w0, dpsi, out=out[1])
+    out[1] += psi[1]
+    np.multiply(dpsi, dpsi, out=out[2])
+    out[2] *= w0
+    out[2] *= 1.0 - w0
+    np.subtract(u[0], u[1], out=out[3])
+    out[3] *= w0
+    out[3] += u[1]
+    return out
 
 
 def _signal_sums(batch: _Batch, a_over: np.ndarray, g: np.ndarray, p: np.ndarray, derivatives):
