@@ -878,41 +878,48 @@ def _wrap(f, fs):
     return (f + fs / 2) % fs - fs / 2
 
 
-def _interpolate_rows(spec: np.ndarray, k: np.ndarray) -> np.ndarray:
-    """:func:`interpolate_peak_bin` (Candan) at bins k (any shape) of the rows of ``spec``.
+def _interpolate_rows(spec: np.ndarray, k: np.ndarray, n_dft: int) -> np.ndarray:
+    """:func:`interpolate_peak_bin` (Candan) at local bins k (B, M) of the rows of ``spec``.
 
-    ``spec`` has shape (B, L) and ``k`` shape (B, …); returns k + δ.
+    ``spec`` (B, L) holds L bins of each row's n_dft-point DFT (all of them when L = n_dft,
+    else a window with k − 1 … k + 1 inside it); returns k + δ.
     """
     n = spec.shape[1]
-    rows = np.arange(spec.shape[0]).reshape((-1,) + (1,) * (k.ndim - 1))
-    xm = spec[rows, (k - 1) % n].astype(np.complex128)
-    x0 = spec[rows, k % n].astype(np.complex128)
-    xp = spec[rows, (k + 1) % n].astype(np.complex128)
+    flat = spec.reshape(-1)
+    at = np.arange(spec.shape[0])[:, None] * n + k
+    x0 = flat[at].astype(np.complex128)
+    xm = flat[at - 1 + np.where(k == 0, n, 0)].astype(np.complex128)
+    xp = flat[at + 1 - np.where(k == n - 1, n, 0)].astype(np.complex128)
     den = 2.0 * x0 - xm - xp
     safe = np.where(den == 0, 1.0, den)
     delta = np.where(den == 0, 0.0, np.real((xm - xp) / safe))  # Jacobsen [1]
-    delta *= math.tan(math.pi / n) / (math.pi / n)  # Candan [2]
+    delta *= math.tan(math.pi / n_dft) / (math.pi / n_dft)  # Candan [2]
     return k + np.clip(delta, -0.5, 0.5)
 
 
-def _coarse_center_rows(
-    power: np.ndarray, n_used: np.ndarray, fs: float, width_hz: float
-) -> tuple[np.ndarray, np.ndarray]:
-    """Batched coarse centre: (centre_hz (B,), ok (B,)) from power spectra (B, nfft).
+def _block_size(nfft: int, width_bins: int) -> int:
+    """Bins per block of the coarse periodogram: a power of two ≤ width/8 dividing nfft."""
+    s = 1
+    while s * 2 <= max(1, width_bins // 8) and nfft % (s * 2) == 0:
+        s *= 2
+    return s
 
-    As :func:`_coarse_center`, with the smoothed periodogram evaluated on blocks of s bins
-    (s a power of two, at most 1/8 of the smoothing width): the argmax and the 20 % floor
-    of a moving average over ~10³ bins do not change at that resolution, and the work does.
+
+def _coarse_start_rows(
+    blocks: np.ndarray, s: int, n_used: np.ndarray, nfft: int, fs: float, width_hz: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Start of the coarse centre from block power sums: (centre_hz (B,), floor (B,)).
+
+    ``blocks`` (B, nfft/s) are sums of s adjacent periodogram bins. The smoothed periodogram
+    (moving average over the expected signal width, METHODS §5) is evaluated on blocks: its
+    argmax and its 20 % quantile do not change at that resolution (s ≤ width/8), the work
+    does. The noise level per bin is the 20 % quantile over the Gamma(w, 1/w) 20 % quantile,
+    w the smoothing width in independent bins (zero padding correlates the bins).
     """
-    nb_rows, nfft = power.shape
+    nb_rows, nbk = blocks.shape
     df = fs / nfft
     width = max(3, int(round(width_hz / df)))
-    s = 1
-    while s * 2 <= max(1, width // 8) and nfft % (s * 2) == 0:
-        s *= 2
-    blocks = power.reshape(nb_rows, nfft // s, s).sum(axis=2, dtype=np.float64)
     wb = max(1, int(round(width / s)))
-    nbk = blocks.shape[1]
     pad = np.concatenate((blocks[:, -wb:], blocks, blocks[:, :wb]), axis=1)
     c = np.zeros((nb_rows, pad.shape[1] + 1))
     np.cumsum(pad, axis=1, out=c[:, 1:])
@@ -924,97 +931,170 @@ def _coarse_center_rows(
     i = int(math.floor(pos))
     part = np.partition(smooth, (i, min(i + 1, nbk - 1)), axis=1)
     q20 = part[:, i] + (pos - i) * (part[:, min(i + 1, nbk - 1)] - part[:, i])
-    dof = np.maximum(1.0, wb * s * n_used / nfft)  # zero padding correlates the bins
+    dof = np.maximum(1.0, wb * s * n_used / nfft)
     floor = q20 / (special.gammaincinv(dof, 0.2) / dof)
-    center = _wrap((kb * s + 0.5 * (s - 1)) * df, fs)
+    return _wrap((kb * s + 0.5 * (s - 1)) * df, fs), floor
+
+
+class _Windows:
+    """A window of ``width`` consecutive bins (circularly) of each row's spectrum (private).
+
+    Row r holds the bins kstart[r] … kstart[r] + width − 1 (mod nfft): their complex values,
+    their power (re² + im², in the spectrum's precision) and the running sums of the power
+    and of the power times the local index (float64), so that the power sum and first moment
+    of any run of held bins cost two look-ups. :meth:`hold` gathers a row again, centred on
+    what it needs, when that is not held; a row's numbers depend on that row alone.
+    """
+
+    def __init__(self, spectrum: np.ndarray, width: int, center_bins: np.ndarray):
+        self.spectrum = spectrum
+        self.nfft = spectrum.shape[1]
+        self.width = int(width)
+        self.j = np.arange(self.width)
+        self.kstart = center_bins - self.width // 2
+        self.x, self.pw, self.c0, self.c1 = self._gather(np.arange(spectrum.shape[0]))
+
+    def _gather(self, rows: np.ndarray):
+        idx = (self.kstart[rows, None] + self.j) % self.nfft + rows[:, None] * self.nfft
+        x = self.spectrum.reshape(-1)[idx]
+        pw = x.real**2
+        pw += x.imag**2
+        c0 = np.zeros((rows.size, self.width + 1))
+        np.cumsum(pw, axis=1, dtype=np.float64, out=c0[:, 1:])
+        c1 = np.zeros((rows.size, self.width + 1))
+        np.cumsum(pw * self.j, axis=1, out=c1[:, 1:])
+        return x, pw, c0, c1
+
+    def local(self, k: np.ndarray) -> np.ndarray:
+        """Local indices of absolute bins k (B,) or (B, M) (valid where held)."""
+        ks = self.kstart if k.ndim == 1 else self.kstart[:, None]
+        return (k - ks) % self.nfft
+
+    def hold(self, lo: np.ndarray, hi: np.ndarray) -> None:
+        """Make sure every row holds its absolute bins lo[r] … hi[r] (hi − lo < width)."""
+        bad = self.local(lo) + (hi - lo) >= self.width
+        if not bad.any():
+            return
+        rows = np.nonzero(bad)[0]
+        self.kstart[rows] = (lo[rows] + hi[rows]) // 2 - self.width // 2
+        x, pw, c0, c1 = self._gather(rows)
+        self.x[rows], self.pw[rows], self.c0[rows], self.c1[rows] = x, pw, c0, c1
+
+    def sums(self, a: np.ndarray, count) -> tuple[np.ndarray, np.ndarray]:
+        """(Σ pw, Σ j·pw) over local bins a … a + count − 1 of each row (held)."""
+        r = np.arange(a.size)
+        b = a + count
+        return self.c0[r, b] - self.c0[r, a], self.c1[r, b] - self.c1[r, a]
+
+
+def _coarse_center_windows(
+    win: _Windows, center_hz: np.ndarray, floor: np.ndarray, fs: float, width_hz: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Three centroid iterations of the excess power, from the windows' running sums.
+
+    As :func:`_coarse_center`: the centroid of power − floor over the bins within ±width/2 of
+    the centre, three times. Returns (centre_hz (B,), ok (B,)); ok is False where the excess
+    power is not positive (the centre then stays where it was).
+    """
+    nfft = win.nfft
+    df = fs / nfft
     h = min(max(1, int(round(width_hz / 2 / df))), (nfft - 1) // 2)
-    offs = np.arange(-h, h + 1)
-    ok = np.ones(nb_rows, dtype=bool)
-    for _ in range(3):  # three centroid iterations (as _coarse_center), all rows at once
+    n_win = 2 * h + 1
+    ok = np.ones(center_hz.size, dtype=bool)
+    center = center_hz
+    for _ in range(3):
         k0 = np.round(center / df).astype(np.int64)
-        idx = (k0[:, None] + offs) % nfft
-        w = np.take_along_axis(power, idx, axis=1) - floor[:, None]
-        f = (k0[:, None] + offs) * df  # unwrapped: within fs/2 of the centre
-        total = w.sum(axis=1)
+        win.hold(k0 - h, k0 + h)
+        a = win.local(k0 - h)
+        s0, s1 = win.sums(a, n_win)
+        total = s0 - floor * n_win
+        # Σ (p_j − floor)·(j − a − h): the first moment about k0 (the floor's part is 0)
+        mom = s1 - (a + h) * s0
         ok &= total > 0
-        center = np.where(ok, _wrap((w * f).sum(axis=1) / np.where(ok, total, 1.0), fs), center)
+        shift = mom / np.where(ok, total, 1.0)
+        center = np.where(ok, _wrap((k0 + shift) * df, fs), center)
     return center, ok
 
 
 def _line_spectra(
-    spectrum: np.ndarray,
-    power: np.ndarray,
-    centers_hz: np.ndarray,
-    p: int,
-    half_hz: float,
-    fs: float,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, float]:
-    """Spectrum whose lines are sought: (spec (B, L), power, base_bin (B,), period_hz).
+    win: _Windows, centers_hz: np.ndarray, df: float, hb: int, p: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Spectrum of the p-th power (p = 2) of the band-limited bursts: (spec, power, base_bin).
 
-    p = 1: the burst's own spectrum. p = 2: the square of the burst band-limited to
-    centre ± half_hz, computed on L ≥ 4·half/Δf + 3 samples per burst period (the band's
-    bins moved to baseband, inverse FFT, squared, FFT): x² then has no alias, and its bin j
-    sits at (base + j)·Δf with base = 2·(centre bin) — the full-rate square's bins, exactly.
+    The square of each burst band-limited to centre ± hb bins, computed on
+    L = next_fast_len(4·hb + 3) samples per burst period (the band's bins moved to baseband,
+    inverse FFT, squared, FFT): x² then has no alias, and its bin j sits at (base + j)·Δf with
+    base = 2·(centre bin) — the full-rate square's bins, exactly. The bins come from the
+    windows (:class:`_Windows`).
     """
-    nfft = spectrum.shape[1]
-    df = fs / nfft
-    if p == 1:
-        return spectrum, power, np.zeros(len(centers_hz), dtype=np.int64), fs
-    hb = max(1, int(round(half_hz / df)))
+    nb = centers_hz.size
     n_small = scipy.fft.next_fast_len(4 * hb + 3)
     kc = np.round(centers_hz / df).astype(np.int64)
-    j = np.arange(-hb, hb + 1)
-    small = np.zeros((len(centers_hz), n_small), dtype=spectrum.dtype)
-    small[:, j % n_small] = np.take_along_axis(spectrum, (kc[:, None] + j) % nfft, axis=1)
+    win.hold(kc - hb, kc + hb)
+    a = win.local(kc - hb)
+    band = win.x.reshape(-1)[
+        a[:, None] + np.arange(2 * hb + 1) + (np.arange(nb) * win.width)[:, None]
+    ]
+    small = np.zeros((nb, n_small), dtype=win.x.dtype)
+    small[:, np.arange(-hb, hb + 1) % n_small] = band
     y = scipy.fft.ifft(small, axis=1, overwrite_x=True)
     spec = scipy.fft.fft(y * y, axis=1, overwrite_x=True)
-    return spec, spec.real**2 + spec.imag**2, p * kc, n_small * df
+    return spec, spec.real**2 + spec.imag**2, p * kc
 
 
 def _joint_lines_rows(
     spec: np.ndarray,
     pw: np.ndarray,
+    c_local: np.ndarray,
     base: np.ndarray,
-    period_hz: float,
+    n_dft: int,
     df: float,
-    centers_hz: np.ndarray,
+    pred_hz: np.ndarray,
     offsets_hz: np.ndarray,
     p: int,
-    reach_hz: float,
-    noise_half_hz: float,
+    reach: int,
+    half: int,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Lines of all M tones at one common shift, batched: (cfo_hz, found, line_db), each (B,).
 
-    The powers of the M lines p·(c + offset_i) + shift are summed over shifts within
-    ±p·reach; the best shift counts when its sum is improbable for noise over that many
-    shifts (Gamma(M, 1) tail below 1e-3 for the largest, noise level the median of the
-    ±p·noise_half windows over ln 2, METHODS §5). Each line is refined at the largest of the
-    three bins there by three-bin interpolation; the carrier is the excess-power-weighted
-    mean of f_i/p − offset_i.
+    ``spec``/``pw`` (B, L) hold bins of each row's n_dft-point DFT of the p-th power, local
+    bin j at absolute bin base + j (all bins when L = n_dft, indices then wrap; otherwise a
+    window holding every bin needed). ``c_local`` (B, M): local bins of the predicted lines
+    ``pred_hz`` = p·(centre + offset_i). The powers of the M lines at a common shift are summed
+    over shifts within ±reach bins; the best shift counts when its sum is improbable for noise
+    over that many shifts (Gamma(M, 1) tail below 1e-3 for the largest, noise level the
+    median of the ±half windows over ln 2, METHODS §5). Each line is refined at the largest
+    of the three bins there by three-bin interpolation; the carrier is the
+    excess-power-weighted mean of f_i/p − offset_i.
     """
-    n = spec.shape[1]
+    nb, n = pw.shape
     m = offsets_hz.size
-    reach = max(1, int(round(reach_hz * p / df)))
-    half = max(reach, int(round(noise_half_hz * p / df)))
-    pred = p * (centers_hz[:, None] + offsets_hz[None, :])  # (B, M) Hz
-    c = np.round(pred / df).astype(np.int64) - base[:, None]
-    win = np.arange(-half, half + 1)
-    idx = (c[:, :, None] + win) % n  # (B, M, W)
-    rows = np.arange(len(c))[:, None, None]
-    w = pw[rows, idx]
-    inner = w[:, :, half - reach : half + reach + 1]
+    circular = n == n_dft
+    rows = np.arange(nb)
+    winr = np.arange(-half, half + 1)
+    idx = c_local[:, :, None] + winr
+    if circular:
+        idx %= n
+    w = pw.reshape(-1)[idx + (rows * n)[:, None, None]]  # (B, M, W)
+    inner = w[:, :, half - reach : half + reach + 1] if half > reach else w
     total = inner.sum(axis=1)  # (B, S)
-    mean_noise = np.median(w.reshape(len(c), -1), axis=1) / math.log(2.0)
+    mean_noise = np.median(w.reshape(nb, -1), axis=1) / math.log(2.0)
     best = np.argmax(total, axis=1)
-    top = total[np.arange(len(c)), best]
+    top = total[rows, best]
     threshold = float(special.gammainccinv(m, 1e-3 / (2 * reach + 1)))  # Gamma(M, 1) tail
     found = (mean_noise > 0) & (top >= threshold * mean_noise)
-    k = c + (best - reach)[:, None]  # (B, M)
-    three = (k[:, :, None] + np.arange(-1, 2)) % n
-    kk = k + np.argmax(pw[rows, three], axis=2) - 1
-    fk = (_interpolate_rows(spec, kk) + base[:, None]) * df
-    fk = fk + period_hz * np.round((pred - fk) / period_hz)  # representative nearest prediction
-    excess = np.maximum(pw[rows[:, :, 0], kk % n] - mean_noise[:, None], 0.0)
+    # the largest of the three bins around each line at the best shift
+    k = c_local + (best - reach)[:, None]  # (B, M)
+    three = k[:, :, None] + np.arange(-1, 2)
+    if circular:
+        three %= n
+    kk = k + np.argmax(pw.reshape(-1)[three + (rows * n)[:, None, None]], axis=2) - 1
+    if circular:
+        kk %= n
+    fk = (_interpolate_rows(spec, kk, n_dft) + base[:, None]) * df
+    period_hz = n_dft * df
+    fk = fk + period_hz * np.round((pred_hz - fk) / period_hz)  # representative nearest pred
+    excess = np.maximum(pw.reshape(-1)[kk + (rows * n)[:, None]] - mean_noise[:, None], 0.0)
     wsum = excess.sum(axis=1, keepdims=True)
     weights = np.where(wsum > 0, excess / np.where(wsum > 0, wsum, 1.0), 1.0 / m)
     cfo = np.sum(weights * (fk / p - offsets_hz[None, :]), axis=1)
@@ -1412,7 +1492,7 @@ def estimate_link_many(
     Parameters
     ----------
     xs : sequence of ndarray of complex, each shape (n_b,)
-        The bursts' samples (any lengths).
+        The bursts' samples (any lengths; views of one array are fine, nothing is written).
     sample_rate_hz : float
         fs [Hz].
     modulation : {"2fsk", "4fsk", "ook"}
@@ -1424,7 +1504,8 @@ def estimate_link_many(
         DFT bins from the lowest tone − k·Rs to the highest + k·Rs (k this value; the DFT is
         zero-padded to :func:`fft_size`), and ``band_width_hz``, the width of those bins
         (count·fs/nfft). With a noise PSD N0 [1/Hz] the in-band signal power over a burst
-        of n_b of the n samples is (band_energy − N0·band_width_hz·n)/n_b.
+        of n_b of the n samples is (band_energy − N0·band_width_hz·n)/n_b. It costs two
+        look-ups per burst (running sums the carrier estimate has anyway).
 
     Returns
     -------
@@ -1440,12 +1521,14 @@ def estimate_link_many(
     -----
     With the symbol rate given, the tone spacing given (or OOK) and p·h an integer for p = 1
     or 2, all bursts run through one chain with a fixed number of numpy calls per group of up
-    to BATCH_ROWS bursts of one DFT length (:func:`fft_size`): one 2-D FFT, the coarse centre
-    (:func:`_coarse_center_rows`), for p = 2 the square of the band-limited burst from its
-    band's bins (:func:`_line_spectra`), and the joint line search of all tones
-    (:func:`_joint_lines_rows`). A burst whose lines do not stand out falls back to the
-    per-burst energy search. Blind rates, and modulation indices without lines, run the
-    per-burst chain burst by burst.
+    to BATCH_ROWS bursts of one DFT length (:func:`fft_size`): one 2-D FFT; block sums of its
+    power (which also find the all-zero and non-finite bursts, Parseval); the coarse start
+    (:func:`_coarse_start_rows`); one window of bins per burst around it (:class:`_Windows`)
+    from which the centroid (:func:`_coarse_center_windows`), the lines and the band energy
+    are read; for p = 2 the square of the band-limited burst from its band's bins
+    (:func:`_line_spectra`); the joint line search of all tones (:func:`_joint_lines_rows`).
+    A burst whose lines do not stand out falls back to the per-burst energy search. Blind
+    rates, and modulation indices without lines, run the per-burst chain burst by burst.
     """
     m = _n_tones(modulation)
     fs = check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
@@ -1465,29 +1548,26 @@ def estimate_link_many(
                 out[i] = exc
         return out
     groups: dict[int, list[int]] = {}
+    min_samples = max(MIN_SAMPLES, MIN_SYMBOLS * fs / rs)
     for i, x in enumerate(arrays):
-        try:
-            arrays[i] = _burst_samples(x, fs, rs)
-        except MeasurementError as exc:
-            out[i] = exc
-            continue
-        groups.setdefault(fft_size(arrays[i].size), []).append(i)
+        arr = np.asarray(x)
+        if arr.ndim != 1 or arr.size < min_samples:
+            try:  # the per-burst checks, in their order, for their messages
+                arr = _burst_samples(arr, fs, rs)
+            except MeasurementError as exc:
+                out[i] = exc
+                continue
+        arrays[i] = arr
+        groups.setdefault(fft_size(arr.size), []).append(i)
     for nfft, members in groups.items():
-        for start in range(0, len(members), BATCH_ROWS):
-            rows = members[start : start + BATCH_ROWS]
+        n_chunks = -(-len(members) // BATCH_ROWS)  # near-equal chunks: SIMD over rows
+        for rows in np.array_split(np.asarray(members), n_chunks):
+            rows = rows.tolist()
             fits = _carrier_rows(
                 [arrays[i] for i in rows], nfft, fs, m, p, rs, df, band_margin_symbols
             )
-            for i, (fit, extra) in zip(rows, fits, strict=True):
-                if isinstance(fit, MeasurementError):
-                    out[i] = fit
-                    continue
-                try:
-                    out[i] = _link_result(
-                        modulation, fs, arrays[i].size, rs, True, df, fit, None, None, extra
-                    )
-                except MeasurementError as exc:
-                    out[i] = exc
+            for i, res in zip(rows, fits, strict=True):
+                out[i] = res
     return out
 
 
@@ -1500,64 +1580,150 @@ def _carrier_rows(
     rs: float,
     df: float | None,
     band_margin_symbols: float | None,
-) -> list[tuple[_ToneFit | MeasurementError, dict | None]]:
-    """Carrier fits of bursts sharing one DFT length, with the rates given (batched core)."""
+) -> list[LinkEstimate | MeasurementError]:
+    """Link estimates of bursts sharing one DFT length, with the rates given (batched core)."""
     modulation = {1: "ook", 2: "2fsk", 4: "4fsk"}[m]
+    nb = len(xs)
+    dfb = fs / nfft
     dtype = np.result_type(np.complex64, *[x.dtype for x in xs])
-    spectrum = np.empty((len(xs), nfft), dtype=dtype)
+    spectrum = np.empty((nb, nfft), dtype=dtype)
     for r, x in enumerate(xs):  # ragged copy into the padded rows
         spectrum[r, : x.size] = x
         spectrum[r, x.size :] = 0
     spectrum = scipy.fft.fft(spectrum, axis=1, overwrite_x=True)
-    power = spectrum.real**2
-    power += spectrum.imag**2
+    width_hz = _signal_width(m, df, rs)
+    s = _block_size(nfft, max(3, int(round(width_hz / dfb))))
+    ri = spectrum.view(spectrum.real.dtype).reshape(-1, 2 * s)
+    blocks = np.einsum("ij,ij->i", ri, ri).reshape(nb, nfft // s)  # power sums of s bins
+    # Parseval: Σ|X_k|² = nfft·Σ|x_n|², so the block sums tell all-zero and non-finite bursts
+    total = blocks.sum(axis=1)
+    errors: dict[int, MeasurementError] = {}
+    if not np.all(np.isfinite(total) & (total > 0)):
+        for r in np.nonzero(~(np.isfinite(total) & (total > 0)))[0].tolist():
+            if total[r] == 0:
+                msg = "burst is all zeros; there is no signal to estimate from"
+            elif not np.all(np.isfinite(xs[r])):
+                msg = "burst contains NaN or infinite samples; zero or cut them before estimating"
+            else:
+                msg = "burst samples are too large for their power spectrum; scale them down"
+            errors[r] = MeasurementError(msg)
+            spectrum[r] = 1.0  # a flat stand-in, so the row spoils nothing downstream
+            blocks[r] = s
     n_used = np.array([x.size for x in xs], dtype=float)
-    center, ok = _coarse_center_rows(power, n_used, fs, _signal_width(m, df, rs))
+    center, floor = _coarse_start_rows(blocks.astype(np.float64), s, n_used, nfft, fs, width_hz)
     offsets = tone_offsets_hz(modulation, df)
-    spec, pw, base, period = _line_spectra(
-        spectrum, power, center, p, _square_band_hz(offsets, rs), fs
+    reach_hz = 0.5 * df if m > 1 else 0.5 * rs
+    noise_half_hz = 0.4 * df if m > 1 else 0.5 * rs
+    # one window of bins per burst: wide enough for every read below, with room to move
+    h_center = min(max(1, int(round(width_hz / 2 / dfb))), (nfft - 1) // 2)
+    reach1 = max(1, int(round(reach_hz / dfb)))
+    half1 = max(reach1, int(round(noise_half_hz / dfb)))
+    span_lines = int(math.ceil((offsets[-1] - offsets[0]) / dfb)) + 2 * half1 + 7
+    hb = max(1, int(round(_square_band_hz(offsets, rs) / dfb)))
+    need = max(2 * h_center + 1, span_lines if p == 1 else 2 * hb + 1)
+    if band_margin_symbols is not None:
+        span_band = (offsets[-1] - offsets[0] + 2 * band_margin_symbols * rs) / dfb + 3
+        need = max(need, int(math.ceil(span_band)))
+    win = _Windows(
+        spectrum, need + 2 * (2 * s + reach1 + 2), np.round(center / dfb).astype(np.int64)
     )
-    reach = 0.5 * df if m > 1 else 0.5 * rs
-    noise_half = 0.4 * df if m > 1 else 0.5 * rs
+    center, ok = _coarse_center_windows(win, center, floor, fs, width_hz)
+    if p == 1:
+        reach, half = reach1, half1
+        pred = center[:, None] + offsets[None, :]
+        c_abs = np.round(pred / dfb).astype(np.int64)
+        win.hold(c_abs.min(axis=1) - half - 3, c_abs.max(axis=1) + half + 3)
+        spec, pw, c_local, base, n_dft = win.x, win.pw, win.local(c_abs), win.kstart, nfft
+    else:
+        spec, pw, base = _line_spectra(win, center, dfb, hb, p)
+        n_dft = spec.shape[1]
+        reach = max(1, int(round(reach_hz * p / dfb)))
+        half = max(reach, int(round(noise_half_hz * p / dfb)))
+        pred = p * (center[:, None] + offsets[None, :])
+        c_local = (np.round(pred / dfb).astype(np.int64) - base[:, None]) % n_dft
     cfo, found, line_db = _joint_lines_rows(
-        spec, pw, base, period, fs / nfft, center, offsets, p, reach, noise_half
+        spec, pw, c_local, base, n_dft, dfb, pred, offsets, p, reach, half
     )
     band = None
     if band_margin_symbols is not None:
-        dfb = fs / nfft
         lo = cfo + offsets[0] - band_margin_symbols * rs
         hi = cfo + offsets[-1] + band_margin_symbols * rs
         k_lo = np.ceil(lo / dfb).astype(np.int64)
         count = np.floor(hi / dfb).astype(np.int64) - k_lo + 1
-        span = np.arange(int(count.max()))
-        idx = (k_lo[:, None] + span) % nfft
-        inside = span[None, :] < count[:, None]
-        energy = np.sum(np.take_along_axis(power, idx, axis=1) * inside, axis=1) / nfft
-        band = (energy, count * dfb)
+        win.hold(k_lo, k_lo + count - 1)
+        a = win.local(k_lo)
+        r_all = np.arange(nb)
+        energy = (win.c0[r_all, a + count] - win.c0[r_all, a]) / nfft
+        band = (energy.tolist(), (count * dfb).tolist())
     method = "carrier-line" if m == 1 else ("tone-lines" if p == 1 else f"power-{p}-lines")
+    return _link_results_rows(
+        xs, fs, modulation, rs, df, p, method, (center, cfo, found, line_db, ok), errors, band
+    )
+
+
+def _link_results_rows(
+    xs, fs, modulation, rs, df, p, method, fits, errors, band
+) -> list[LinkEstimate | MeasurementError]:
+    """Per-burst results of :func:`_carrier_rows`: as :func:`_link_result`, built in bulk.
+
+    ``fits`` is (centre_hz, cfo_hz, found, line_db, ok), arrays (B,) of the batched core.
+    """
+    center, cfo, found, line_db, ok = fits
+    m = N_TONES[modulation]
+    offsets = tone_offsets_hz(modulation, df)
+    tones = (cfo[:, None] + offsets[None, :]).tolist()
+    cfo_l, db_l, found_l, ok_l = cfo.tolist(), line_db.tolist(), found.tolist(), ok.tolist()
+    tail = "; symbol rate from profile" + ("; tone spacing from profile" if m > 1 else "")
+    spacing = None if m == 1 else float(df)
+    spacing_source = "n/a" if m == 1 else "profile"
     results: list = []
     for r, x in enumerate(xs):  # per-burst result objects (and the rare fallback)
-        extra = None
-        if band is not None:
-            extra = {"band_energy": float(band[0][r]), "band_width_hz": float(band[1][r])}
-        if not ok[r]:
+        extra = None if band is None else {"band_energy": band[0][r], "band_width_hz": band[1][r]}
+        if r in errors:
+            results.append(errors[r])
+        elif not ok_l[r]:
             results.append(
-                (
-                    MeasurementError(
-                        "no signal above the noise floor in this burst; check the burst "
-                        "limits or the Eb/N0"
-                    ),
-                    extra,
+                MeasurementError(
+                    "no signal above the noise floor in this burst; check the burst limits or "
+                    "the Eb/N0"
                 )
             )
-        elif found[r]:
-            results.append((_ToneFit(float(cfo[r]), df, p, float(line_db[r]), method), extra))
+        elif found_l[r]:
+            quality = {
+                "n_symbols": x.size * rs / fs,
+                "rate_line_db": None,
+                "rate_std_hz": None,
+                "tone_line_db": db_l[r],
+                "line_power": p,
+                "carrier_method": method,
+                "reliable": True,
+            }
+            if extra:
+                quality.update(extra)
+            results.append(
+                LinkEstimate(
+                    modulation,
+                    fs,
+                    rs,
+                    "profile",
+                    spacing,
+                    spacing_source,
+                    cfo_l[r],
+                    tuple(tones[r]),
+                    x.size,
+                    quality,
+                    f"carrier by {method} ({db_l[r]:.1f} dB){tail}",
+                )
+            )
         else:
             try:
                 b = _Burst(x, fs, modulation)
-                results.append((_carrier_by_energy(b, float(center[r]), df, rs, True), extra))
+                fit = _carrier_by_energy(b, float(center[r]), df, rs, True)
+                results.append(
+                    _link_result(modulation, fs, x.size, rs, True, df, fit, None, None, extra)
+                )
             except MeasurementError as exc:
-                results.append((exc, extra))
+                results.append(exc)
     return results
 
 
