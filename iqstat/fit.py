@@ -1278,6 +1278,12 @@ def _chi2_2_cdf_rows(y: np.ndarray, lam: np.ndarray) -> np.ndarray:
         out[small] = np.exp(-half) * (p1 + half * (p1 - xs * np.exp(-xs)))
     big = lam >= _SMALL_NONCENTRALITY
     if big.any():
+        # Far below the noncentral law's bulk F is below 2.3e-16 and taken as 0: with
+        # z = s + n, |z|² ≤ y needs |n| ≥ √λ − √y (per-dimension unit variance here), and
+        # P(|n| ≥ c) = e^{−c²/2} (Rayleigh tail), so F(y; 2, λ) ≤ e^{−(√λ − √y)²/2} < e^{−36}.
+        gap = np.sqrt(lam) - np.sqrt(y)
+        big &= (gap < 0.0) | (gap * gap < 72.0)
+        out[lam >= _SMALL_NONCENTRALITY] = 0.0
         out[big] = special.chndtr(y[big], 2.0, lam[big])
     return out
 

@@ -23,6 +23,7 @@ from iqstat.errors import ParameterError
 from iqstat.fit import (
     NoncoherentFit,
     _bessel_terms,
+    _chi2_2_cdf_rows,
     _log_i0,
     branch_energy_cdf,
     check_energy_laws,
@@ -152,6 +153,22 @@ def test_bessel_terms_match_scipy_over_the_whole_range():
     # 1 − ρ = Σ_k (t0_k − t1_k) / Σ_k t0_k, the difference taken term by term (no cancellation)
     ref = sum(a - b for a, b in zip(t0, t1, strict=True)) / sum(t0)
     np.testing.assert_allclose(one_minus_rho[u > 500.0], ref, rtol=1e-12)
+
+
+def test_chi2_cdf_rows_match_scipy_ncx2_including_the_far_lower_tail():
+    # The GOF's 2-dof (non)central chi-square CDF against scipy.stats.ncx2.cdf (reference
+    # library) over λ from 0 to 400 and y from 1e-3 to 600: far below the law's bulk it returns
+    # 0, which the Rayleigh-tail bound e^{−(√λ − √y)²/2} < e^{−36} allows (absolute 2.3e-16).
+    lam, y = np.meshgrid(
+        np.r_[0.0, 1e-6, 1e-3, np.geomspace(0.1, 400.0, 60)], np.geomspace(1e-3, 600.0, 300)
+    )
+    lam, y = lam.ravel(), y.ravel()
+    got = _chi2_2_cdf_rows(y, lam)
+    ref = stats.ncx2.cdf(y, 2, np.maximum(lam, 1e-300))
+    zero = (lam >= 1e-4) & (got == 0.0)
+    assert zero.sum() > 1000  # the shortcut is exercised
+    assert np.max(ref[zero]) < 2.3e-16
+    np.testing.assert_allclose(got, ref, rtol=2e-9, atol=3e-16)
 
 
 _LOG_I0_REFS = [(1.0, 0.23591435850717865), (50.0, 47.127575501871805), (700.0, 695.80569999844345)]
