@@ -44,6 +44,10 @@ _BLOCK_SYMBOLS = 4096
 #: still spans at least this many of them (4 samples at 52 samples per symbol).
 MIN_BLOCKS_PER_SYMBOL = 12
 
+#: Elementwise passes over block-rate arrays run on slices of bursts of about this many bytes
+#: (cache-sized); reductions and transforms run once over a whole chunk.
+_SLICE_BYTES = 1 << 20
+
 
 
 def _check_rate(name: str, value: float) -> float:
@@ -384,13 +388,29 @@ def _bank_from_blocks(blocks: BlockSums, arrays, c, bnd, offs, out) -> None:
     out[:] = _bank_blocks(blocks, bnd)
 
 
-def _phasor_tables(c: np.ndarray, step: float, n_max: int) -> tuple[int, np.ndarray, np.ndarray]:
-    """Two tables for exp(j2π·c·step·h), h = 0..n_max − 1, per row of c (B, M): returns
-    R and tables (B, ⌈n/R⌉, M), (B, R, M); the phasor of h is hi[h // R]·lo[h % R]."""
-    r_len, s_len = _phasor_block(n_max)
-    lo = unit_phasors(c[:, None, :] * (step * np.arange(r_len))[None, :, None])
-    hi = unit_phasors(c[:, None, :] * (step * r_len * np.arange(s_len))[None, :, None])
-    return r_len, hi, lo
+def _boundary_phasors(c: np.ndarray, bnd: Sequence[np.ndarray], sizes: np.ndarray) -> np.ndarray:
+    """exp(−j2π·c_i·b) at every boundary b of every burst, complex128 (T, M).
+
+    The first of each burst from its phase (reduced modulo one cycle), the others as running
+    products of the per-symbol steps e^{−j2πc_i·N_k} (N_k ∈ {⌊P⌋, ⌈P⌉}: two phasors per
+    burst and tone): K products of unit phasors keep ~K·1e-16 relative rounding.
+    """
+    n_b, m = c.shape
+    out = np.empty((int(sizes.sum()), m), dtype=np.complex128)
+    o = 0
+    for i, b in enumerate(bnd):  # one running product per burst
+        k = b.size
+        if k == 0:
+            continue
+        nk = np.diff(b)
+        n_lo = int(nk.min()) if k > 1 else 0
+        steps = unit_phasors(-c[i][None, :] * np.arange(n_lo, n_lo + 2)[:, None])
+        seg = out[o : o + k]
+        seg[0] = unit_phasors(-c[i] * float(b[0]))
+        seg[1:] = steps[nk - n_lo]
+        np.cumprod(seg, axis=0, out=seg)
+        o += k
+    return out
 
 
 def _bank_blocks(blocks: BlockSums, bnd: Sequence[np.ndarray]) -> np.ndarray:
@@ -405,11 +425,12 @@ def _bank_blocks(blocks: BlockSums, bnd: Sequence[np.ndarray]) -> np.ndarray:
     row = np.repeat(np.arange(n_b), sizes)
     q, rho = np.divmod(b_all, blk)
     q = np.minimum(q, width - 1)
+    ph_b = _boundary_phasors(c, bnd, sizes)  # e^{−jω_i b}
     # S_q at each boundary's block start, all tones in one gather.
     f = sums.reshape(-1)[(row * (m * width) + q)[:, None] + width * np.arange(m)]
     if blk > 1:
         # The samples qL .. b − 1 (at most L − 1), eq. (3): Σ_l g_l·w^l by Horner's rule with
-        # w = e^{−jω_i}, then turned by e^{−jω_i qL} (two-table phasors).
+        # w = e^{−jω_i}, turned by e^{−jω_i qL} = e^{−jω_i b}·e^{jω_i ρ}.
         lm = np.arange(blk)
         n_of = np.array([a.size for a in blocks.samples], dtype=np.int64)
         idx = np.minimum(q[:, None] * blk + lm, n_of[row][:, None] - 1)
@@ -425,10 +446,9 @@ def _bank_blocks(blocks: BlockSums, bnd: Sequence[np.ndarray]) -> np.ndarray:
             part += g[:, ll, None]
             if ll:
                 part *= w1
-        r_len, hi, lo = _phasor_tables(c, -float(blk), int(q.max()) + 1)
-        qh, ql = np.divmod(q, r_len)
-        part *= hi[row, qh]
-        part *= lo[row, ql]
+        back = unit_phasors(c[:, None, :] * lm[None, :, None])  # (B, L, M): e^{jω_i ρ}
+        part *= back[row, rho]
+        part *= ph_b
         f += part
     d = f[1:] - f[:-1]
     # Drop the differences across bursts (the last boundary of one and the first of the next).
@@ -436,16 +456,16 @@ def _bank_blocks(blocks: BlockSums, bnd: Sequence[np.ndarray]) -> np.ndarray:
     keep = np.ones(d.shape[0], dtype=bool)
     keep[ends[:-1] - 1] = False
     d = d[keep]
-    # Centre phase of eq. (2): e^{j2πc·c_k} with 2c_k = b_k + b_{k+1} − 1 a whole number.
-    sym_row = np.repeat(np.arange(n_b), sizes - 1)
-    lo_b = np.delete(b_all, ends - 1)
-    hi_b = np.delete(b_all, np.r_[0, ends[:-1]])
-    h = lo_b + hi_b - 1
-    r_len, hi, lo = _phasor_tables(c, 0.5, int(h.max()) + 1)
-    hh, hl = np.divmod(h, r_len)
-    d *= hi[sym_row, hh]
-    d *= lo[sym_row, hl]
-    d /= np.sqrt(hi_b - lo_b)[:, None]
+    # Centre phase of eq. (2): e^{jω_i c_k} = conj(e^{−jω_i b_k})·e^{jω_i (N_k − 1)/2}.
+    first = np.ones(b_all.size, dtype=bool)
+    first[ends - 1] = False
+    nk = np.diff(b_all)[keep]
+    sym_row = row[first]
+    n_lo = np.array([int(np.diff(b).min()) if b.size > 1 else 0 for b in bnd])
+    half = unit_phasors(c[:, None, :] * ((n_lo[:, None] + np.arange(2) - 1) / 2.0)[:, :, None])
+    d *= np.conj(ph_b[first])
+    d *= half[sym_row, nk - n_lo[sym_row]]
+    d /= np.sqrt(nk)[:, None]
     return d
 
 
@@ -932,15 +952,19 @@ def _mix_blocks(arrays, c: np.ndarray, blk: int, fs: float, scratch: Scratch) ->
     step = c[:, :, None] * blk
     within = unit_phasors(-step * np.arange(r_len)).astype(dt)
     starts = unit_phasors(-step * (np.arange(s_len) * r_len)).astype(dt)
-    y = scratch.get("block_products", (n_b, m, s_len * r_len), dt)
-    for b in range(n_b):  # ragged rows: one product per burst
-        k = int(nbk[b])
-        np.matmul(w_t[b], arrays[b][: k * blk].reshape(k, blk).T, out=y[b, :, :k])
-        y[b, :, k:] = 0.0
-    y4 = y.reshape(n_b, m, s_len, r_len)
-    y4 *= starts[:, :, :, None]  # eq. (1)
-    y4 *= within[:, :, None, :]
-    np.cumsum(y[:, :, :j_max], axis=2, dtype=np.complex128, out=sums[:, :, 1:])
+    step_b = max(1, _SLICE_BYTES // (s_len * r_len * m * 24))
+    y_all = scratch.get("block_products", (min(n_b, step_b), m, s_len * r_len), dt)
+    for i0 in range(0, n_b, step_b):  # a few bursts at a time, their products kept cached
+        i1 = min(n_b, i0 + step_b)
+        y = y_all[: i1 - i0]
+        for r, b in enumerate(range(i0, i1)):  # ragged rows: one product per burst
+            k = int(nbk[b])
+            np.matmul(w_t[b], arrays[b][: k * blk].reshape(k, blk).T, out=y[r, :, :k])
+            y[r, :, k:] = 0.0
+        y4 = y.reshape(i1 - i0, m, s_len, r_len)
+        y4 *= starts[i0:i1, :, :, None]  # eq. (1)
+        y4 *= within[i0:i1, :, None, :]
+        np.cumsum(y[:, :, :j_max], axis=2, dtype=np.complex128, out=sums[i0:i1, :, 1:])
     return BlockSums(
         sums=sums,
         n_blocks=nbk,

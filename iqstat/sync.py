@@ -24,9 +24,13 @@ import scipy.signal
 import scipy.stats
 
 from iqstat.correlate import (
+    _SLICE_BYTES,
     BlockSums,
+    Scratch,
+    _bank_blocks,
     _check_rate,
     _check_tone_list,
+    _mix_blocks,
     batch_buffer,
     block_samples_for,
     blocks_of_mixed,
@@ -208,6 +212,16 @@ def _chunks(ids: np.ndarray, bytes_each: int):
     step = max(1, _CHUNK_BYTES // max(1, bytes_each))
     for i in range(0, ids.size, step):
         yield ids[i : i + step]
+
+
+def _median_rows(a: np.ndarray) -> np.ndarray:
+    """Median of each row of a 2-D array (np.median along axis 1, by one partition)."""
+    n = a.shape[1]
+    h = n // 2
+    if n % 2:
+        return np.partition(a, h, axis=1)[:, h]
+    p = np.partition(a, (h - 1, h), axis=1)
+    return 0.5 * (p[:, h - 1] + p[:, h])
 
 
 def _rows_of(buf: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -667,6 +681,105 @@ def recover_timing_mixed_many(
     return recover_timing_blocks_many(blocks, rate, track_clock=track_clock)
 
 
+#: Bursts worked together by :func:`time_and_correlate_many`: their block sums and feature
+#: temporaries stay below about this many bytes (reused from chunk to chunk).
+_FUSED_CHUNK_BYTES = 8 << 20
+
+
+def time_and_correlate_many(
+    xs: Sequence[np.ndarray],
+    sample_rate_hz: float,
+    symbol_rate_hz: float,
+    tone_freqs_list: Sequence[Sequence[float]],
+    *,
+    track_clock: bool = True,
+) -> tuple[list[SymbolTiming | MeasurementError | None], list[np.ndarray | None]]:
+    """The fast timing stage of a batch: block-rate mixing, decimated timing and the bank.
+
+    Parameters
+    ----------
+    xs : sequence of B ndarrays, shapes (n_b,)
+        The bursts' samples (ragged), complex64 or complex128.
+    sample_rate_hz : float
+        Sample rate fs [Hz].
+    symbol_rate_hz : float
+        Nominal symbol rate Rs [Bd], common to the batch.
+    tone_freqs_list : sequence of B sequences of float
+        Each burst's tones [Hz], CFO included; the same count M for all.
+    track_clock : bool
+        Estimate the clock offset (see :func:`recover_timing`).
+
+    Returns
+    -------
+    (timings, zs)
+        ``timings[b]``: what :func:`recover_timing_blocks_many` gives the burst (SymbolTiming,
+        MeasurementError, or None when the symbols are too short to decimate);
+        ``zs[b]``: the correlator outputs (n_symbols, M) on that grid, what
+        :func:`~iqstat.correlate.correlate_symbols` gives to ~1e-7 relative, or None where
+        the timing is not a SymbolTiming. Where the line is below STRONG_LINE_DB, re-time the
+        burst with :func:`recover_timing_many` and correlate it again.
+
+    Notes
+    -----
+    :func:`~iqstat.correlate.mix_blocks_many` (blocks of
+    :func:`~iqstat.correlate.block_samples_for` the nominal period),
+    :func:`recover_timing_blocks_many` and ``correlate_symbols_many(blocks=)`` run on a few
+    bursts at a time (~4 MB of block sums and temporaries, the same work arrays for every
+    chunk), so each chunk's block sums are still cached when the bank reads them.
+    """
+    fs = _check_rate("sample_rate_hz", sample_rate_hz)
+    rate = _check_rate("symbol_rate_hz", symbol_rate_hz)
+    nb = len(xs)
+    if len(tone_freqs_list) != nb:
+        raise ParameterError(
+            f"xs has {nb} bursts but tone_freqs_list has {len(tone_freqs_list)} entries; "
+            "give one tone list per burst"
+        )
+    timings: list = [None] * nb
+    zs: list = [None] * nb
+    if nb == 0:
+        return timings, zs
+    arrays = [check_samples(x) for x in xs]
+    c = _check_tone_list(tone_freqs_list, fs) / fs
+    p0 = fs / rate
+    if p0 < 2 * FEATURE_MIN_BLOCKS:
+        return timings, zs
+    blk = block_samples_for(p0)
+    m = c.shape[1]
+    each = max(a.size for a in arrays) // blk * (m * 16 + 8)
+    step = max(1, _FUSED_CHUNK_BYTES // max(1, each))
+    scratch = Scratch()
+    for i0 in range(0, nb, step):
+        i1 = min(nb, i0 + step)
+        blocks = _mix_blocks(arrays[i0:i1], c[i0:i1], blk, fs, scratch)
+        part = _time_blocks(blocks, rate, track_clock, scratch)
+        timed = [j for j, t in enumerate(part) if isinstance(t, SymbolTiming)]
+        timings[i0:i1] = part
+        if not timed:
+            continue
+        sub = blocks if len(timed) == len(part) else _take_blocks(blocks, timed)
+        bnd = [part[j].boundaries() for j in timed]
+        z = _bank_blocks(sub, bnd)
+        o = 0
+        for j, b in zip(timed, bnd, strict=True):
+            zs[i0 + j] = z[o : o + b.size - 1]
+            o += b.size - 1
+    return timings, zs
+
+
+def _take_blocks(blocks: BlockSums, rows: list[int]) -> BlockSums:
+    """The bursts ``rows`` of a BlockSums (their sums copied out of the shared buffer)."""
+    r = np.asarray(rows, dtype=np.int64)
+    return dataclasses.replace(
+        blocks,
+        sums=blocks.sums[r],
+        n_blocks=blocks.n_blocks[r],
+        n_samples=blocks.n_samples[r],
+        cycles_per_sample=blocks.cycles_per_sample[r],
+        samples=tuple(blocks.samples[j] for j in rows),
+    )
+
+
 def recover_timing_blocks_many(
     blocks: BlockSums,
     symbol_rate_hz: float,
@@ -714,6 +827,11 @@ def recover_timing_blocks_many(
        Commun. 36(5):605–612, 1988.
     """
     rate = _check_rate("symbol_rate_hz", symbol_rate_hz)
+    return _time_blocks(blocks, rate, track_clock, Scratch())
+
+
+def _time_blocks(blocks: BlockSums, rate: float, track_clock: bool, scratch: Scratch) -> list:
+    """:func:`recover_timing_blocks_many` with its work arrays from ``scratch``."""
     nb = len(blocks)
     out: list = [None] * nb
     if nb == 0:
@@ -742,15 +860,14 @@ def recover_timing_blocks_many(
     n_feat = int(blocks.n_blocks[ok_a].max()) + 1 - window
     block_f = int(round(CLOCK_BLOCK_SYMBOLS * p0 / blk))  # feature points per clock block
     width = -(-n_feat // block_f) * block_f
-    step = max(1, min(ok_a.size, _CHUNK_BYTES // (width * (16 + 8 + 8 + 8))))
+    step = max(1, min(ok_a.size, _SLICE_BYTES // (n_feat * (16 + 8 + 8))))
     bufs = (
-        np.empty((step, n_feat), dtype=np.complex128),
-        np.empty((step, n_feat)),
-        np.empty((step, n_feat)),
-        np.empty((step, width)),
+        scratch.get("feature_diff", (step, n_feat), np.complex128),
+        scratch.get("feature_pw", (step, n_feat), np.float64),
+        scratch.get("feature_pw2", (step, n_feat), np.float64),
+        scratch.get("feature", (ok_a.size, width), np.float64),
     )
-    for i in range(0, ok_a.size, step):
-        _time_blocks_chunk(blocks, ok_a[i : i + step], p0, window, block_f, track_clock, bufs, out)
+    _time_blocks_chunk(blocks, ok_a, p0, window, block_f, track_clock, bufs, out)
     return out
 
 
@@ -764,20 +881,24 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
     ne = jb + 1 - window  # whole windows per burst
     n_feat = int(ne.max())
     q_tot = -(-n_feat // block_f)
-    d, pw, pw2 = (b[:bc, :n_feat] for b in bufs[:3])
     e = bufs[3][:bc, : q_tot * block_f]
     e[:, n_feat:] = 0.0
-    ev = e[:, :n_feat]
-    for i in range(m):  # M <= 4 tones: e_q = max_i |S_{q+W} − S_q|²
-        np.subtract(s[:, i, window : window + n_feat], s[:, i, :n_feat], out=d)
-        if i == 0:
-            np.square(d.real, out=ev)
-            np.square(d.imag, out=pw)
-            ev += pw
-        else:
-            np.square(d.real, out=pw)
-            pw += np.square(d.imag, out=pw2)
-            np.maximum(ev, pw, out=ev)
+    step = bufs[0].shape[0]
+    for r0 in range(0, bc, step):  # elementwise passes a few bursts at a time (cached)
+        r1 = min(bc, r0 + step)
+        d, pw, pw2 = (b[: r1 - r0, :n_feat] for b in bufs[:3])
+        ev = e[r0:r1, :n_feat]
+        sr = s[r0:r1]
+        for i in range(m):  # M <= 4 tones: e_q = max_i |S_{q+W} − S_q|²
+            np.subtract(sr[:, i, window : window + n_feat], sr[:, i, :n_feat], out=d)
+            if i == 0:
+                np.square(d.real, out=ev)
+                np.square(d.imag, out=pw)
+                ev += pw
+            else:
+                np.square(d.real, out=pw)
+                pw += np.square(d.imag, out=pw2)
+                np.maximum(ev, pw, out=ev)
     valid = np.arange(e.shape[1]) < ne[:, None]
     e *= valid
     peak = e.max(axis=1)
@@ -804,9 +925,10 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
         bins = np.r_[np.arange(lo, max(lo, kk - 3)), np.arange(min(hi, kk + 4), hi)]
         if bins.size == 0:
             continue
-        seg = e[sel, : min(int(nf), e.shape[1])]
+        # float32: the floor is a median level (1e-7 relative rounding is far below its spread)
+        seg = e[sel, : min(int(nf), e.shape[1])].astype(np.float32)
         spec = scipy.fft.rfft(seg, int(nf), axis=1)[:, bins]
-        floor[sel] = np.median(spec.real**2 + spec.imag**2, axis=1)
+        floor[sel] = _median_rows(spec.real.astype(np.float64) ** 2 + spec.imag**2)
     with np.errstate(divide="ignore"):
         line_snr = np.where(
             floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf
