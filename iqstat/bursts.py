@@ -824,12 +824,19 @@ def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
         shift = a - ra  # pad, except where the window was clipped at the capture's start
         for nfft in np.unique(nfft_of).tolist():
             r = np.flatnonzero(nfft_of == nfft)
-            X = scipy.fft.fft(x[r, : min(x.shape[1], nfft)], nfft, axis=1)
+            # One copy into the zero-padded rows, transformed in place.
+            w_c = min(x.shape[1], nfft)
+            X = np.zeros((r.size, nfft), dtype=x.dtype)
+            if r.size == x.shape[0]:
+                X[:, :w_c] = x[:, :w_c]
+            else:
+                X[:, :w_c] = x[r, :w_c]
+            X = scipy.fft.fft(X, axis=1, overwrite_x=True)
             f = scipy.fft.fftfreq(nfft, 1.0 / fs)
             r0, r1 = _runs((f < band_hz[0]) | (f > band_hz[1]))
             for u, v in zip(r0.tolist(), r1.tolist(), strict=True):
                 X[:, u:v] = 0
-            y = scipy.fft.ifft(X, axis=1)
+            y = scipy.fft.ifft(X, axis=1, overwrite_x=True)
             shifts = shift[r]
             for s in np.unique(shifts).tolist():
                 if shifts[0] == shifts[-1]:  # one shift (the usual case): no row selection
