@@ -613,7 +613,7 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
     n_frames = p.size
     scales = [m for m in SMOOTHING_FRAMES if m <= n_frames]
     per_scale = [(m, _scale_regions(p, dof, floor, pfa, m)) for m in scales]
-    allint = [(int(a), int(b), m) for m, r in per_scale for a, b in r]
+    allint = [(a, b, m) for m, r in per_scale for a, b in r.tolist()]
     if not allint:
         return []
     pm = _Prefix(p)
@@ -635,7 +635,10 @@ def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[
         # shows a gap that is decisively noise; within a burst, the finest length that still
         # sees it whole gives its edges. (Taking the finest fragments everywhere would let a
         # weak burst's dips mask the true gaps, and bursts would merge.)
-        by_scale = {m: _Intervals((a, b) for a, b, mm in cl if mm == m) for m in scales}
+        per_m: dict[int, list[tuple[int, int]]] = {m: [] for m in scales}
+        for a, b, mm in cl:
+            per_m[mm].append((a, b))
+        by_scale = {m: _Intervals(per_m[m]) for m in scales}
         merged = _split_by_scale(pm, dof, floor, by_scale, scales[::-1], cl[0][0], reach_of(cl))
         # A piece found at smoothing length m may start up to m frames before the true edge.
         for i, (a, b, m_first, m_last) in enumerate(merged):
