@@ -534,8 +534,22 @@ class _Prepared:
         return np.add.reduceat(v, self.starts, axis=0)
 
 
-def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Prepared:
-    """Checks of all bursts, then scaling and whitened energies in a few numpy calls."""
+@dataclass(frozen=True)
+class _Gathered:
+    """Checked bursts, concatenated as given (before scaling): the part of the preparation
+    that does not depend on which symbols a fit uses."""
+
+    z: np.ndarray  # (N, M) complex128, the bursts of ``keep`` concatenated
+    n: np.ndarray  # (B,) symbols of each kept burst
+    keep: np.ndarray  # (B,) position in the caller's list
+    grams: np.ndarray  # (count, M, M) of all bursts
+    identity: np.ndarray  # (count,)
+    n_all: np.ndarray  # (count,)
+    count: int
+
+
+def _gather(zs, grams, modulation: str) -> _Gathered:
+    """Checks of all bursts (dtype, shape, Gram matrices, finite values) and concatenation."""
     arrs = _check_output_arrays(zs, modulation)
     count = len(arrs)
     m = N_BRANCHES[modulation]
@@ -544,14 +558,27 @@ def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Pr
         grams = None
     r_all, id_all = _check_grams(grams, m, count)
     n_all = np.array([len(a) for a in arrs], dtype=np.intp)
-    early = {}
-    for i in np.flatnonzero(n_all < MIN_SYMBOLS):
-        early[int(i)] = _too_few(method, modulation, int(n_all[i]), priors)
     keep = np.flatnonzero(n_all >= MIN_SYMBOLS)
     n = n_all[keep]
-    starts = np.cumsum(n) - n
     z = np.concatenate([arrs[i] for i in keep]) if keep.size else np.zeros((0, m), complex)
-    _check_finite(z, starts, keep, count)
+    _check_finite(z, np.cumsum(n) - n, keep, count)
+    return _Gathered(z, n, keep, r_all, id_all, n_all, count)
+
+
+def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Prepared:
+    """Checks of all bursts, then scaling and whitened energies in a few numpy calls."""
+    return _scaled(_gather(zs, grams, modulation), modulation, method, priors)
+
+
+def _scaled(g: _Gathered, modulation: str, method: str, priors: np.ndarray) -> _Prepared:
+    """Scaling per burst and whitened energies of gathered bursts; too short / all-zero bursts
+    get their early (failed) results."""
+    m = N_BRANCHES[modulation]
+    early = {}
+    for i in np.flatnonzero(g.n_all < MIN_SYMBOLS):
+        early[int(i)] = _too_few(method, modulation, int(g.n_all[i]), priors)
+    keep, n, z = g.keep, g.n, g.z
+    starts = np.cumsum(n) - n
     flat = z.view(np.float64).reshape(len(z), 2 * m)  # (re, im) columns
     if keep.size:
         scale = np.max(np.maximum.reduceat(np.abs(flat), starts, axis=0), axis=1)
@@ -560,13 +587,13 @@ def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Pr
     zero = scale == 0.0
     if zero.any():
         for i in keep[zero]:
-            early[int(i)] = _no_energy(method, modulation, int(n_all[i]), priors)
+            early[int(i)] = _no_energy(method, modulation, int(g.n_all[i]), priors)
         rows = np.repeat(~zero, n)
         flat, keep, n, scale = flat[rows], keep[~zero], n[~zero], scale[~zero]
         starts = np.cumsum(n) - n
     flat = flat / np.repeat(scale, n)[:, None]
     z = flat.view(np.complex128)
-    grams_k, identity = r_all[keep], id_all[keep]
+    grams_k, identity = g.grams[keep], g.identity[keep]
     sq = flat * flat
     energy = sq[:, 0::2] + sq[:, 1::2]  # |z_j|²
     q = energy[:, 0].copy()
@@ -1880,8 +1907,15 @@ def fit_nda_many(
             f"estimate_p_on=True applies to ook only, not {modulation}; drop the option"
         )
     prep = _prepare(zs, grams, modulation, "nda-ml", pi)
+    return _nda_prepared(prep, len(zs), modulation, pi, estimate_p_on, gof)
+
+
+def _nda_prepared(
+    prep: _Prepared, count_all: int, modulation: str, pi: np.ndarray, estimate_p_on: bool, gof: bool
+) -> list[NoncoherentFit]:
+    """The NDA fits of a preparation (``count_all`` bursts in the caller's list)."""
     if not prep.index.size:
-        return _assemble(len(zs), prep, [])
+        return _assemble(count_all, prep, [])
     z, q, n = prep.z, prep.q, prep.n
     m = z.shape[1]
     count = len(n)
@@ -1949,7 +1983,7 @@ def fit_nda_many(
         symbols=None,
         run_gof=gof,
     )
-    return _assemble(len(zs), prep, fits)
+    return _assemble(count_all, prep, fits)
 
 
 def fit_nda(
@@ -2069,8 +2103,15 @@ def fit_da_many(
     syms = _check_symbol_arrays(symbols_list, [len(a) for a in arrs], zs, modulation)
     pi = _check_priors(None, modulation)
     prep = _prepare(arrs, grams, modulation, "da-ml", pi)
+    return _da_prepared(prep, syms, len(zs), modulation, pi, gof)
+
+
+def _da_prepared(
+    prep: _Prepared, syms: list, count_all: int, modulation: str, pi: np.ndarray, gof: bool
+) -> list[NoncoherentFit]:
+    """The DA fits of a preparation; ``syms`` the checked symbols of every burst."""
     if not prep.index.size:
-        return _assemble(len(zs), prep, [])
+        return _assemble(count_all, prep, [])
     sym = np.concatenate([syms[i] for i in prep.index])
     z, q, n = prep.z, prep.q, prep.n
     m = z.shape[1]
@@ -2104,7 +2145,7 @@ def fit_da_many(
                 index=prep.index[keep],
             )
             if not keep.size:
-                return _assemble(len(zs), prep, [])
+                return _assemble(count_all, prep, [])
             sym, on, z, q, n, n_on, q_sum = (
                 sym[rows],
                 on[rows],
@@ -2160,7 +2201,7 @@ def fit_da_many(
         symbols=sym,
         run_gof=gof,
     )
-    return _assemble(len(zs), prep, fits)
+    return _assemble(count_all, prep, fits)
 
 
 def fit_da(
@@ -2223,8 +2264,15 @@ def fit_dd_many(
     _check_modulation(modulation)
     pi = _check_priors(None, modulation)
     prep = _prepare(zs, grams, modulation, "dd-moment", pi)
+    return _dd_prepared(prep, len(zs), modulation, pi, gof)
+
+
+def _dd_prepared(
+    prep: _Prepared, count_all: int, modulation: str, pi: np.ndarray, gof: bool
+) -> list[NoncoherentFit]:
+    """The DD fits of a preparation (``count_all`` bursts in the caller's list)."""
     if not prep.index.size:
-        return _assemble(len(zs), prep, [])
+        return _assemble(count_all, prep, [])
     count = len(prep.n)
     if modulation == "ook":
         a2, n0, p, rounds = _dd_ook_many(prep)
@@ -2303,7 +2351,7 @@ def fit_dd_many(
                 gof=gofs[i],
             )
         )
-    return _assemble(len(zs), prep, fits)
+    return _assemble(count_all, prep, fits)
 
 
 def fit_dd(
