@@ -895,7 +895,7 @@ def _interpolate_rows(spec: np.ndarray, k: np.ndarray, n_dft: int) -> np.ndarray
     safe = np.where(den == 0, 1.0, den)
     delta = np.where(den == 0, 0.0, np.real((xm - xp) / safe))  # Jacobsen [1]
     delta *= math.tan(math.pi / n_dft) / (math.pi / n_dft)  # Candan [2]
-    return k + np.clip(delta, -0.5, 0.5)
+    return k + np.minimum(np.maximum(delta, -0.5), 0.5)
 
 
 def _block_size(nfft: int, width_bins: int) -> int:
@@ -930,8 +930,9 @@ def _coarse_start_rows(
     # 20 % quantile (linear interpolation) of the smoothed bins, over its Gamma quantile
     pos = 0.2 * (nbk - 1)
     i = int(math.floor(pos))
-    part = np.partition(smooth, (i, min(i + 1, nbk - 1)), axis=1)
-    q20 = part[:, i] + (pos - i) * (part[:, min(i + 1, nbk - 1)] - part[:, i])
+    part = np.partition(smooth, i, axis=1)  # one kth: two cost ~7× as much
+    above = part[:, i + 1 :].min(axis=1) if i + 1 < nbk else part[:, i]
+    q20 = part[:, i] + (pos - i) * (above - part[:, i])
     dof = np.maximum(1.0, wb * s * n_used / nfft)
     floor = q20 / (special.gammaincinv(dof, 0.2) / dof)
     return _wrap((kb * s + 0.5 * (s - 1)) * df, fs), floor
@@ -1573,9 +1574,12 @@ def estimate_link_many(
         arrays[i] = arr
         groups.setdefault(fft_size(arr.size), []).append(i)
     for nfft, members in groups.items():
-        n_chunks = -(-len(members) // BATCH_ROWS)  # near-equal chunks: SIMD over rows
-        for rows in np.array_split(np.asarray(members), n_chunks):
-            rows = rows.tolist()
+        # near-equal chunks of a multiple of 4 rows: the FFT runs SIMD over 4 rows at a time
+        # (complex64), a row left over costs about twice as much
+        n_chunks = -(-len(members) // BATCH_ROWS)
+        size = -(-len(members) // (4 * n_chunks)) * 4
+        for start in range(0, len(members), size):
+            rows = members[start : start + size]
             fits = _carrier_rows(
                 [arrays[i] for i in rows], nfft, fs, m, p, rs, df, band_margin_symbols
             )
