@@ -17,7 +17,15 @@ import numpy as np
 import pytest
 
 from iqstat.errors import ParameterError
-from iqstat.fit import fit_da, fit_da_many, fit_dd, fit_dd_many, fit_nda, fit_nda_many
+from iqstat.fit import (
+    fit_bursts_many,
+    fit_da,
+    fit_da_many,
+    fit_dd,
+    fit_dd_many,
+    fit_nda,
+    fit_nda_many,
+)
 
 GRAM_HALF = np.array([[1.0, 2j / math.pi], [-2j / math.pi, 1.0]])  # h = 1/2, |ρ| = 2/π
 
@@ -128,3 +136,76 @@ def test_bad_burst_in_a_batch_is_named():
         fit_da_many(zs[:3], syms[:2], modulation="2fsk")
     with pytest.raises(ParameterError, match="list of"):
         fit_nda_many(np.ones((50, 2)), modulation="2fsk")
+
+
+def _known_lists(syms, rng):
+    """Known symbols per burst (−1 unknown): none, all, a random part, too few to fit."""
+    out = []
+    for k, s in enumerate(syms):
+        kind = k % 4
+        if kind == 0:
+            out.append(None)
+        elif kind == 1:
+            out.append(np.asarray(s).copy())
+        elif kind == 2:
+            part = np.asarray(s).copy()
+            part[rng.random(len(part)) < 0.6] = -1
+            out.append(part)
+        else:
+            few = np.full(len(s), -1)
+            few[:19] = np.asarray(s)[:19]
+            out.append(few)
+    return out
+
+
+@pytest.mark.parametrize("m, modulation", [(2, "2fsk"), (4, "4fsk"), (1, "ook")])
+def test_fit_bursts_many_equals_the_three_calls(m, modulation):
+    """One preparation for NDA (with GOF), DD and DA (known rows only) gives the same fits as
+    the three separate calls; DA only where >= 20 symbols are known (else None)."""
+    rng = np.random.default_rng(4300 + m)
+    if modulation == "ook":
+        drawn = [_draw_ook(rng, n, es) for n, es in [(600, 9.0), (400, 2.0), (800, 15.0)]]
+        zs, syms = [d[0] for d in drawn], [d[1] for d in drawn]
+        zs = [*zs[:2], np.zeros((30, 1), complex), zs[2], zs[0][:10]]
+        syms = [*syms[:2], np.zeros(30, int), syms[2], syms[0][:10]]
+        grams = None
+    else:
+        zs, syms, grams = _mixed_fsk(m)
+    known = _known_lists(syms, rng)
+    if modulation == "ook":  # no "on" symbol; an all-zero burst; all known
+        known[1], known[2], known[3] = np.zeros(len(syms[1]), int), syms[2], syms[3]
+    got = fit_bursts_many(zs, grams, modulation=modulation, known_list=known)
+    nda = fit_nda_many(zs, grams, modulation=modulation)
+    dd = fit_dd_many(zs, grams, modulation=modulation, gof=False)
+    assert len(got) == len(zs)
+    n_da = 0
+    for i, (f_nda, f_dd, f_da) in enumerate(got):
+        _same(f_nda, nda[i])
+        _same(f_dd, dd[i])
+        g = None if grams is None else grams[i]
+        k = known[i]
+        if k is None or (k >= 0).sum() < 20:
+            assert f_da is None
+        else:
+            n_da += 1
+            sel = k >= 0
+            _same(f_da, fit_da(zs[i][sel], k[sel], g, modulation=modulation, gof=False))
+    assert n_da >= 2
+    if modulation == "ook":
+        assert "no 'on' symbol" in got[1][2].message
+        assert "zero in every symbol" in got[2][2].message and got[3][2].converged
+    # without known symbols: no DA anywhere
+    assert all(t[2] is None for t in fit_bursts_many(zs, grams, modulation=modulation))
+
+
+def test_fit_bursts_many_bad_known():
+    zs, syms, _ = _mixed_fsk(2)
+    with pytest.raises(ParameterError, match="known_list has 2 entries"):
+        fit_bursts_many(zs[:3], modulation="2fsk", known_list=[None, None])
+    bad = [None, np.full(len(zs[1]), 2)]
+    with pytest.raises(ParameterError, match="burst 1: known symbols go up to 2"):
+        fit_bursts_many(zs[:2], modulation="2fsk", known_list=bad)
+    with pytest.raises(ParameterError, match="burst 0: known has shape"):
+        fit_bursts_many(zs[:2], modulation="2fsk", known_list=[np.zeros(3, int), None])
+    with pytest.raises(ParameterError, match="min_known 5"):
+        fit_bursts_many(zs[:2], modulation="2fsk", min_known=5)
