@@ -1020,8 +1020,11 @@ def _coarse_center_windows(
     t = np.arange(-h, h + 1, dtype=np.float64)
     ok = np.ones(center_hz.size, dtype=bool)
     center = center_hz
+    k_prev = None
     for _ in range(3):
         k0 = np.round(center / df).astype(np.int64)
+        if k_prev is not None and np.array_equal(k0, k_prev):
+            break  # the same windows again: the same centroids (and ok) again
         win.hold(k0 - h, k0 + h)
         v = win.runs(win.local(k0 - h), n_win)
         total = v.sum(axis=1) - floor * n_win
@@ -1029,6 +1032,7 @@ def _coarse_center_windows(
         ok &= total > 0
         shift = mom / np.where(ok, total, 1.0)
         center = np.where(ok, _wrap((k0 + shift) * df, fs), center)
+        k_prev = k0
     return center, ok
 
 
