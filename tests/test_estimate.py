@@ -511,3 +511,78 @@ def test_fft_size_is_a_fast_length_with_little_padding(n):
     size = fft_size(n)
     assert n <= size <= math.ceil(1.125 * n)
     assert scipy.fft.next_fast_len(size) == size  # a length pocketfft handles fast (scipy)
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 1182, 1183])
+def test_row_median_equals_numpy(n):
+    # The one-partition median of the line windows is numpy's median (mean of the two middle
+    # order statistics for an even count) [numpy.median documentation].
+    from iqstat.estimate import _median_rows
+
+    v = np.random.default_rng(n).exponential(size=(5, n)).astype(np.float32)
+    assert np.array_equal(_median_rows(v), np.median(v, axis=1))
+
+
+def test_spectrum_windows_equal_circular_indexing():
+    # Windows read from the spectrum followed by its first bins again must hold exactly the
+    # bins k mod nfft (the DFT is periodic in k, any DFT text), also across the wrap and
+    # after a window is gathered again far away.
+    from iqstat.estimate import _runs_view, _Windows
+
+    rng = np.random.default_rng(3)
+    nfft, width = 1000, 150
+    spec = (rng.standard_normal((4, nfft)) + 1j * rng.standard_normal((4, nfft))).astype(
+        np.complex64
+    )
+    ext = np.concatenate([spec, spec[:, :width]], axis=1)
+    win = _Windows(ext, nfft, width, np.array([0, 500, 999, -30]))
+
+    def held(w, r):
+        return (w.kstart[r] + np.arange(width)) % nfft
+
+    for r in range(4):
+        assert np.array_equal(win.x[r], spec[r, held(win, r)])
+        assert np.array_equal(
+            win.pw[r], spec[r, held(win, r)].real ** 2 + spec[r].imag[held(win, r)] ** 2
+        )
+    lo = np.array([10, 500, 990, 300])  # rows 0 and 3 must be gathered again
+    win.hold(lo, lo + 100)
+    for r in range(4):
+        local = win.local(lo)[r]
+        assert local + 100 < width
+        assert np.array_equal(
+            win.x[r, local : local + 101], spec[r, np.arange(lo[r], lo[r] + 101) % nfft]
+        )
+    a = np.array([[0, 5], [7, 1], [3, 3], [49, 0]])
+    runs = win.runs(a, 100)
+    for r in range(4):
+        for i in range(2):
+            assert np.array_equal(runs[r, i], win.pw[r, a[r, i] : a[r, i] + 100].astype(float))
+    view = _runs_view(win.pw, 100)
+    assert view.shape == (4, width - 99, 100) and view[2, 17, 3] == win.pw[2, 20]
+
+
+def test_batch_equals_single_near_the_band_edges_with_a_nan_burst():
+    # Carriers near 0 Hz and near ±fs/2 put the line and band windows across the DFT's wrap
+    # point; a NaN burst in the middle must get its own error and spoil nothing
+    # [project design rule]; carriers within max(50 Hz, 1 % of Rs) of the truth
+    # [project requirement].
+    cfos = [0.0, 0.5 * FS - 9000.0, -0.5 * FS + 8000.0, -600.0]
+    xs = [
+        make_burst("2fsk", 1.0, 10.0, seed=60 + i, cfo_hz=c, n_symbols=300 + 90 * i)[0]
+        for i, c in enumerate(cfos)
+    ]
+    bad = xs[1].copy()
+    bad[100] = np.nan
+    xs.insert(2, bad)
+    kw = dict(modulation="2fsk", symbol_rate_hz=RS, tone_spacing_hz=RS, band_margin_symbols=2.0)
+    batch = estimate_link_many(xs, FS, **kw)
+    assert isinstance(batch[2], MeasurementError) and "NaN" in str(batch[2])
+    good = [b for i, b in enumerate(batch) if i != 2]
+    for x, got, cfo in zip([x for i, x in enumerate(xs) if i != 2], good, cfos, strict=True):
+        alone = estimate_link_many([x], FS, **kw)[0]
+        assert got.cfo_hz == pytest.approx(alone.cfo_hz, rel=1e-9, abs=1e-9)
+        assert got.quality == pytest.approx(alone.quality, rel=1e-9)
+        assert got.message == alone.message
+        err = (got.cfo_hz - cfo + FS / 2) % FS - FS / 2  # the carrier is circular in fs
+        assert abs(err) <= max(50.0, 0.01 * RS), (cfo, got.cfo_hz)
