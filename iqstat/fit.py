@@ -1358,8 +1358,9 @@ def _ks_marginal_many(
     f = np.empty(len(ys))
     known = np.zeros(len(ys), dtype=bool)
     d = np.zeros(b_count * m)
-    last = off + n_row - 1
-    new = np.union1d(np.flatnonzero(k_of % _KS_BLOCKS[0] == 0), last)
+    first_pass = k_of % _KS_BLOCKS[0] == 0
+    first_pass[off + n_row - 1] = True  # and the last value of every row
+    new = np.flatnonzero(first_pass)
     for block in (*_KS_BLOCKS[1:], 1, 0):
         if new.size:
             f[new] = cdf(new)
