@@ -604,12 +604,11 @@ def _scaled(g: _Gathered, modulation: str, method: str, priors: np.ndarray) -> _
         # over the entries of the Hermitian R⁻¹: Σ_i c_ii|z_i|² + 2·Σ_{i<j} Re(c_ij·z̄_i·z_j)
         rinv = np.linalg.inv(grams_k)
         rinv[identity] = np.eye(m)
-        which = np.repeat(np.arange(len(n)), n)
         qw = np.zeros(len(z))
         for i in range(m):  # M ≤ 4 branches: at most 10 terms, each vectorised over symbols
-            qw += rinv[which, i, i].real * energy[:, i]
+            qw += np.repeat(rinv[:, i, i].real, n) * energy[:, i]
             for j in range(i + 1, m):
-                qw += 2.0 * (rinv[which, i, j] * (z[:, i].conj() * z[:, j])).real
+                qw += 2.0 * (np.repeat(rinv[:, i, j], n) * (z[:, i].conj() * z[:, j])).real
         q = np.where(np.repeat(identity, n), q, np.maximum(qw, 0.0))
     return _Prepared(z, q, starts, n, scale, grams_k, identity, keep, early)
 
