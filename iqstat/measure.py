@@ -35,7 +35,7 @@ from iqstat.estimate import (
     refine_link_across_bursts,
 )
 from iqstat.facts import CaptureFacts, compute_facts
-from iqstat.fit import NoncoherentFit, decide_symbols, fit_da_many, fit_dd_many, fit_nda_many
+from iqstat.fit import NoncoherentFit, decide_symbols, fit_bursts_many, fit_nda_many
 from iqstat.formats.open import open_capture
 from iqstat.patterns import BitCheck, check_known_many, check_prbs_many, prbs_bits
 from iqstat.profile import (
@@ -751,27 +751,15 @@ def _stage_fit(works: list[_Work], ctx: _Context) -> None:
     m = ctx.profile.modulation
 
     def fits(batch: list[_Work]) -> None:
-        zs = [w.z_all[w.sel[0] : w.sel[1]] for w in batch]
-        grams = [w.gram for w in batch]
-        nda = fit_nda_many(zs, grams, modulation=m)
-        dd = fit_dd_many(zs, grams, modulation=m, gof=False)
-        aided = []
-        for w, z in zip(batch, zs, strict=True):
-            if w.known is not None:
-                mask = w.known >= 0
-                if mask.sum() >= MIN_FIT_SYMBOLS:
-                    aided.append((w, z[mask], w.known[mask]))
-        da = fit_da_many(
-            [a[1] for a in aided],
-            [a[2] for a in aided],
-            [a[0].gram for a in aided],
+        out = fit_bursts_many(
+            [w.z_all[w.sel[0] : w.sel[1]] for w in batch],
+            [w.gram for w in batch],
             modulation=m,
-            gof=False,
+            known_list=[w.known for w in batch],
+            min_known=MIN_FIT_SYMBOLS,
         )
-        for w, f, g in zip(batch, nda, dd, strict=True):
-            w.fit, w.fit_dd, w.fit_da = f, g, None
-        for (w, _, _), f in zip(aided, da, strict=True):
-            w.fit_da = f
+        for w, (nda, dd, da) in zip(batch, out, strict=True):
+            w.fit, w.fit_dd, w.fit_da = nda, dd, da
 
     _batched(works, fits)
 
