@@ -151,11 +151,15 @@ def convert_components(raw: np.ndarray, dt: DataType, out: np.ndarray | None = N
     """
     if out is None:
         out = np.empty(raw.shape, dtype=np.float32)
-    np.copyto(out, raw, casting="unsafe")
-    if dt.offset:
-        out -= np.float32(dt.offset)
-    if dt.scale != 1.0:
-        out *= np.float32(dt.scale)
+    if dt.offset or dt.scale == 1.0:
+        np.copyto(out, raw, casting="unsafe")
+        if dt.offset:
+            out -= np.float32(dt.offset)
+        if dt.scale != 1.0:
+            out *= np.float32(dt.scale)
+    else:
+        # One pass: integer × float32 scale computed in float32 (a power of two: exact).
+        np.multiply(raw, np.float32(dt.scale), out=out, casting="unsafe")
     return out
 
 
