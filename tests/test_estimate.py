@@ -586,3 +586,18 @@ def test_batch_equals_single_near_the_band_edges_with_a_nan_burst():
         assert got.message == alone.message
         err = (got.cfo_hz - cfo + FS / 2) % FS - FS / 2  # the carrier is circular in fs
         assert abs(err) <= max(50.0, 0.01 * RS), (cfo, got.cfo_hz)
+
+
+@pytest.mark.parametrize("modulation", ["2fsk", "4fsk"])
+def test_feature_is_largest_minus_second_largest_magnitude(modulation):
+    # The symbol-boundary feature E[n] = |y|(1) − |y|(2) (largest minus second largest branch
+    # magnitude), checked against numpy's sort of the branch magnitudes.
+    from iqstat.estimate import _Burst, tone_frequencies_hz
+
+    x, _ = make_burst(modulation, 1.0, 10.0, seed=70, n_symbols=60)
+    b = _Burst(x, FS, modulation)
+    tones = tone_frequencies_hz(modulation, 0.0, RS)
+    window = 52
+    c = b.mixed_cumsum(tones)
+    mag = np.sort(np.abs(c[:, window:] - c[:, :-window]), axis=0)
+    assert np.array_equal(b.feature(tones, window), mag[-1] - mag[-2])
