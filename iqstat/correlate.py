@@ -29,6 +29,7 @@ the phase of tone i at time c_k.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -385,88 +386,140 @@ def _bank_from_blocks(blocks: BlockSums, arrays, c, bnd, offs, out) -> None:
                 f"blocks burst {i} has {blocks.samples[i].size} samples but xs[{i}] has {a.size}"
                 "; pass mix_blocks_many of the same bursts"
             )
-    out[:] = _bank_blocks(blocks, bnd)
+    _bank_blocks(blocks, bnd, out=out)
 
 
-def _boundary_phasors(c: np.ndarray, bnd: Sequence[np.ndarray], sizes: np.ndarray) -> np.ndarray:
-    """exp(−j2π·c_i·b) at every boundary b of every burst, complex128 (T, M).
+def _bank_blocks(
+    blocks: BlockSums,
+    bnd: Sequence[np.ndarray],
+    rows: np.ndarray | None = None,
+    scratch: Scratch | None = None,
+    out: np.ndarray | None = None,
+) -> np.ndarray:
+    """z[k, i] of every symbol of the bursts ``rows`` of blocks (all by default; boundaries
+    ``bnd``, one array per burst) from block sums: eq. (3) then eq. (2) of
+    :func:`correlate_symbols_many`. Returns (total symbols, M), into ``out`` if given.
 
-    The first of each burst from its phase (reduced modulo one cycle), the others as running
-    products of the per-symbol steps e^{−j2πc_i·N_k} (N_k ∈ {⌊P⌋, ⌈P⌉}: two phasors per
-    burst and tone): K products of unit phasors keep ~K·1e-16 relative rounding.
+    Everything is laid out tone-first, (M, boundaries of all bursts in a row), every gather
+    is a flat ``np.take`` (numpy's row gathers of 2-D arrays are several times slower), and
+    the arrays that scale with the symbol count live in ``scratch`` (fresh ones cost their
+    allocation on every call). The phasors e^{−jω_i b} at the boundaries are running products
+    of the per-symbol steps e^{−jω_i N_k} (N_k ∈ {⌊P⌋, ⌈P⌉}, two phasors per burst and
+    tone), re-anchored at each burst's first boundary: K products of unit phasors keep
+    ~K·1e-16 relative rounding.
     """
-    n_b, m = c.shape
-    out = np.empty((int(sizes.sum()), m), dtype=np.complex128)
-    o = 0
-    for i, b in enumerate(bnd):  # one running product per burst
-        k = b.size
-        if k == 0:
-            continue
-        nk = np.diff(b)
-        n_lo = int(nk.min()) if k > 1 else 0
-        steps = unit_phasors(-c[i][None, :] * np.arange(n_lo, n_lo + 2)[:, None])
-        seg = out[o : o + k]
-        seg[0] = unit_phasors(-c[i] * float(b[0]))
-        seg[1:] = steps[nk - n_lo]
-        np.cumprod(seg, axis=0, out=seg)
-        o += k
-    return out
-
-
-def _bank_blocks(blocks: BlockSums, bnd: Sequence[np.ndarray]) -> np.ndarray:
-    """z[k, i] of every symbol of every burst (boundaries ``bnd``, one array per burst) from
-    block sums: eq. (3) then eq. (2) of :func:`correlate_symbols_many`. Returns (total, M)."""
+    sc = Scratch() if scratch is None else scratch
     blk = blocks.block_samples
-    c = blocks.cycles_per_sample
+    if rows is None:
+        rows = np.arange(len(blocks))
+    c = blocks.cycles_per_sample[rows].T  # (M, B)
     sums = blocks.sums
-    n_b, m, width = sums.shape
+    samples = [blocks.samples[r] for r in rows]
+    n_b, m, width = rows.size, sums.shape[1], sums.shape[2]
     sizes = np.array([b.size for b in bnd], dtype=np.int64)
-    b_all = np.concatenate(bnd)
-    row = np.repeat(np.arange(n_b), sizes)
-    q, rho = np.divmod(b_all, blk)
-    q = np.minimum(q, width - 1)
-    ph_b = _boundary_phasors(c, bnd, sizes)  # e^{−jω_i b}
-    # S_q at each boundary's block start, all tones in one gather.
-    f = sums.reshape(-1)[(row * (m * width) + q)[:, None] + width * np.arange(m)]
+    n_t = int(sizes.sum())
+    ends = np.cumsum(sizes)
+    begins = ends - sizes
+    b_all = sc.get("bank_b", (n_t,), np.int64)
+    np.concatenate(bnd, out=b_all)
+    row = sc.get("bank_row", (n_t,), np.int64)
+    for r, (o, k) in enumerate(zip(begins, sizes, strict=True)):
+        row[o : o + k] = r
+    q = sc.get("bank_q", (n_t,), np.int64)
+    rho = sc.get("bank_rho", (n_t,), np.int64)
+    np.floor_divide(b_all, blk, out=q)
+    np.subtract(b_all, q * blk, out=rho)
+    np.minimum(q, width - 1, out=q)
+    # Per-symbol steps N_t = b_t − b_{t−1} (at each burst's first boundary: none).
+    steps = sc.get("bank_steps", (n_t,), np.int64)
+    np.subtract(b_all[1:], b_all[:-1], out=steps[1:])
+    steps[begins] = np.iinfo(np.int64).max
+    n_lo = np.minimum.reduceat(steps, begins)  # ⌊P⌋ per burst (or none: a 1-boundary burst)
+    n_lo[sizes < 2] = 0
+    steps[begins] = n_lo
+    sel = sc.get("bank_sel", (n_t,), np.int64)
+    np.subtract(steps, np.take(n_lo, row), out=sel)
+    sel += 2 * row  # index into the (B, 2) step tables
+    step_tab = unit_phasors(-c[:, :, None] * (n_lo[:, None] + np.arange(2))).reshape(m, -1)
+    ph_b = sc.get("bank_ph", (m, n_t), np.complex128)
+    first = unit_phasors(-c * b_all[begins].astype(np.float64))  # (M, B): e^{−jω_i b_0}
+    for i in range(m):  # M <= 4 tones
+        np.take(step_tab[i], sel, out=ph_b[i], mode="clip")
+    ph_b[:, begins] = 1.0
+    np.cumprod(ph_b, axis=1, out=ph_b)
+    # Re-anchor each burst: its first boundary's phasor, the running product divided out.
+    anchor = first * np.conj(ph_b[:, begins])
+    tmp = sc.get("bank_tmp", (n_t,), np.complex128)
+    for i in range(m):
+        ph_b[i] *= np.take(anchor[i], row, out=tmp, mode="clip")
+    # S_q at each boundary's block start.
+    base = sc.get("bank_base", (n_t,), np.int64)
+    np.multiply(np.take(rows, row), m * width, out=base)
+    base += q
+    flat = sums.reshape(-1)
+    f = sc.get("bank_f", (m, n_t), np.complex128)
+    for i in range(m):
+        np.take(flat, base, out=f[i], mode="clip")
+        base += width
     if blk > 1:
         # The samples qL .. b − 1 (at most L − 1), eq. (3): Σ_l g_l·w^l by Horner's rule with
         # w = e^{−jω_i}, turned by e^{−jω_i qL} = e^{−jω_i b}·e^{jω_i ρ}.
         lm = np.arange(blk)
-        n_of = np.array([a.size for a in blocks.samples], dtype=np.int64)
-        idx = np.minimum(q[:, None] * blk + lm, n_of[row][:, None] - 1)
-        g = np.empty((b_all.size, blk), dtype=np.result_type(*blocks.samples))
-        o = 0
-        for a, k in zip(blocks.samples, sizes, strict=True):  # one gather per burst
-            g[o : o + k] = a[idx[o : o + k]]
-            o += k
+        n_last = np.array([a.size - 1 for a in samples], dtype=np.int64)
+        idx = sc.get("bank_idx", (n_t, blk), np.int64)
+        np.multiply(q[:, None], blk, out=idx)
+        idx += lm
+        np.minimum(idx, np.take(n_last, row)[:, None], out=idx)
+        dt = np.result_type(*samples)
+        g = sc.get("bank_g", (n_t, blk), dt)
+        for a, o, k in zip(samples, begins, sizes, strict=True):  # one gather per burst
+            np.take(a, idx[o : o + k], out=g[o : o + k], mode="clip")
         g *= lm < rho[:, None]
-        w1 = unit_phasors(-c)[row]  # (T, M)
-        part = w1 * g[:, blk - 1, None]
-        for ll in range(blk - 2, -1, -1):
-            part += g[:, ll, None]
-            if ll:
-                part *= w1
-        back = unit_phasors(c[:, None, :] * lm[None, :, None])  # (B, L, M): e^{jω_i ρ}
-        part *= back[row, rho]
-        part *= ph_b
-        f += part
-    d = f[1:] - f[:-1]
-    # Drop the differences across bursts (the last boundary of one and the first of the next).
-    ends = np.cumsum(sizes)
-    keep = np.ones(d.shape[0], dtype=bool)
-    keep[ends[:-1] - 1] = False
-    d = d[keep]
+        w1 = unit_phasors(-c)  # (M, B)
+        back = unit_phasors(c[:, :, None] * lm).reshape(m, -1)  # (M, B·L): e^{jω_i ρ}
+        back_idx = sc.get("bank_back_idx", (n_t,), np.int64)
+        np.multiply(row, blk, out=back_idx)
+        back_idx += rho
+        wi = sc.get("bank_w", (n_t,), np.complex128)
+        part = sc.get("bank_part", (n_t,), np.complex128)
+        for i in range(m):
+            np.take(w1[i], row, out=wi, mode="clip")
+            np.multiply(wi, g[:, blk - 1], out=part)
+            for ll in range(blk - 2, -1, -1):
+                part += g[:, ll]
+                if ll:
+                    part *= wi
+            part *= np.take(back[i], back_idx, out=tmp, mode="clip")
+            part *= ph_b[i]
+            f[i] += part
+    # Symbol k of a burst: boundaries t and t + 1 of the same burst.
+    n_s = n_t - n_b
+    lo_t = sc.get("bank_lo", (n_s,), np.int64)
+    for o, k, o2 in zip(begins, sizes, begins - np.arange(n_b), strict=True):
+        lo_t[o2 : o2 + k - 1] = np.arange(o, o + k - 1)
+    hi_t = lo_t + 1
+    d = sc.get("bank_d", (m, n_s), np.complex128)
+    tmp_s = tmp[:n_s]
+    for i in range(m):
+        np.take(f[i], hi_t, out=d[i], mode="clip")
+        d[i] -= np.take(f[i], lo_t, out=tmp_s, mode="clip")
     # Centre phase of eq. (2): e^{jω_i c_k} = conj(e^{−jω_i b_k})·e^{jω_i (N_k − 1)/2}.
-    first = np.ones(b_all.size, dtype=bool)
-    first[ends - 1] = False
-    nk = np.diff(b_all)[keep]
-    sym_row = row[first]
-    n_lo = np.array([int(np.diff(b).min()) if b.size > 1 else 0 for b in bnd])
-    half = unit_phasors(c[:, None, :] * ((n_lo[:, None] + np.arange(2) - 1) / 2.0)[:, :, None])
-    d *= np.conj(ph_b[first])
-    d *= half[sym_row, nk - n_lo[sym_row]]
-    d /= np.sqrt(nk)[:, None]
-    return d
+    nk = np.take(steps, hi_t)
+    sym_row = np.take(row, lo_t)
+    half = unit_phasors(c[:, :, None] * ((n_lo[:, None] + np.arange(2) - 1) / 2.0)).reshape(m, -1)
+    hsel = nk - np.take(n_lo, sym_row)
+    hsel += 2 * sym_row
+    scale = 1.0 / np.sqrt(nk)
+    for i in range(m):
+        np.take(ph_b[i], lo_t, out=tmp_s, mode="clip")
+        np.conj(tmp_s, out=tmp_s)
+        d[i] *= tmp_s
+        d[i] *= np.take(half[i], hsel, out=tmp_s, mode="clip")
+        d[i] *= scale
+    if out is None:
+        out = np.empty((n_s, m), dtype=np.complex128)
+    out[...] = d.T
+    return out
 
 
 def branch_energies(z: np.ndarray) -> np.ndarray:
@@ -518,6 +571,16 @@ def template_gram(
     fs = _check_rate("sample_rate_hz", sample_rate_hz)
     f = check_tone_freqs(tone_freqs_hz, fs)
     p = _check_period(period_samples)
+    # R depends on the tone differences only (the carrier offset cancels in conj(t_i)·t_j):
+    # bursts of one link share it, so it is kept per (differences, period, rate).
+    diffs = tuple(float(v) for v in np.round(f - f[0], 6))
+    return _gram_of_differences(diffs, p, fs).copy()
+
+
+@functools.lru_cache(maxsize=256)
+def _gram_of_differences(diffs: tuple, p: float, fs: float) -> np.ndarray:
+    """:func:`template_gram` of tones at ``diffs`` [Hz] from the first one."""
+    f = np.array(diffs)
     n_lo = math.floor(p)
     frac = p - n_lo
 
@@ -527,7 +590,9 @@ def template_gram(
         return t.conj() @ t.T  # eq. (1), evaluated as the sum it is
 
     r = exact(n_lo) if frac < 1e-12 else (1.0 - frac) * exact(n_lo) + frac * exact(n_lo + 1)
-    return 0.5 * (r + r.conj().T)
+    r = 0.5 * (r + r.conj().T)
+    r.flags.writeable = False
+    return r
 
 
 def tone_phasors(cycles_per_sample: np.ndarray, n_samples: int) -> np.ndarray:

@@ -76,6 +76,9 @@ CLOCK_SIGNIFICANCE = 3.0
 #: well inside the matched-energy check's finest step (5 %).
 STRONG_LINE_DB = 20.0
 
+#: Rows of the decimated feature per transform of the spectral floor.
+_FLOOR_ROWS = 8
+
 #: Feature points per symbol of the decimated timing, and the fewest worth decimating to.
 FEATURE_BLOCKS_PER_SYMBOL = 16
 FEATURE_MIN_BLOCKS = 4
@@ -684,6 +687,8 @@ def recover_timing_mixed_many(
 #: Bursts worked together by :func:`time_and_correlate_many`: their block sums and feature
 #: temporaries stay below about this many bytes (reused from chunk to chunk).
 _FUSED_CHUNK_BYTES = 8 << 20
+#: Bursts whose symbols the bank takes together (their per-symbol arrays stay cached).
+_BANK_SLICE_BURSTS = 8
 
 
 def time_and_correlate_many(
@@ -757,27 +762,15 @@ def time_and_correlate_many(
         timings[i0:i1] = part
         if not timed:
             continue
-        sub = blocks if len(timed) == len(part) else _take_blocks(blocks, timed)
-        bnd = [part[j].boundaries() for j in timed]
-        z = _bank_blocks(sub, bnd)
-        o = 0
-        for j, b in zip(timed, bnd, strict=True):
-            zs[i0 + j] = z[o : o + b.size - 1]
-            o += b.size - 1
+        for k0 in range(0, len(timed), _BANK_SLICE_BURSTS):  # a few bursts at a time (cached)
+            sl = timed[k0 : k0 + _BANK_SLICE_BURSTS]
+            bnd = [part[j].boundaries() for j in sl]
+            z = _bank_blocks(blocks, bnd, np.array(sl), scratch)
+            o = 0
+            for j, b in zip(sl, bnd, strict=True):
+                zs[i0 + j] = z[o : o + b.size - 1]
+                o += b.size - 1
     return timings, zs
-
-
-def _take_blocks(blocks: BlockSums, rows: list[int]) -> BlockSums:
-    """The bursts ``rows`` of a BlockSums (their sums copied out of the shared buffer)."""
-    r = np.asarray(rows, dtype=np.int64)
-    return dataclasses.replace(
-        blocks,
-        sums=blocks.sums[r],
-        n_blocks=blocks.n_blocks[r],
-        n_samples=blocks.n_samples[r],
-        cycles_per_sample=blocks.cycles_per_sample[r],
-        samples=tuple(blocks.samples[j] for j in rows),
-    )
 
 
 def recover_timing_blocks_many(
@@ -866,6 +859,7 @@ def _time_blocks(blocks: BlockSums, rate: float, track_clock: bool, scratch: Scr
         scratch.get("feature_pw", (step, n_feat), np.float64),
         scratch.get("feature_pw2", (step, n_feat), np.float64),
         scratch.get("feature", (ok_a.size, width), np.float64),
+        scratch.get("feature32", (min(ok_a.size, _FLOOR_ROWS), width), np.float32),
     )
     _time_blocks_chunk(blocks, ok_a, p0, window, block_f, track_clock, bufs, out)
     return out
@@ -899,11 +893,12 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
                 np.square(d.real, out=pw)
                 pw += np.square(d.imag, out=pw2)
                 np.maximum(ev, pw, out=ev)
-    valid = np.arange(e.shape[1]) < ne[:, None]
-    e *= valid
+    for r_, k in enumerate(ne):  # partial windows past each burst's end
+        e[r_, k:] = 0.0
     peak = e.max(axis=1)
     e -= (e.sum(axis=1) / ne)[:, None]
-    e *= valid
+    for r_, k in enumerate(ne):
+        e[r_, k:] = 0.0
     # Line coefficient per clock block: u_q = u_0 + L·q is uniform, so e^{−j2πu/P0} splits
     # into a per-block start phasor and one within-block table (a real matrix product).
     u0 = (window * blk - 1) / 2.0
@@ -925,10 +920,19 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
         bins = np.r_[np.arange(lo, max(lo, kk - 3)), np.arange(min(hi, kk + 4), hi)]
         if bins.size == 0:
             continue
-        # float32: the floor is a median level (1e-7 relative rounding is far below its spread)
-        seg = e[sel, : min(int(nf), e.shape[1])].astype(np.float32)
-        spec = scipy.fft.rfft(seg, int(nf), axis=1)[:, bins]
-        floor[sel] = _median_rows(spec.real.astype(np.float64) ** 2 + spec.imag**2)
+        # float32 (the floor is a median level: 1e-7 relative rounding is far below its
+        # spread), a few rows per transform (its output then stays small and cached).
+        cols = min(int(nf), e.shape[1])
+        seg = bufs[4][: min(sel.size, _FLOOR_ROWS), :cols]
+        for k0 in range(0, sel.size, _FLOOR_ROWS):
+            rk = sel[k0 : k0 + _FLOOR_ROWS]
+            sk = seg[: rk.size]
+            if rk.size == 1 or rk[-1] - rk[0] == rk.size - 1:
+                sk[...] = e[rk[0] : rk[-1] + 1, :cols]
+            else:
+                sk[...] = e[rk, :cols]
+            spec = scipy.fft.rfft(sk, int(nf), axis=1)[:, bins]
+            floor[rk] = _median_rows(spec.real.astype(np.float64) ** 2 + spec.imag**2)
     with np.errstate(divide="ignore"):
         line_snr = np.where(
             floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf
