@@ -49,6 +49,8 @@ MIN_BLOCKS_PER_SYMBOL = 12
 #: (cache-sized); reductions and transforms run once over a whole chunk.
 _SLICE_BYTES = 1 << 20
 
+#: Blocks per row of the two-table block phasors of :func:`mix_blocks_many`.
+_BLOCK_PHASOR_ROW = 64
 
 
 def _check_rate(name: str, value: float) -> float:
@@ -1012,8 +1014,10 @@ def _mix_blocks(arrays, c: np.ndarray, blk: int, fs: float, scratch: Scratch) ->
     single = all(a.dtype == np.complex64 for a in arrays)
     dt = np.complex64 if single else np.complex128
     w_t = unit_phasors(-c[:, :, None] * np.arange(blk)).astype(dt)  # (B, M, L): w_i[l], eq. (1)
-    # Block phasors e^{−jω_i qL}, q = sR + r, as two tables (see tone_phasors), applied in place.
-    r_len, s_len = _phasor_block(j_max)
+    # Block phasors e^{−jω_i qL}, q = sR + r, as two tables (see tone_phasors), applied in
+    # place; R fixed, so that a burst gets the same products in any batch.
+    r_len = _BLOCK_PHASOR_ROW
+    s_len = -(-max(j_max, 1) // r_len)
     step = c[:, :, None] * blk
     within = unit_phasors(-step * np.arange(r_len)).astype(dt)
     starts = unit_phasors(-step * (np.arange(s_len) * r_len)).astype(dt)
