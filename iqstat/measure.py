@@ -195,9 +195,9 @@ def _blind_rates(capture, detection, profile, margin) -> tuple[float | None, flo
     return rate, (spacing if profile.modulation != "ook" else None)
 
 
-def _as_estimated(e: LinkEstimate, profile: LinkProfile) -> LinkEstimate:
-    return dataclasses.replace(
-        e,
+def _sources(profile: LinkProfile) -> dict[str, str]:
+    """Where a burst's rates come from: the profile, or estimated (refined across bursts)."""
+    return dict(
         symbol_rate_source="profile" if profile.symbol_rate_hz is not None else "estimated",
         tone_spacing_source=(
             "n/a"
@@ -488,6 +488,7 @@ def _stage_link(batch: list[_Work], ctx: _Context) -> None:
         tone_spacing_hz=ctx.tone_spacing_hz,
         band_margin_symbols=AVAILABLE_BAND_SYMBOLS,
     )
+    sources = _sources(ctx.profile)
     for w, est in zip(batch, links, strict=True):
         if isinstance(est, MeasurementError):
             w.result = _unmeasured(
@@ -499,7 +500,7 @@ def _stage_link(batch: list[_Work], ctx: _Context) -> None:
             # The in-band energy is for the available Eb/N0, not part of the link's report.
             quality = dict(est.quality)
             w.band = (quality.pop("band_energy"), quality.pop("band_width_hz"))
-            w.link = _as_estimated(dataclasses.replace(est, quality=quality), ctx.profile)
+            w.link = dataclasses.replace(est, quality=quality, **sources)
 
 
 def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
