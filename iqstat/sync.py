@@ -450,6 +450,7 @@ def recover_timing_many(
     track_clock: bool = True,
     cumulatives: Sequence[np.ndarray] | None = None,
     errors: Literal["raise", "return"] = "raise",
+    coarse: Sequence[SymbolTiming | None] | None = None,
 ) -> list[SymbolTiming | MeasurementError]:
     """:func:`recover_timing` of a batch of bursts, in a fixed number of numpy calls.
 
@@ -472,11 +473,18 @@ def recover_timing_many(
         What a burst that cannot be timed (too short, no energy) does: "raise" raises its
         MeasurementError; "return" puts the MeasurementError in that burst's slot and times
         the others. Bad parameters always raise ParameterError.
+    coarse : sequence of B SymbolTiming or None, optional
+        A grid per burst already found on the decimated feature
+        (:func:`recover_timing_blocks_many` or :func:`time_and_correlate_many`): the
+        matched-energy check starts from it, and its line SNR and clock fit are kept, instead
+        of the full-rate feature's (the costliest step here: ~half of the time). None in a
+        slot: that burst is timed from its full-rate feature.
 
     Returns
     -------
     list of B SymbolTiming (or MeasurementError with ``errors="return"``)
-        Each the same as :func:`recover_timing` of that burst alone (to rounding).
+        Each the same as :func:`recover_timing` of that burst alone (to rounding), or, with
+        ``coarse``, the matched-energy search from that grid.
 
     Notes
     -----
@@ -507,6 +515,14 @@ def recover_timing_many(
         rates = [_check_rate("symbol_rate_hz", r) for r in symbol_rate_hz]
     if cumulatives is not None and len(cumulatives) != nb:
         raise ParameterError(f"cumulatives has {len(cumulatives)} entries for {nb} bursts")
+    if coarse is not None and len(coarse) != nb:
+        raise ParameterError(f"coarse has {len(coarse)} entries for {nb} bursts; give one each")
+    given: dict[int, tuple] = {}
+    for j, t in enumerate(coarse or ()):
+        if t is not None:
+            if not isinstance(t, SymbolTiming):
+                raise ParameterError(f"coarse[{j}] is {type(t).__name__}; give a SymbolTiming")
+            given[j] = _given_coarse(t)
     if nb == 0:
         return []
     arrays = [check_samples(x) for x in xs]
@@ -535,7 +551,7 @@ def recover_timing_many(
         buf, rows_ok = batch_buffer(cums, freqs.shape[1], n[ok])
         rows = np.zeros(nb, dtype=np.int64)
         rows[ok] = rows_ok
-        _time_bursts(buf, rows, n, period0, ok, track_clock, out)
+        _time_bursts(buf, rows, n, period0, ok, track_clock, out, given)
     if errors == "raise":
         for r in out:
             if isinstance(r, MeasurementError):
@@ -543,7 +559,24 @@ def recover_timing_many(
     return out
 
 
-def _time_bursts(buf, rows, n, period0, ok, track_clock, out) -> None:
+def _given_coarse(t: SymbolTiming) -> tuple:
+    """A decimated-feature grid as the coarse tuple of :func:`_clock_decision` (its clock
+    status is the third part of the message :func:`_time_blocks_chunk` writes)."""
+    q = t.quality
+    parts = t.message.split("; ")
+    status = parts[2] if len(parts) > 2 else "clock from the decimated feature"
+    return (
+        float(t.t0_samples),
+        float(t.period_samples),
+        int(q.get("n_clock_blocks", 0)),
+        float(q.get("clock_fit_rms_samples", float("nan"))),
+        float(q.get("clock_offset_se_ppm", float("nan"))),
+        float(q.get("line_snr_db", float("nan"))),
+        status,
+    )
+
+
+def _time_bursts(buf, rows, n, period0, ok, track_clock, out, given=None) -> None:
     """The core of :func:`recover_timing_many` for the bursts ``ok``; fills ``out``.
 
     All stages run on a few bursts at a time (a chunk of ~2 MB of temporaries), so that their
@@ -553,23 +586,26 @@ def _time_bursts(buf, rows, n, period0, ok, track_clock, out) -> None:
     for p0 in np.unique(period0[ok]):  # one group per nominal period (usually one)
         ids = ok[period0[ok] == p0]
         for part in _chunks(ids, width * (16 * 2 + 8 * 3)):
-            _time_chunk(buf, rows, n, float(p0), part, track_clock, out)
+            _time_chunk(buf, rows, n, float(p0), part, track_clock, out, given or {})
 
 
-def _time_chunk(buf, rows, n, p0, part, track_clock, out) -> None:
-    """Timing of the bursts ``part`` (one nominal period p0); fills ``out``."""
+def _time_chunk(buf, rows, n, p0, part, track_clock, out, given) -> None:
+    """Timing of the bursts ``part`` (one nominal period p0); fills ``out``. Bursts in
+    ``given`` start from that coarse grid instead of their full-rate feature."""
     m = buf.shape[1]
     period0 = np.full(out.__len__(), p0)
     window = max(1, int(round(p0)))
-    coarse: dict[int, tuple] = {}
-    co = _coarse_many(_rows_of(buf, rows[part]), n[part], p0, window, track_clock)
-    for jj, j in enumerate(part):
-        if not co["peak"][jj] > 0:
-            out[j] = MeasurementError(
-                "burst has no energy at the tones (all-zero samples); check the burst limits"
-            )
-        else:
-            coarse[int(j)] = _clock_decision(co, jj, p0, window, track_clock)
+    coarse: dict[int, tuple] = {int(j): given[int(j)] for j in part if int(j) in given}
+    rest = np.array([j for j in part if int(j) not in given], dtype=np.int64)
+    if rest.size:
+        co = _coarse_many(_rows_of(buf, rows[rest]), n[rest], p0, window, track_clock)
+        for jj, j in enumerate(rest):
+            if not co["peak"][jj] > 0:
+                out[j] = MeasurementError(
+                    "burst has no energy at the tones (all-zero samples); check the burst limits"
+                )
+            else:
+                coarse[int(j)] = _clock_decision(co, jj, p0, window, track_clock)
     ids = np.array(sorted(coarse), dtype=np.int64)
     if ids.size == 0:
         return
@@ -643,7 +679,12 @@ def _time_chunk(buf, rows, n, p0, part, track_clock, out) -> None:
             period_samples=pj,
             clock_offset_ppm=float((p0 / pj - 1.0) * 1e6) if track_clock else 0.0,
             n_symbols=nj,
-            method="feature line phase (Oerder-Meyr) + block clock fit + matched-energy search",
+            method=(
+                "decimated feature line phase (Oerder-Meyr) + block clock fit + "
+                "matched-energy search"
+                if int(j) in given
+                else "feature line phase (Oerder-Meyr) + block clock fit + matched-energy search"
+            ),
             quality=quality,
             message=message,
             reliable=bool(reliable),
@@ -848,42 +889,36 @@ def _time_blocks(blocks: BlockSums, rate: float, track_clock: bool, scratch: Scr
     if not ok:
         return out
     ok_a = np.array(ok, dtype=np.int64)
-    # Work buffers for a chunk of bursts, reused by every chunk (fresh large temporaries
-    # cost their page faults on every pass).
-    n_feat = int(blocks.n_blocks[ok_a].max()) + 1 - window
-    block_f = int(round(CLOCK_BLOCK_SYMBOLS * p0 / blk))  # feature points per clock block
-    width = -(-n_feat // block_f) * block_f
-    step = max(1, min(ok_a.size, _SLICE_BYTES // (n_feat * (16 + 8 + 8))))
-    bufs = (
-        scratch.get("feature_diff", (step, n_feat), np.complex128),
-        scratch.get("feature_pw", (step, n_feat), np.float64),
-        scratch.get("feature_pw2", (step, n_feat), np.float64),
-        scratch.get("feature", (ok_a.size, width), np.float64),
-        scratch.get("feature32", (min(ok_a.size, _FLOOR_ROWS), width), np.float32),
-    )
+    # Work buffers, reused (fresh large temporaries cost their page faults on every pass).
+    window, n_feat, block_f, width = _feature_layout(blocks.n_blocks[ok_a], p0, blk)
+    bufs = _feature_bufs(scratch, n_feat, width, ok_a.size)
     _time_blocks_chunk(blocks, ok_a, p0, window, block_f, track_clock, bufs, out)
     return out
 
 
-def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock, bufs, out):
-    """:func:`recover_timing_blocks_many` of the bursts ``part``; fills ``out``."""
-    blk = blocks.block_samples
-    s = _rows_of(blocks.sums, part)
-    jb = blocks.n_blocks[part]
-    n = blocks.n_samples[part]
-    bc, m = s.shape[0], s.shape[1]
-    ne = jb + 1 - window  # whole windows per burst
-    n_feat = int(ne.max())
-    q_tot = -(-n_feat // block_f)
-    e = bufs[3][:bc, : q_tot * block_f]
+def _feature_bufs(scratch: Scratch, n_feat: int, width: int, rows: int) -> tuple:
+    step = max(1, min(rows, _SLICE_BYTES // (n_feat * (16 + 8 + 8))))
+    return (
+        scratch.get("feature_diff", (step, n_feat), np.complex128),
+        scratch.get("feature_pw", (step, n_feat), np.float64),
+        scratch.get("feature_pw2", (step, n_feat), np.float64),
+        scratch.get("feature", (rows, width), np.float64),
+        scratch.get("feature32", (min(rows, _FLOOR_ROWS), width), np.float32),
+    )
+
+
+def _feature_rows(s: np.ndarray, window: int, n_feat: int, e: np.ndarray, bufs) -> None:
+    """e_q = max_i |S_{q+W} − S_q|² of the running sums s (R, M, W) into e[:, :n_feat] (and
+    zeros after), a few rows at a time (the temporaries bufs[:3] then stay cached)."""
     e[:, n_feat:] = 0.0
     step = bufs[0].shape[0]
-    for r0 in range(0, bc, step):  # elementwise passes a few bursts at a time (cached)
-        r1 = min(bc, r0 + step)
+    m = s.shape[1]
+    for r0 in range(0, s.shape[0], step):
+        r1 = min(s.shape[0], r0 + step)
         d, pw, pw2 = (b[: r1 - r0, :n_feat] for b in bufs[:3])
         ev = e[r0:r1, :n_feat]
         sr = s[r0:r1]
-        for i in range(m):  # M <= 4 tones: e_q = max_i |S_{q+W} − S_q|²
+        for i in range(m):  # M <= 4 tones
             np.subtract(sr[:, i, window : window + n_feat], sr[:, i, :n_feat], out=d)
             if i == 0:
                 np.square(d.real, out=ev)
@@ -893,6 +928,29 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
                 np.square(d.real, out=pw)
                 pw += np.square(d.imag, out=pw2)
                 np.maximum(ev, pw, out=ev)
+
+
+def _feature_layout(blocks_n: np.ndarray, p0: float, blk: int) -> tuple[int, int, int, int]:
+    """Window W [blocks], feature length, points per clock block and padded width."""
+    window = int(round(p0 / blk))
+    n_feat = int(blocks_n.max()) + 1 - window
+    block_f = int(round(CLOCK_BLOCK_SYMBOLS * p0 / blk))  # feature points per clock block
+    width = -(-max(n_feat, 1) // block_f) * block_f
+    return window, n_feat, block_f, width
+
+
+def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock, bufs, out):
+    """:func:`recover_timing_blocks_many` of the bursts ``part``; fills ``out``."""
+    blk = blocks.block_samples
+    s = _rows_of(blocks.sums, part)
+    jb = blocks.n_blocks[part]
+    n = blocks.n_samples[part]
+    bc = s.shape[0]
+    ne = jb + 1 - window  # whole windows per burst
+    n_feat = int(ne.max())
+    q_tot = -(-n_feat // block_f)
+    e = bufs[3][:bc, : q_tot * block_f]
+    _feature_rows(s, window, n_feat, e, bufs)
     for r_, k in enumerate(ne):  # partial windows past each burst's end
         e[r_, k:] = 0.0
     peak = e.max(axis=1)

@@ -26,6 +26,7 @@ from iqstat.sync import (
     STRONG_LINE_DB,
     recover_timing,
     recover_timing_blocks_many,
+    recover_timing_many,
     recover_timing_mixed_many,
     time_and_correlate_many,
 )
@@ -250,3 +251,26 @@ def test_gram_ignores_the_carrier_offset():
         )
     r[0, 0] = 7.0  # a copy: the kept matrix is not changed by the caller
     assert template_gram([-1200.0, 1200.0], 52, FS)[0, 0] == pytest.approx(1.0)
+
+
+def test_full_rate_check_from_the_decimated_grid():
+    # recover_timing_many(coarse=...) skips the full-rate feature and starts the matched-
+    # energy check from the decimated grid. Reference: the true grid of the synthesised burst
+    # (Es/N0 10 dB, line below STRONG_LINE_DB); tolerance 2 % of a symbol, the finest
+    # steps of the check being 0.1-5 % of a symbol [design of recover_timing, step 3].
+    rng = np.random.default_rng(26)
+    for _ in range(3):
+        x, tones, t_off, period = _burst(rng, 560, 10.0, ppm=20.0)
+        (fast,), _ = time_and_correlate_many([x], FS, RS, [tones])
+        (t,) = recover_timing_many([x], FS, RS, [tones], coarse=[fast])
+        assert t.quality["line_snr_db"] == fast.quality["line_snr_db"]
+        assert t.method.startswith("decimated feature") and "matched-energy" in t.method
+        k = t.n_symbols // 2
+        true_k = t_off + round((t.t0_samples + k * t.period_samples - t_off) / period) * period
+        assert abs(t.t0_samples + k * t.period_samples - true_k) < 0.02 * P0
+        # A None slot is timed from its full-rate feature: the plain call's result.
+        (plain,) = recover_timing_many([x], FS, RS, [tones])
+        (same,) = recover_timing_many([x], FS, RS, [tones], coarse=[None])
+        assert same == plain
+    with pytest.raises(ParameterError, match="coarse"):
+        recover_timing_many([x], FS, RS, [tones], coarse=[fast, fast])
