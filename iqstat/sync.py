@@ -1442,6 +1442,21 @@ def _peak_lag(metric: np.ndarray) -> float:
     return float(m)
 
 
+def _peak_lags(rows: np.ndarray) -> np.ndarray:
+    """:func:`_peak_lag` of every row of a 2-D array (the same formula, vectorised)."""
+    n, width = rows.shape
+    m = np.argmax(rows, axis=1)
+    if width < 3:
+        return m.astype(np.float64)
+    mc = np.clip(m, 1, width - 2)
+    r = np.arange(n)
+    y0, y1, y2 = rows[r, mc - 1], rows[r, mc], rows[r, mc + 1]
+    den = y0 - 2 * y1 + y2
+    ok = (m > 0) & (m < width - 1) & (den < 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(ok, m + 0.5 * (y0 - y2) / np.where(ok, den, -1.0), m.astype(np.float64))
+
+
 def refine_timing_known(
     x: np.ndarray,
     sample_rate_hz: float,
@@ -1520,10 +1535,14 @@ def refine_timing_known(
     idx_x = i0 + j[:, None] * nb - h + np.arange(nb + 2 * h)[None, :]
     idx_r = j[:, None] * nb + np.arange(nb)[None, :]
     n_fft = scipy.fft.next_fast_len(nb + 2 * h)
+    # Single precision for complex64 samples (their own precision; the lags and phases move
+    # by ~1e-6 of a sample and radian), twice as fast.
+    dt = np.complex64 if np.asarray(x).dtype == np.complex64 else np.complex128
     xs = scipy.fft.fft(x[idx_x], n_fft, axis=1)
-    rs = scipy.fft.fft(ref[idx_r], n_fft, axis=1)
-    cc = scipy.fft.ifft(xs * np.conj(rs), axis=1)[:, : 2 * h + 1]
-    c = np.abs(cc) ** 2
+    rs = scipy.fft.fft(ref[idx_r].astype(dt), n_fft, axis=1)
+    xs *= np.conj(rs)
+    cc = scipy.fft.ifft(xs, axis=1)[:, : 2 * h + 1]
+    c = (cc.real.astype(np.float64)) ** 2 + cc.imag.astype(np.float64) ** 2
     lag = _peak_lag(c.sum(axis=0)) - h
     # Carrier: a residual offset turns the blocks' correlation phases at the best lag
     # linearly; their unwrapped slope (blocks of a few symbols keep it below π per block up
@@ -1542,7 +1561,7 @@ def refine_timing_known(
     # of the overall lag, line-fitted against the block centres, give the drift per sample.
     k = int(round(lag)) + h
     lo, hi = max(0, k - int(p // 2)), min(2 * h + 1, k + int(p // 2) + 1)
-    blk_lag = np.array([_peak_lag(row[lo:hi]) + lo - h for row in c])
+    blk_lag = _peak_lags(c[:, lo:hi]) + (lo - h)
     centre = (j + 0.5) * nb  # block centres, samples from the first known symbol
     w = c[:, lo:hi].max(axis=1)
     a_mat = np.stack([np.ones_like(centre), centre], axis=1) * np.sqrt(w)[:, None]
