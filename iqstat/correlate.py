@@ -424,9 +424,7 @@ def _bank_blocks(
     begins = ends - sizes
     b_all = sc.get("bank_b", (n_t,), np.int64)
     np.concatenate(bnd, out=b_all)
-    row = sc.get("bank_row", (n_t,), np.int64)
-    for r, (o, k) in enumerate(zip(begins, sizes, strict=True)):
-        row[o : o + k] = r
+    row = np.repeat(np.arange(n_b), sizes)
     q = sc.get("bank_q", (n_t,), np.int64)
     rho = sc.get("bank_rho", (n_t,), np.int64)
     np.floor_divide(b_all, blk, out=q)
@@ -496,9 +494,9 @@ def _bank_blocks(
             f[i] += part
     # Symbol k of a burst: boundaries t and t + 1 of the same burst.
     n_s = n_t - n_b
-    lo_t = sc.get("bank_lo", (n_s,), np.int64)
-    for o, k, o2 in zip(begins, sizes, begins - np.arange(n_b), strict=True):
-        lo_t[o2 : o2 + k - 1] = np.arange(o, o + k - 1)
+    last = np.zeros(n_t, dtype=bool)
+    last[ends - 1] = True
+    lo_t = np.flatnonzero(~last)
     hi_t = lo_t + 1
     d = sc.get("bank_d", (m, n_s), np.complex128)
     tmp_s = tmp[:n_s]
@@ -917,19 +915,6 @@ class BlockSums:
 
     def __len__(self) -> int:
         return int(self.n_samples.size)
-
-
-def _phasors_at(c: np.ndarray, block: int, q: np.ndarray) -> np.ndarray:
-    """exp(−j2π·c_i·L·q) for the block indices q (K,) and tones c (M,), complex128 (K, M),
-    from two tables of ~√max(q) entries (see :func:`tone_phasors`)."""
-    r_len, s_len = _phasor_block(int(q.max()) + 1)
-    step = c[None, :] * block
-    within = unit_phasors(-step * np.arange(r_len)[:, None])
-    starts = unit_phasors(-step * (np.arange(s_len) * r_len)[:, None])
-    hi, lo = np.divmod(q, r_len)
-    out = starts[hi]
-    out *= within[lo]
-    return out
 
 
 def mix_blocks_many(

@@ -3,6 +3,11 @@
 :func:`recover_timing` turns a burst of samples and the link's tones into a symbol grid
 (start t0 and period P, both fractional, in receiver samples); :func:`align_frame` finds the
 known header (preamble + sync word) in the hard decisions made on that grid.
+:func:`time_and_correlate_many` is the fast path of a batch: block-rate mixing
+(:func:`~iqstat.correlate.mix_blocks_many`), the decimated feature
+(:func:`recover_timing_blocks_many`) and the correlator bank from the same block sums; bursts
+whose symbol-rate line is below STRONG_LINE_DB are checked again at full rate
+(:func:`recover_timing_many` with ``coarse=``).
 
 Timing model (the one of :mod:`iqstat.synth`): symbol k occupies [t0 + k·P, t0 + (k+1)·P) with
 P = (fs/Rs)/(1 + ppm·1e-6); a positive clock offset means the transmitter's symbol clock is
@@ -79,8 +84,8 @@ STRONG_LINE_DB = 20.0
 #: Rows of the decimated feature per transform of the spectral floor.
 _FLOOR_ROWS = 8
 
-#: Feature points per symbol of the decimated timing, and the fewest worth decimating to.
-FEATURE_BLOCKS_PER_SYMBOL = 16
+#: Fewest feature points (blocks) per symbol worth decimating to; the block length itself is
+#: :func:`~iqstat.correlate.block_samples_for` the period (at least 12 blocks per symbol).
 FEATURE_MIN_BLOCKS = 4
 
 #: Probability that a random symbol stream passes the default header error threshold anywhere.
