@@ -775,8 +775,10 @@ def time_and_correlate_many(
     :func:`~iqstat.correlate.mix_blocks_many` (blocks of
     :func:`~iqstat.correlate.block_samples_for` the nominal period),
     :func:`recover_timing_blocks_many` and ``correlate_symbols_many(blocks=)`` run on a few
-    bursts at a time (~4 MB of block sums and temporaries, the same work arrays for every
-    chunk), so each chunk's block sums are still cached when the bank reads them.
+    bursts at a time (~8 MB of block sums, about one batch of measure_capture; the same work
+    arrays for every chunk). Inside, the elementwise passes run on slices of a few bursts
+    (~1 MB) and the bank on _BANK_SLICE_BURSTS bursts at a time, so that their temporaries
+    stay cached; larger chunks only amortise the fixed number of numpy calls better.
     """
     fs = _check_rate("sample_rate_hz", sample_rate_hz)
     rate = _check_rate("symbol_rate_hz", symbol_rate_hz)
