@@ -23,7 +23,6 @@ from iqstat.correlate import (
     interval_energies,
     mix_cumulative,
     mix_cumulative_many,
-    mix_many,
     template_gram,
 )
 from iqstat.errors import IqstatError, MeasurementError
@@ -55,8 +54,8 @@ from iqstat.sync import (
     SymbolTiming,
     align_frame_many,
     recover_timing_many,
-    recover_timing_mixed_many,
     refine_timing_known,
+    time_and_correlate_many,
 )
 from iqstat.units import db
 
@@ -511,15 +510,15 @@ def _stage_link(batch: list[_Work], ctx: _Context) -> None:
 def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
     """Tone mixing, symbol timing (searched blind where the symbol-rate line is weak), bank.
 
-    Every burst is timed on the decimated feature first; where its symbol-rate line is below
-    STRONG_LINE_DB the burst is timed again on the full-rate feature with the matched-energy
-    check (and its running sums serve the blind search and the known-symbol refinement).
+    Every burst is timed and correlated on its block sums first (time_and_correlate_many);
+    where its symbol-rate line is below STRONG_LINE_DB the matched-energy check runs again at
+    full rate from that grid (and its running sums serve the blind search, the bank and the
+    known-symbol refinement).
     """
     fs = ctx.fs
     xs = [w.x for w in batch]
     tones = [w.link.tone_freqs_hz for w in batch]
-    mixed = mix_many(xs, fs, tones)
-    timings = recover_timing_mixed_many(mixed, fs, ctx.symbol_rate_hz)
+    timings, z_fast = time_and_correlate_many(xs, fs, ctx.symbol_rate_hz, tones)
     again = [
         i
         for i, t in enumerate(timings)
@@ -535,6 +534,7 @@ def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
             [tones[i] for i in again],
             cumulatives=sub,
             errors="return",
+            coarse=[timings[i] for i in again],
         )
         for i, c, t in zip(again, sub, full, strict=True):
             cums[i], timings[i] = c, t
@@ -559,14 +559,12 @@ def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
                 None,
                 np.linspace(-0.5, 0.5, TIMING_SEARCH_POINTS, endpoint=False),
             )
-    z_of = {}
-    for group in (
-        [i for i in range(len(batch)) if cums[i] is not None],
-        [i for i in range(len(batch)) if cums[i] is None],
-    ):
-        ok = [i for i in group if not isinstance(timings[i], MeasurementError)]
-        if not ok:
-            continue
+    # Bursts timed on the block sums keep their bank; those timed again at full rate are
+    # correlated from their running sums.
+    z_of = {i: z_fast[i] for i in range(len(batch)) if cums[i] is None and z_fast[i] is not None}
+    ok = [i for i in range(len(batch)) if cums[i] is not None]
+    ok = [i for i in ok if not isinstance(timings[i], MeasurementError)]
+    if ok:
         zs = correlate_symbols_many(
             [xs[i] for i in ok],
             fs,
@@ -574,8 +572,7 @@ def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
             [timings[i].t0_samples for i in ok],
             [timings[i].period_samples for i in ok],
             [timings[i].n_symbols for i in ok],
-            cumulatives=[cums[i] for i in ok] if cums[ok[0]] is not None else None,
-            mixed=[mixed[i] for i in ok] if cums[ok[0]] is None else None,
+            cumulatives=[cums[i] for i in ok],
         )
         z_of.update(zip(ok, zs, strict=True))
     for i, w in enumerate(batch):
