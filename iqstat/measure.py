@@ -511,9 +511,11 @@ def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
     """Tone mixing, symbol timing (searched blind where the symbol-rate line is weak), bank.
 
     Every burst is timed and correlated on its block sums first (time_and_correlate_many);
-    where its symbol-rate line is below STRONG_LINE_DB the matched-energy check runs again at
-    full rate from that grid (and its running sums serve the blind search, the bank and the
-    known-symbol refinement).
+    where its symbol-rate line is below STRONG_LINE_DB it is timed again from scratch on the
+    full-rate feature with the matched-energy check (and its running sums serve the blind
+    search, the bank and the known-symbol refinement). Starting that check from the block
+    grid instead (``coarse=``) is cheaper but measured worse below ~2 dB Eb/N0: fewer frames
+    found, spread 1.44x the bound at h = 1/2 and 2 dB against 1.15x.
     """
     fs = ctx.fs
     xs = [w.x for w in batch]
@@ -534,7 +536,6 @@ def _stage_timing(batch: list[_Work], ctx: _Context) -> None:
             [tones[i] for i in again],
             cumulatives=sub,
             errors="return",
-            coarse=[timings[i] for i in again],
         )
         for i, c, t in zip(again, sub, full, strict=True):
             cums[i], timings[i] = c, t
