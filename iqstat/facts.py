@@ -21,6 +21,15 @@ WELCH_MAX_FRAMES = 1024  # frames averaged at most (≈ 1 M samples), spread ove
 FLOOR_FRAME = 256  # samples per short-time power frame of the noise-floor estimate
 FLOOR_MAX_FRAMES = 1 << 18  # frames the floor estimator sees at most
 NEAR_FULL_SCALE = 0.99  # a component at or beyond 99 % of full scale counts as clipped
+#: Clipping below full scale (a 12-bit converter in 16-bit words, a float stream limited
+#: upstream): the largest |I|, |Q| level counts as a clip level when more than this fraction
+#: of the components sit on it …
+PILE_FRACTION = 1e-4
+#: … and they outnumber, by this factor, those in the 1 % of amplitude just below it (a
+#: saturating converter piles up the whole tail on one level; noise thins out towards its
+#: largest values, and a noiseless constant-envelope signal's components thin out too).
+PILE_RATIO = 3.0
+PILE_BAND = 0.01
 OCCUPIED_FRACTION = 0.99  # occupied bandwidth: 99 % of the power above the noise floor
 
 
@@ -47,6 +56,7 @@ class CaptureFacts:
     peak_power_dbfs: float | None
     crest_factor_db: float | None
     clipped_fraction: float | None
+    clip_level_dbfs: float | None
     dc_offset_i: float
     dc_offset_q: float
     dc_offset_dbfs: float | None
@@ -123,6 +133,12 @@ class FactsAccumulator:
         # Samples to skip at the start of a chunk so Welch frames stay on the global grid.
         self.carry = 0
         self.clip_lo, self.clip_hi, self.clip_radius = _clip_levels(capture.datatype)
+        # Largest |component| so far (unscaled) and the counts at it and just below it.
+        self.top = 0.0
+        self.n_top_samples = 0
+        self.n_top = 0
+        self.n_near = 0
+        self.integer = capture.datatype.is_integer and capture.datatype.is_complex
 
     def add(self, start: int, x: np.ndarray, bad: int, raw: np.ndarray | None) -> None:
         """Add chunk ``x`` (complex64, unscaled) starting at sample ``start``.
@@ -144,6 +160,8 @@ class FactsAccumulator:
         if raw is not None and chunk_peak >= (self.clip_radius * (1 - 1e-5)) ** 2:
             hi, lo = self.clip_hi, self.clip_lo
             self.n_clip += int(np.count_nonzero(((raw >= hi) | (raw <= lo)).any(axis=1)))
+        if m:
+            self._count_top(x)
         self.dc += complex(x.sum())  # pairwise summation in complex64: ample for a mean
         n_frames = m // FLOOR_FRAME
         used = n_frames * FLOOR_FRAME
@@ -178,6 +196,38 @@ class FactsAccumulator:
         else:
             self.carry = max(0, self.carry - m)
 
+    def _count_top(self, x: np.ndarray) -> None:
+        """Track the largest |I|, |Q| and how many components sit on it and just below it.
+
+        Two reductions per chunk; the counting pass runs only in chunks that reach the level
+        (most chunks of an unclipped capture never do, every chunk of a clipped one does).
+        """
+        v = x.view(np.float32)
+        c = max(float(v.max()), -float(v.min()))
+        tol = 0.5 if self.integer else 1e-6 * c  # half a step of the stored integers
+        if c < self.top - tol:
+            return
+        if c > self.top + tol:
+            self.top, self.n_top, self.n_near, self.n_top_samples = c, 0, 0, 0
+        a = np.abs(v)
+        at = a >= self.top - tol
+        self.n_top += int(np.count_nonzero(at))
+        self.n_top_samples += int(np.count_nonzero(at.reshape(-1, 2).any(axis=1)))
+        near = (a >= self.top * (1.0 - PILE_BAND)) & ~at
+        self.n_near += int(np.count_nonzero(near))
+
+    def clip_pile(self) -> tuple[float | None, float | None]:
+        """(fraction of samples on the clip level, the level [unscaled]) if the largest
+        component level is a pile-up (see PILE_FRACTION, PILE_RATIO), else (None, None)."""
+        n = self.capture.n_samples
+        if (
+            n
+            and self.n_top > PILE_FRACTION * 2 * n
+            and self.n_top > PILE_RATIO * max(self.n_near, 1)
+        ):
+            return self.n_top_samples / n, self.top
+        return None, None
+
     def finish(self) -> CaptureFacts:
         """The facts of the chunks added (all of the capture's, in order)."""
         capture = self.capture
@@ -191,6 +241,14 @@ class FactsAccumulator:
         mean_power = total_power / n
         dc = self.dc * sc / n
         clipped = self.n_clip / n if capture.datatype.is_integer else None
+        clip_level = None
+        if clipped:
+            clip_level = 0.0  # at full scale
+        else:
+            # Below full scale, or any float recording: a pile-up at the largest level.
+            pile, level = self.clip_pile()
+            if pile is not None:
+                clipped, clip_level = pile, float(db((level * sc) ** 2))  # 20·log10 |c|
         psd_frames = self.psd_frames
         window = self.window
         floor = None
@@ -233,6 +291,7 @@ class FactsAccumulator:
             peak_power_dbfs=_finite_db(peak),
             crest_factor_db=_finite_db(peak / mean_power) if mean_power > 0 else None,
             clipped_fraction=clipped,
+            clip_level_dbfs=clip_level,
             dc_offset_i=float(dc.real),
             dc_offset_q=float(dc.imag),
             dc_offset_dbfs=_finite_db(abs(dc) ** 2),

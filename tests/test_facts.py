@@ -169,3 +169,51 @@ def test_welch_frames_never_straddle_chunks(rng, chunk):
     ref = np.fft.fftshift(acc) / (FS * np.sum(w**2))
     # float32 FFT of the facts pass against float64 here: agreement to ~1e-5 dB expected
     np.testing.assert_allclose(f.spectrum_dbfs_per_hz, 10 * np.log10(ref), atol=1e-3)
+
+
+def _fsk_like(rng, n, amp, noise_var):
+    """Constant-envelope phase walk (an FSK stream's envelope) plus white noise."""
+    ph = np.cumsum(rng.choice([-1.0, 1.0], n) * 0.06)
+    return amp * np.exp(1j * ph) + _noise(rng, n, noise_var)
+
+
+def _ci16(tmp_path, x, name, limit=32767):
+    """Write x as ci16; components beyond ±limit counts saturate there (a converter's limit)."""
+    comps = np.empty(2 * len(x))
+    comps[0::2], comps[1::2] = x.real, x.imag
+    q = np.clip(np.rint(comps * 32768), -limit, limit).astype("<i2")
+    q.tofile(tmp_path / name)
+    return open_capture(tmp_path / name, datatype="ci16_le", sample_rate_hz=FS)
+
+
+def test_clipping_below_full_scale_is_found_at_its_level(tmp_path, rng):
+    # A 12-bit converter in 16-bit words saturates at ±2047 counts of 32768 (fact of the
+    # trade: a converter's largest code; 20·log10(2047/32768) = −24.09 dBFS). Signal at
+    # −22 dBFS per component peak with noise 20 dB down: a large share of it is clipped.
+    x = _fsk_like(rng, 400_000, 0.08, 0.08**2 / 100)
+    f = compute_facts(_ci16(tmp_path, x, "adc12.cs16", limit=2047))
+    assert f.clip_level_dbfs == pytest.approx(20 * np.log10(2047 / 32768), abs=1e-6)
+    assert f.clipped_fraction > 0.1
+
+
+def test_clipped_float_recording_is_found(rng):
+    x = _fsk_like(rng, 400_000, 0.5, 0.05**2)
+    y = np.clip(x.real, -0.25, 0.25) + 1j * np.clip(x.imag, -0.25, 0.25)
+    f = compute_facts(Capture.from_array(y.astype(np.complex64), FS))
+    assert f.clip_level_dbfs == pytest.approx(20 * np.log10(0.25), abs=1e-5)
+    # Samples with a component on ±0.25: |cos θ| ≥ 0.5 for some component, most of them.
+    assert f.clipped_fraction > 0.5
+
+
+@pytest.mark.parametrize("noise_var", [0.05**2, 0.0])
+def test_unclipped_signals_are_not_called_clipped(tmp_path, rng, noise_var):
+    # Noisy and noiseless constant-envelope signals, and plain noise: their largest
+    # components thin out towards the top (no pile-up), in float and in ci16.
+    x = _fsk_like(rng, 400_000, 0.5, noise_var)
+    for f in (
+        compute_facts(Capture.from_array(x.astype(np.complex64), FS)),
+        compute_facts(_ci16(tmp_path, x, "clean.cs16")),
+        compute_facts(Capture.from_array(_noise(rng, 400_000, 0.01), FS)),
+    ):
+        assert f.clip_level_dbfs is None
+        assert not f.clipped_fraction

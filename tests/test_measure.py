@@ -288,6 +288,17 @@ def test_clipped_capture_is_flagged(tmp_path):
     assert report.facts.clipped_fraction > 1e-4
 
 
+def test_clipping_below_full_scale_is_flagged():
+    """A float stream limited upstream at −14 dBFS per component (synth's clip_dbfs: I and Q
+    clipped separately): the pile-up on that level is found and flagged, and the bursts are
+    still measured."""
+    doc = _doc("2fsk", 20.0, count=3, clip_dbfs=-14.0)
+    report, _ = _run(doc, seed=5)
+    assert report.facts.clip_level_dbfs == pytest.approx(-14.0, abs=0.01)
+    assert "clipping" in report.summary.flags
+    assert report.summary.bursts_measured == 3
+
+
 def test_streamed_json_equals_the_document():
     """The CLI writes the report burst by burst; the text parses to report_to_dict's."""
     from pathlib import Path

@@ -56,10 +56,8 @@ def render_facts(facts: CaptureFacts, console: Console) -> None:
             ),
         ),
         (
-            "samples near full scale",
-            "— (float data)"
-            if facts.clipped_fraction is None
-            else f"{100 * facts.clipped_fraction:.4f} %",
+            "clipped samples",
+            _clipping(facts),
         ),
         (
             "DC offset",
@@ -81,3 +79,14 @@ def render_facts(facts: CaptureFacts, console: Console) -> None:
     for k, v in rows:
         t.add_row(k, v)
     console.print(t)
+
+
+def _clipping(facts) -> str:
+    if facts.clip_level_dbfs is not None:
+        where = (
+            "full scale" if facts.clip_level_dbfs == 0.0 else f"{facts.clip_level_dbfs:.1f} dBFS"
+        )
+        return f"{100 * facts.clipped_fraction:.4f} % at {where} (clipped)"
+    if facts.clipped_fraction is None:
+        return "none found (float data: no clip level)"
+    return f"{100 * facts.clipped_fraction:.4f} % at full scale"

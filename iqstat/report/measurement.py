@@ -31,7 +31,8 @@ CAUTION = (
 FLAG_TEXT = {
     "no-bursts": "no bursts were found above the noise floor",
     "nothing-measured": "bursts were found but none could be measured",
-    "clipping": "samples at full scale: the receiver front end was overdriven",
+    "clipping": "samples at the converter's limit (full scale or a lower clip level): the "
+    "front end was overdriven",
     "real-valued-capture": "real-valued recording: complex baseband is needed",
     "sync-not-found": "the profile's preamble/sync word was not found in some bursts",
     "profile-mismatch": "the capture does not match the profile: no headline figure",
@@ -95,6 +96,7 @@ def _document(report: MeasurementReport) -> dict:
             "mean_power_dbfs": f.mean_power_dbfs,
             "peak_power_dbfs": f.peak_power_dbfs,
             "clipped_fraction": f.clipped_fraction,
+            "clip_level_dbfs": f.clip_level_dbfs,
             "dc_offset_dbfs": f.dc_offset_dbfs,
             "noise_floor_dbfs": report.detection.noise_floor_dbfs,
             "noise_psd_dbfs_per_hz": report.detection.noise_psd_db_per_hz,
