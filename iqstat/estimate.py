@@ -43,7 +43,6 @@ import numpy as np
 import scipy.fft
 from numpy.lib.stride_tricks import sliding_window_view
 from scipy import special
-from scipy.signal import zoom_fft
 
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.units import check_positive
@@ -561,6 +560,8 @@ def _refine_rate_line(e: np.ndarray, fs: float, rate0_hz: float) -> tuple[float,
     df = fs / e.size
     m = 129
     f = np.linspace(rate0_hz - 2 * df, rate0_hz + 2 * df, m)
+    from scipy.signal import zoom_fft  # only the blind rate search needs it (a heavy import)
+
     p = np.abs(zoom_fft(e, [f[0], f[-1]], m=m, fs=fs, endpoint=True)) ** 2
     k = int(np.clip(np.argmax(p), 1, m - 2))
     a, b0, c = p[k - 1], p[k], p[k + 1]

@@ -25,8 +25,7 @@ from typing import Literal
 
 import numpy as np
 import scipy.fft
-import scipy.signal
-import scipy.stats
+from scipy import special
 
 from iqstat.correlate import (
     _SLICE_BYTES,
@@ -1171,8 +1170,8 @@ def _int_symbols(name: str, a: np.ndarray) -> np.ndarray:
     return s.astype(np.int64, copy=False)
 
 
-#: Below this many multiply-adds the sliding dot product is summed directly by numpy (what
-#: scipy.signal.correlate chooses there too, without its 13 µs of method selection).
+#: Below this many multiply-adds the sliding dot product is summed directly by numpy, above
+#: it by FFT (the choice scipy.signal.correlate makes, without its method selection).
 _DIRECT_DOT_WORK = 1_000_000
 
 
@@ -1180,13 +1179,25 @@ def _sliding_dot(a: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Σ_j a[s + j]·v[j] for every s with the pattern inside a (FFT or direct, as faster)."""
     if a.size * v.size <= _DIRECT_DOT_WORK:
         return np.correlate(a, v, mode="valid")
-    return scipy.signal.correlate(a, v, mode="valid")
+    return _fft_valid_correlation(a[None], v)[0]
+
+
+def _fft_valid_correlation(a: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """r[b, s, ...] = Σ_j a[b, s + j, ...]·v[j, ...] for s = 0..n − m (real inputs), by one
+    zero-padded real FFT along axis 1: the 'valid' part of the convolution with v reversed."""
+    n, m = a.shape[1], v.shape[0]
+    nfft = scipy.fft.next_fast_len(n + m - 1, real=True)
+    fa = scipy.fft.rfft(a, nfft, axis=1)
+    fv = scipy.fft.rfft(v[::-1], nfft, axis=0)
+    r = scipy.fft.irfft(fa * fv[None], nfft, axis=1)
+    return r[:, m - 1 : n]
 
 
 @functools.lru_cache(maxsize=64)
 def _random_match_cdf(n_bits: int) -> tuple[float, ...]:
     """P(at most e of n_bits random bits wrong), e = 0..n_bits // 4 (a header's false match)."""
-    return tuple(scipy.stats.binom.cdf(np.arange(n_bits // 4 + 1), n_bits, 0.5))
+    # Binomial(n_bits, 1/2) CDF by scipy.special.bdtr (the routine under scipy.stats.binom.cdf).
+    return tuple(special.bdtr(np.arange(n_bits // 4 + 1), n_bits, 0.5))
 
 
 def align_frame(
@@ -1259,7 +1270,7 @@ def _check_soft(soft, n_symbols: int) -> np.ndarray:
 def _sliding_dots(a: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Σ_j a[b, s + j, ...]·v[j, ...] for every row b and shift s (pattern inside the row),
     summed over any trailing axes: one FFT correlation for the whole batch."""
-    r = scipy.signal.fftconvolve(a, v[None, ::-1], mode="valid", axes=1)
+    r = _fft_valid_correlation(a, v)
     return r.reshape(r.shape[0], r.shape[1], -1).sum(axis=2)
 
 

@@ -9,7 +9,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import scipy.signal
 
 from iqstat.errors import ParameterError
 
@@ -167,6 +166,8 @@ class NarrowbandInterferer:
                 f"interferer bandwidth_hz {bandwidth_hz!r} must be in (0, {sample_rate_hz:g})"
             )
         n_taps = int(min(4001, max(31, 2 * round(4.0 * sample_rate_hz / bandwidth_hz) + 1)))
+        import scipy.signal  # a heavy import, only for band-limited noise
+
         h = scipy.signal.firwin(n_taps, bandwidth_hz / 2.0, fs=sample_rate_hz)
         self.taps = h / math.sqrt(np.sum(h * h))
         self.cycles_per_sample = offset_hz / sample_rate_hz
@@ -181,6 +182,8 @@ class NarrowbandInterferer:
 
     def chunk(self, start: int, n: int, rng: np.random.Generator) -> np.ndarray:
         """Next ``n`` samples (chunks must be requested in order)."""
+        import scipy.signal
+
         y, self.state = scipy.signal.lfilter(self.taps, [1.0], self._white(rng, n), zi=self.state)
         idx = np.arange(start, start + n, dtype=np.float64)
         return y * np.exp(2j * np.pi * np.mod(self.cycles_per_sample * idx, 1.0))
