@@ -769,7 +769,8 @@ def test_gof_statistic_equals_scipy_kstest(modulation, n):
     u = branch_energy_cdf(np.abs(z) ** 2, amplitude=3.1, noise_var=0.95, modulation=modulation)
     ref = max(stats.kstest(u[:, j], "uniform").statistic for j in range(m))
     assert n_values == n * m
-    assert stat == pytest.approx(ref, rel=1e-12, abs=0)
+    # the GOF's CDF of λ in [4, 576] is a table with absolute error < 1e-11 (test below)
+    assert stat == pytest.approx(ref, rel=1e-12, abs=1e-10)
 
 
 def test_profile_likelihood_interval_at_low_esn0():
@@ -790,3 +791,57 @@ def test_profile_likelihood_interval_at_low_esn0():
     assert lo < low.esn0_db < hi
     high = fit_nda(outputs(2000, 10.0), modulation="2fsk", gof=False)
     assert high.ci_method == "wald-log-observed-info"
+
+
+def test_gof_cdf_table_matches_scipy_chndtr_on_a_dense_grid():
+    # The GOF's interpolation table of F(y; 2, λ) (Chebyshev interpolation of the exact law,
+    # L. N. Trefethen, Approximation Theory and Approximation Practice, SIAM 2013, ch. 4 and 8)
+    # against scipy.special.chndtr (the reference library's ufunc under stats.ncx2.cdf) over
+    # the whole range it serves: λ in [4, 576], t = √y − √λ from below the window's lower cut
+    # to above its upper end, and y down to 0 (small λ). The KS statistic resolves ~1/n, n ~
+    # 500: an absolute error of 1e-9 would do; the table gives ~3e-12, 1e-10 is asserted.
+    from iqstat.fit import _ncx2_cdf_from_pairs, _ncx2_cdf_pairs
+
+    lam = np.r_[4.0, np.geomspace(4.0, 576.0, 97)[1:-1], 576.0]
+    a = np.sqrt(lam)
+    t = np.r_[np.linspace(-8.6, 7.7, 1501), np.linspace(-1.0, 1.0, 77)]
+    b = a[:, None] + t
+    b = np.where(b < 0, np.linspace(0.0, 1.0, t.size), b)  # small λ: y from 0 instead
+    y = (b * b).ravel()
+    slot = np.repeat(np.arange(lam.size), t.size)
+    got = _ncx2_cdf_from_pairs(y, a[slot], slot, _ncx2_cdf_pairs(lam))
+    ref = special.chndtr(y, 2.0, lam[slot])
+    assert 0.05 < np.mean((ref > 1e-6) & (ref < 1 - 1e-6)) < 0.95  # the bulk is covered
+    assert np.max(np.abs(got - ref)) < 1e-10
+    # above the window F is set to 1: the survival function there is below 6.7e-13
+    top = got == 1.0
+    assert top.sum() > 100
+    assert np.max(stats.ncx2.sf(y[top], 2, lam[slot][top])) < 6.7e-13
+
+
+def test_gof_with_table_equals_gof_with_exact_cdf(monkeypatch):
+    # The batched GOF statistics and p-values with the table equal those with chndtr
+    # everywhere (table range emptied) to 1e-10, on 2-FSK outputs over Es/N0 3-23 dB.
+    import iqstat.fit as fit_module
+
+    rng = np.random.default_rng(4)
+    ns = [560, 300, 900, 450]
+    es_db = [3.0, 9.0, 16.0, 23.0]
+    zs = []
+    for n, es in zip(ns, es_db, strict=True):
+        z = (rng.standard_normal((n, 2)) + 1j * rng.standard_normal((n, 2))) * np.sqrt(0.5)
+        s = rng.integers(0, 2, n)
+        z[np.arange(n), s] += math.sqrt(10 ** (es / 10)) * np.exp(2j * np.pi * rng.random(n))
+        zs.append(z)
+    y = np.concatenate([np.abs(z) ** 2 / 0.5 for z in zs])
+    n = np.array(ns)
+    starts = np.cumsum(n) - n
+    lam = np.zeros((len(ns), 2, 2))
+    lam[:, 0, 0] = lam[:, 1, 1] = 2.0 * 10 ** (np.array(es_db) / 10)  # λ = 2Es/N0 (4 to 400)
+    priors = np.full((len(ns), 2), 0.5)
+    d_tab, p_tab = fit_module._ks_marginal_many(y, starts, n, lam, priors)
+    monkeypatch.setattr(fit_module, "_NCX2_LAM_MIN", math.inf)
+    d_ref, p_ref = fit_module._ks_marginal_many(y, starts, n, lam, priors)
+    assert np.all(d_ref > 1e-3)
+    np.testing.assert_allclose(d_tab, d_ref, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(p_tab, p_ref, rtol=0, atol=1e-10)
