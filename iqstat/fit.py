@@ -1300,6 +1300,7 @@ _NCX2_A_EDGES = (24.0, 20.0, 17.0, 14.5, 12.0, 10.0, 9.0, 8.0, 7.0, 6.0, 5.0, 4.
 _NCX2_T_LO, _NCX2_T_HI, _NCX2_T_CELLS = -8.5, 7.5, 32
 _NCX2_A_DEGREE, _NCX2_T_DEGREE = 12, 9
 _NCX2_LAM_MIN, _NCX2_LAM_MAX = _NCX2_A_EDGES[-1] ** 2, _NCX2_A_EDGES[0] ** 2
+_SQRT_72 = math.sqrt(72.0)
 
 
 @functools.lru_cache(maxsize=1)
@@ -1372,13 +1373,13 @@ def _ncx2_cdf_from_pairs(
     cell = s.astype(np.intp)
     np.clip(cell, 0, _NCX2_T_CELLS - 1, out=cell)
     w = 2.0 * (s - cell) - 1.0  # local t in [−1, 1]
-    c = pairs[slot * _NCX2_T_CELLS + cell]  # (n, T_DEGREE + 1)
+    c = pairs.take(slot * _NCX2_T_CELLS + cell, axis=0)  # (n, T_DEGREE + 1)
     f = c[:, -1].copy()
     for j in range(_NCX2_T_DEGREE - 1, -1, -1):  # Horner (10 coefficients)
         f *= w
         f += c[:, j]
-    f[(gap >= 0.0) & (gap * gap >= 72.0)] = 0.0
-    f[gap < -_NCX2_T_HI] = 1.0
+    np.putmask(f, gap >= _SQRT_72, 0.0)  # (√λ − √y)² ≥ 72, as in _chi2_2_cdf_rows
+    np.putmask(f, gap < -_NCX2_T_HI, 1.0)
     return f
 
 
@@ -1393,12 +1394,15 @@ def _chi2_2_cdf_rows(
     With ``slot`` and ``pairs`` (from :func:`_ncx2_cdf_pairs`), values whose ``slot`` is ≥ 0
     are taken from the table instead of chndtr (absolute error < 1e-11).
     """
-    x = 0.5 * y
-    out = -np.expm1(-x)  # λ = 0, and P(1, x) for the small-λ series
+    out = np.empty_like(y)
+    zero = lam <= 0.0
+    if zero.any():
+        out[zero] = -np.expm1(-0.5 * y[zero])  # λ = 0: P(1, y/2)
     small = (lam > 0.0) & (lam < _SMALL_NONCENTRALITY)
     if small.any():
-        xs, p1, half = x[small], out[small], 0.5 * lam[small]
-        out[small] = np.exp(-half) * (p1 + half * (p1 - xs * np.exp(-xs)))
+        xs, half = 0.5 * y[small], 0.5 * lam[small]
+        p1 = -np.expm1(-xs)  # P(1, x); P(2, x) = P(1, x) − x·e^{−x}, e^{−x} = 1 − P(1, x)
+        out[small] = np.exp(-half) * (p1 + half * (p1 - xs * (1.0 - p1)))
     big = lam >= _SMALL_NONCENTRALITY
     if slot is not None:
         tab = slot >= 0
