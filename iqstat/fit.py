@@ -1443,7 +1443,9 @@ def _ks_marginal_many(
     seg = np.repeat(np.arange(b_count), n)
     pos = np.arange(len(y)) - np.repeat(starts, n)
     pad = np.full((b_count, m, n_max), np.inf)
-    pad[seg, :, pos] = y  # rows (burst, branch), each sorted below
+    flat, base = pad.reshape(-1), seg * (m * n_max) + pos
+    for j in range(m):  # rows (burst, branch), each sorted below; branches ≤ 4
+        flat[base + j * n_max] = y[:, j]
     pad.sort(axis=2)
     n_row = np.repeat(n, m)  # values per row
     valid = np.arange(n_max) < n_row[:, None]
@@ -1451,6 +1453,8 @@ def _ks_marginal_many(
     off = np.cumsum(n_row) - n_row
     row_of = np.repeat(np.arange(b_count * m), n_row)
     k_of = np.arange(len(ys)) - np.repeat(off, n_row)
+    n_of = n_row[row_of].astype(float)
+    below, above = k_of / n_of, (k_of + 1) / n_of  # the empirical CDF left and right of each
     lam_rows = lam.transpose(0, 2, 1).reshape(b_count * m, -1)  # (row, h)
     pri_rows = np.repeat(priors, m, axis=0)  # (row, h)
     # noncentralities in the table's range: their polynomials in t once per (row, h)
@@ -1470,17 +1474,25 @@ def _ks_marginal_many(
     f = np.empty(len(ys))
     known = np.zeros(len(ys), dtype=bool)
     d = np.zeros(b_count * m)
-    first_pass = k_of % _KS_BLOCKS[0] == 0
+    block = _KS_BLOCKS[0]
+    count = (n_row + block - 1) // block  # every block-th value of each row from its first
+    first = np.cumsum(count) - count
+    first_pass = np.zeros(len(ys), dtype=bool)
+    j_in_row = np.arange(int(count.sum())) - np.repeat(first, count)
+    first_pass[np.repeat(off, count) + block * j_in_row] = True
     first_pass[off + n_row - 1] = True  # and the last value of every row
     new = np.flatnonzero(first_pass)
     for block in (*_KS_BLOCKS[1:], 1, 0):
         if new.size:
             f[new] = cdf(new)
             known[new] = True
-            k, nr = k_of[new], n_row[row_of[new]]
-            dev = np.maximum((k + 1) / nr - f[new], f[new] - k / nr)
+            fn = f[new]
+            dev = np.maximum(above[new] - fn, fn - below[new])
             rows_new = row_of[new]
-            cut = np.flatnonzero(np.r_[True, rows_new[1:] != rows_new[:-1]])
+            starts_new = np.empty(len(new), dtype=bool)
+            starts_new[0] = True
+            np.not_equal(rows_new[1:], rows_new[:-1], out=starts_new[1:])
+            cut = np.flatnonzero(starts_new)
             here = rows_new[cut]
             d[here] = np.maximum(d[here], np.maximum.reduceat(dev, cut))
         if block == 0:
@@ -1489,8 +1501,7 @@ def _ks_marginal_many(
         lo, hi = ev[:-1], ev[1:]
         same = row_of[lo] == row_of[hi]
         lo, hi = lo[same], hi[same]
-        nr = n_row[row_of[lo]]
-        bound = np.maximum(k_of[hi] / nr - f[lo], f[hi] - (k_of[lo] + 1) / nr)
+        bound = np.maximum(below[hi] - f[lo], f[hi] - above[lo])
         keep = (bound > d[row_of[lo]]) & (hi - lo > 1)
         lo, hi = lo[keep], hi[keep]
         # every block-th index strictly inside each open interval (lo, hi)
