@@ -1383,6 +1383,39 @@ def _ncx2_cdf_from_pairs(
     return f
 
 
+def _near_central_terms(y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """P(1, y/2) and P(2, y/2), the regularised lower incomplete gamma functions.
+
+    P(1, x) = 1 − e^{−x}; P(2, x) = P(1, x) − x·e^{−x} with e^{−x} = 1 − P(1, x).
+    """
+    x = 0.5 * y
+    p1 = -np.expm1(-x)
+    return p1, p1 - x * (1.0 - p1)
+
+
+def _near_central_factors(lam: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(e^{−λ/2}, λ/2) of the two-term series F ≈ e^{−λ/2}·(P(1, x) + (λ/2)·P(2, x)).
+
+    Used for λ < 1e-4 (see :func:`_chi2_2_cdf`); λ = 0 gives (1, 0), i.e. F = P(1, x) exactly.
+    """
+    half = 0.5 * lam
+    return np.exp(-half), half
+
+
+def _ncx2_cdf_direct(y: np.ndarray, lam: np.ndarray) -> np.ndarray:
+    """F(y; 2, λ) by scipy.special.chndtr (λ ≥ 1e-4), 0 far below the law's bulk.
+
+    Far below the noncentral law's bulk F is below 2.3e-16 and taken as 0: with z = s + n,
+    |z|² ≤ y needs |n| ≥ √λ − √y (per-dimension unit variance here), and P(|n| ≥ c) =
+    e^{−c²/2} (Rayleigh tail), so F(y; 2, λ) ≤ e^{−(√λ − √y)²/2} < e^{−36}.
+    """
+    out = np.zeros_like(y)
+    gap = np.sqrt(lam) - np.sqrt(y)
+    near = (gap < 0.0) | (gap * gap < 72.0)
+    out[near] = special.chndtr(y[near], 2.0, lam[near])
+    return out
+
+
 def _chi2_2_cdf_rows(
     y: np.ndarray,
     lam: np.ndarray,
@@ -1395,29 +1428,19 @@ def _chi2_2_cdf_rows(
     are taken from the table instead of chndtr (absolute error < 1e-11).
     """
     out = np.empty_like(y)
-    zero = lam <= 0.0
-    if zero.any():
-        out[zero] = -np.expm1(-0.5 * y[zero])  # λ = 0: P(1, y/2)
-    small = (lam > 0.0) & (lam < _SMALL_NONCENTRALITY)
+    small = lam < _SMALL_NONCENTRALITY  # λ = 0 included: factors (1, 0)
     if small.any():
-        xs, half = 0.5 * y[small], 0.5 * lam[small]
-        p1 = -np.expm1(-xs)  # P(1, x); P(2, x) = P(1, x) − x·e^{−x}, e^{−x} = 1 − P(1, x)
-        out[small] = np.exp(-half) * (p1 + half * (p1 - xs * (1.0 - p1)))
-    big = lam >= _SMALL_NONCENTRALITY
+        p1, p2 = _near_central_terms(y[small])
+        c0, c1 = _near_central_factors(lam[small])
+        out[small] = c0 * (p1 + c1 * p2)
+    big = ~small
     if slot is not None:
         tab = slot >= 0
         if tab.any():
             out[tab] = _ncx2_cdf_from_pairs(y[tab], np.sqrt(lam[tab]), slot[tab], pairs)
             big &= ~tab
     if big.any():
-        # Far below the noncentral law's bulk F is below 2.3e-16 and taken as 0: with
-        # z = s + n, |z|² ≤ y needs |n| ≥ √λ − √y (per-dimension unit variance here), and
-        # P(|n| ≥ c) = e^{−c²/2} (Rayleigh tail), so F(y; 2, λ) ≤ e^{−(√λ − √y)²/2} < e^{−36}.
-        gap = np.sqrt(lam) - np.sqrt(y)
-        far = big & (gap >= 0.0) & (gap * gap >= 72.0)
-        out[far] = 0.0
-        big &= ~far
-        out[big] = special.chndtr(y[big], 2.0, lam[big])
+        out[big] = _ncx2_cdf_direct(y[big], lam[big])
     return out
 
 
@@ -1457,19 +1480,40 @@ def _ks_marginal_many(
     below, above = k_of / n_of, (k_of + 1) / n_of  # the empirical CDF left and right of each
     lam_rows = lam.transpose(0, 2, 1).reshape(b_count * m, -1)  # (row, h)
     pri_rows = np.repeat(priors, m, axis=0)  # (row, h)
-    # noncentralities in the table's range: their polynomials in t once per (row, h)
-    in_table = (lam_rows >= _NCX2_LAM_MIN) & (lam_rows <= _NCX2_LAM_MAX)
+    # per (row, h) its regime: 0 two-term series (λ < 1e-4), 1 table, 2 chndtr; priors folded
+    # into the series factors, the table's polynomials in t computed once per (row, h)
+    kind = np.where(lam_rows < _SMALL_NONCENTRALITY, 0, 2)
+    kind[(lam_rows >= _NCX2_LAM_MIN) & (lam_rows <= _NCX2_LAM_MAX)] = 1
+    c0, c1 = _near_central_factors(np.where(kind == 0, lam_rows, 0.0))
+    c0 *= pri_rows
     slots = np.full(lam_rows.shape, -1, dtype=np.intp)
-    slots[in_table] = np.arange(int(in_table.sum()))
-    pairs = _ncx2_cdf_pairs(lam_rows[in_table]) if in_table.any() else None
+    slots[kind == 1] = np.arange(int((kind == 1).sum()))
+    pairs = _ncx2_cdf_pairs(lam_rows[kind == 1]) if (kind == 1).any() else None
+    root_rows = np.sqrt(lam_rows)
+    special_h = (kind != 0).any(axis=0)
 
     def cdf(sel: np.ndarray) -> np.ndarray:
         rr = row_of[sel]
+        yv = ys[sel]
+        p1, p2 = _near_central_terms(yv)  # the same for every hypothesis
         out = np.zeros(len(sel))
         for h in range(lam_rows.shape[1]):  # hypotheses (≤ 4), vectorised over values
-            f = _chi2_2_cdf_rows(ys[sel], lam_rows[rr, h], slots[rr, h], pairs)
-            out += pri_rows[rr, h] * f
-        return np.clip(out, 0.0, 1.0)
+            fh = c1[rr, h] * p2
+            fh += p1
+            fh *= c0[rr, h]  # π_h·F(y; 2, λ) by the series (exact for λ = 0)
+            if special_h[h]:
+                k = kind[rr, h]
+                tab = np.flatnonzero(k == 1)
+                if tab.size:
+                    r = rr[tab]
+                    f = _ncx2_cdf_from_pairs(yv[tab], root_rows[r, h], slots[r, h], pairs)
+                    fh[tab] = pri_rows[r, h] * f
+                big = np.flatnonzero(k == 2)
+                if big.size:
+                    r = rr[big]
+                    fh[big] = pri_rows[r, h] * _ncx2_cdf_direct(yv[big], lam_rows[r, h])
+            out += fh
+        return np.clip(out, 0.0, 1.0, out=out)
 
     f = np.empty(len(ys))
     known = np.zeros(len(ys), dtype=bool)
