@@ -1459,7 +1459,9 @@ def _ks_marginal_many(
     8th, 2nd value of the open intervals, then all values left (at 560 symbols about a
     quarter of the CDF evaluations). All rows (burst × branch) go through each pass together.
     The p-value is Stephens' (√n + 0.12 + 0.11/√n)·D with the Kolmogorov limit law, see
-    :func:`_ks_uniform`.
+    :func:`_ks_uniform`. F(y; 2, λ) comes from the two-term series for λ < 1e-4, from the
+    interpolation table (:func:`_ncx2_table`, absolute error < 1e-11) for λ in [4, 576], and
+    from chndtr otherwise.
     """
     b_count, m = len(n), y.shape[1]
     n_max = int(n.max())

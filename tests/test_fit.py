@@ -821,12 +821,13 @@ def test_gof_cdf_table_matches_scipy_chndtr_on_a_dense_grid():
 
 def test_gof_with_table_equals_gof_with_exact_cdf(monkeypatch):
     # The batched GOF statistics and p-values with the table equal those with chndtr
-    # everywhere (table range emptied) to 1e-10, on 2-FSK outputs over Es/N0 3-23 dB.
+    # everywhere (table range emptied) to 1e-10, on 2-FSK outputs over Es/N0 3-26 dB: λ = 4.0
+    # and 796 lie outside the table's [4, 576] (chndtr), the others inside.
     import iqstat.fit as fit_module
 
     rng = np.random.default_rng(4)
-    ns = [560, 300, 900, 450]
-    es_db = [3.0, 9.0, 16.0, 23.0]
+    ns = [560, 300, 900, 450, 200]
+    es_db = [3.0, 9.0, 16.0, 23.0, 26.0]
     zs = []
     for n, es in zip(ns, es_db, strict=True):
         z = (rng.standard_normal((n, 2)) + 1j * rng.standard_normal((n, 2))) * np.sqrt(0.5)
@@ -837,9 +838,10 @@ def test_gof_with_table_equals_gof_with_exact_cdf(monkeypatch):
     n = np.array(ns)
     starts = np.cumsum(n) - n
     lam = np.zeros((len(ns), 2, 2))
-    lam[:, 0, 0] = lam[:, 1, 1] = 2.0 * 10 ** (np.array(es_db) / 10)  # λ = 2Es/N0 (4 to 400)
+    lam[:, 0, 0] = lam[:, 1, 1] = 2.0 * 10 ** (np.array(es_db) / 10)  # λ = 2Es/N0
     priors = np.full((len(ns), 2), 0.5)
     d_tab, p_tab = fit_module._ks_marginal_many(y, starts, n, lam, priors)
+    assert np.sum((lam[:, 0, 0] >= 4.0) & (lam[:, 0, 0] <= 576.0)) == 3
     monkeypatch.setattr(fit_module, "_NCX2_LAM_MIN", math.inf)
     d_ref, p_ref = fit_module._ks_marginal_many(y, starts, n, lam, priors)
     assert np.all(d_ref > 1e-3)
