@@ -1303,6 +1303,32 @@ _NCX2_LAM_MIN, _NCX2_LAM_MAX = _NCX2_A_EDGES[-1] ** 2, _NCX2_A_EDGES[0] ** 2
 _SQRT_72 = math.sqrt(72.0)
 
 
+def _ncx2_cdf_by_quadrature(a: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """F(y; 2, λ) at every a = √λ (shape (A,)) and b = a + t (t shape (T,)): shape (A, T).
+
+    F = 1 − Q1(a, |b|) = ∫_0^|b| r·e^{−(r² + a²)/2}·I0(a·r) dr, the Rice distribution function
+    (Marcum's definition of Q1, e.g. Proakis & Salehi, Digital Communications, 5th ed., §2.3
+    [mem]), is accumulated over the gaps between the sorted |b| of each a from F(0) = 0, with
+    3-point Gauss–Legendre on each gap (Abramowitz & Stegun 25.4.29) and e^{−(r − a)²/2}·
+    i0e(a·r) written as one exponential (log i0e from :func:`_bessel_terms`). Gaps are short
+    (< 0.1 where the density is not negligible): 2.5e-13 from chndtr on the table's nodes.
+    """
+    b = np.abs(a[:, None] + t)
+    order = np.argsort(b, axis=1)
+    hi = np.take_along_axis(b, order, axis=1)
+    lo = np.concatenate([np.zeros((len(a), 1)), hi[:, :-1]], axis=1)
+    half = 0.5 * (hi - lo)
+    xg, wg = np.polynomial.legendre.leggauss(3)
+    r = (0.5 * (hi + lo))[..., None] + half[..., None] * xg
+    log_i0e, _ = _bessel_terms((a[:, None, None] * r).ravel())
+    q = r - a[:, None, None]
+    dens = r * np.exp(log_i0e.reshape(r.shape) - 0.5 * q * q)
+    f_sorted = np.cumsum(half * (dens @ wg), axis=1)
+    out = np.empty_like(f_sorted)
+    np.put_along_axis(out, order, f_sorted, axis=1)
+    return out
+
+
 @functools.lru_cache(maxsize=1)
 def _ncx2_table() -> tuple[np.ndarray, np.ndarray]:
     """Interpolation table of F(y; 2, λ) = 1 − Q1(a, b), a = √λ, b = √y, over (u = 1/a, t = b − a).
@@ -1310,10 +1336,10 @@ def _ncx2_table() -> tuple[np.ndarray, np.ndarray]:
     Returns the interval edges in u (ascending) and the coefficients, shape (intervals,
     A_DEGREE + 1, T_CELLS·(T_DEGREE + 1)): Chebyshev in the local u of the interval, and for
     every t cell monomial in its local t (lowest first). Built on first use (not at import)
-    from scipy.special.chndtr at the tensor Chebyshev points of the first kind of every
-    interval × cell (58 240 values, ~30 ms). For fixed t the law tends to a smooth limit as
-    a → ∞ (F → Φ(t)), so it is smooth in u; in t it is a smoothed step of unit width. Cells
-    reaching below b = 0 (small a) see F's even continuation in b, which is smooth too.
+    from F at the tensor Chebyshev points of the first kind of every interval × cell (58 240
+    values by :func:`_ncx2_cdf_by_quadrature`, ~15 ms). For fixed t the law tends to a smooth
+    limit as a → ∞ (F → Φ(t)), so it is smooth in u; in t it is a smoothed step of unit width.
+    Cells reaching below b = 0 (small a) see F's even continuation in b, smooth too.
     """
     a_edges = np.asarray(_NCX2_A_EDGES)
     u_edges = 1.0 / a_edges  # ascending
@@ -1325,8 +1351,7 @@ def _ncx2_table() -> tuple[np.ndarray, np.ndarray]:
     t_edges = np.linspace(_NCX2_T_LO, _NCX2_T_HI, n_t + 1)
     tl, th = t_edges[:-1, None], t_edges[1:, None]
     t = 0.5 * (tl + th) + 0.5 * (th - tl) * xt  # (cells, k + 1)
-    b = a[:, :, None, None] + t
-    f = special.chndtr(b * b, 2.0, (a * a)[:, :, None, None])  # (intervals, d+1, cells, k+1)
+    f = _ncx2_cdf_by_quadrature(a.ravel(), t.ravel()).reshape(a.shape + t.shape)
     cheb = np.polynomial.chebyshev
     to_u = np.linalg.inv(cheb.chebvander(xu, d))  # node values -> Chebyshev coefficients
     to_cheb_t = np.linalg.inv(cheb.chebvander(xt, k))
@@ -1334,7 +1359,7 @@ def _ncx2_table() -> tuple[np.ndarray, np.ndarray]:
     for j in range(k + 1):
         to_power[: j + 1, j] = cheb.cheb2poly(np.eye(j + 1)[j])
     to_t = to_power @ to_cheb_t  # node values -> monomial coefficients in the local t
-    coef = np.einsum("dj,ijcl,pl->idcp", to_u, f, to_t)
+    coef = np.einsum("dj,ijcl,pl->idcp", to_u, f, to_t, optimize=True)
     return u_edges, np.ascontiguousarray(coef.reshape(len(u_edges) - 1, d + 1, n_t * (k + 1)))
 
 

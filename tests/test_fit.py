@@ -847,3 +847,17 @@ def test_gof_with_table_equals_gof_with_exact_cdf(monkeypatch):
     assert np.all(d_ref > 1e-3)
     np.testing.assert_allclose(d_tab, d_ref, rtol=0, atol=1e-10)
     np.testing.assert_allclose(p_tab, p_ref, rtol=0, atol=1e-10)
+
+
+def test_gof_table_nodes_by_quadrature_match_scipy_ncx2():
+    # The table's node values: the Rice distribution function accumulated by 3-point
+    # Gauss–Legendre over short gaps (Abramowitz & Stegun 25.4.29), against
+    # scipy.stats.ncx2.cdf (reference library), including b < 0 (F even in b).
+    from iqstat.fit import _ncx2_cdf_by_quadrature
+
+    a = np.array([2.0, 5.0, 12.0, 24.0])
+    t = np.linspace(-8.5, 7.5, 321)  # gaps of 0.05, as between the table's nodes
+    got = _ncx2_cdf_by_quadrature(a, t)
+    b = a[:, None] + t
+    ref = stats.ncx2.cdf(b * b, 2, (a * a)[:, None])
+    assert np.max(np.abs(got - ref)) < 1e-12
