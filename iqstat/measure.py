@@ -654,22 +654,29 @@ def _stage_frame(batch: list[_Work], ctx: _Context) -> None:
                 **kw,
             )
 
+        def checked(frame_of, idx):
+            """Frame symbols and payload check of bursts idx at frame_of[i]; and, for those
+            whose payload locked, whether the header's errors are consistent with it."""
+            framed = _frame_symbols_many(
+                [(frame_of[i], batch[i].hard, batch[i].k1, batch[i].timing) for i in idx],
+                n_tones,
+                header,
+                layout,
+                profile,
+            )
+            locked = [j for j, fr in enumerate(framed) if fr[2] is not None and fr[2].locked]
+            ok = _header_consistent_many(
+                [frame_of[idx[j]] for j in locked], [framed[j][2] for j in locked], profile
+            )
+            verdict = {idx[j]: bool(o) for j, o in zip(locked, ok, strict=True)}
+            return dict(zip(idx, framed, strict=True)), verdict
+
         frames = align(batch, range(len(batch)))
         found = [i for i, f in enumerate(frames) if f.found]
-        framed = _frame_symbols_many(
-            [(frames[i], batch[i].hard, batch[i].k1, batch[i].timing) for i in found],
-            n_tones,
-            header,
-            layout,
-            profile,
-        )
-        locked = [j for j, fr in enumerate(framed) if fr[2] is not None and fr[2].locked]
-        consistent = _header_consistent_many(
-            [frames[found[j]] for j in locked], [framed[j][2] for j in locked], profile
-        )
-        bad = {found[j] for j, ok in zip(locked, consistent, strict=True) if not ok}
-        for i, fr in zip(found, framed, strict=True):
-            outcome[i] = (frames[i], *fr, ("header-mismatch",) if i in bad else ())
+        framed, verdict = checked(frames, found)
+        for i in found:
+            bad = verdict.get(i) is False
+            outcome[i] = (frames[i], *framed[i], ("header-mismatch",) if bad else ())
         rest = [i for i, f in enumerate(frames) if not f.found]
         if rest and profile.payload_kind != "unknown":
             # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a
@@ -677,25 +684,13 @@ def _stage_frame(batch: list[_Work], ctx: _Context) -> None:
             # probability is 1e-6), which confirms the position.
             max_errors = int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol)
             loose = dict(zip(rest, align(batch, rest, max_errors=max_errors), strict=True))
-            cand = [i for i in rest if loose[i].found]
-            trials = _frame_symbols_many(
-                [(loose[i], batch[i].hard, batch[i].k1, batch[i].timing) for i in cand],
-                n_tones,
-                header,
-                layout,
-                profile,
-            )
-            good = [j for j, tr in enumerate(trials) if tr[2] is not None and tr[2].locked]
-            consistent = _header_consistent_many(
-                [loose[cand[j]] for j in good], [trials[j][2] for j in good], profile
-            )
-            for j, ok in zip(good, consistent, strict=True):
+            trials, verdict = checked(loose, [i for i in rest if loose[i].found])
+            for i, ok in verdict.items():
                 if ok:
-                    i = cand[j]
                     frame = dataclasses.replace(
                         loose[i], message=loose[i].message + "; confirmed by the payload pattern"
                     )
-                    outcome[i] = (frame, *trials[j], ())
+                    outcome[i] = (frame, *trials[i], ())
         for i in rest:
             if i not in outcome:
                 w = batch[i]
