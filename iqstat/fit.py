@@ -144,14 +144,18 @@ def _bessel_table() -> tuple[np.ndarray, ...]:
     s_all[far] = np.log(series0) + 0.5 * np.log1p(b / u[far])
     ds_du = 0.5 / (u + b) - omr
     ds_dw = ds_du * c / (1.0 - v) ** 2 / (2.0 * k_count)  # du/dv = c/(1 − v)², dv/dw = 1/(2K)
-    s_mid = s_all[:, -1]
-    table = np.zeros((d + 1, k_count))
-    for k in range(k_count):  # a table of 256 intervals, built once
-        deriv = np.polynomial.chebyshev.cheb2poly(
-            np.polynomial.chebyshev.chebfit(nodes, ds_dw[k, :d], d - 1)
-        )
-        table[1:, k] = deriv / np.arange(1, d + 1)  # ∫ D(w) dw, zero at w = 0
-        table[0, k] = s_mid[k]
+    # interpolation at the nodes and the change to monomials are linear in the values: their
+    # (d, d) matrix, column j from the unit vector e_j, applies to all intervals in one product
+    to_monomials = np.stack(
+        [
+            np.polynomial.chebyshev.cheb2poly(np.polynomial.chebyshev.chebfit(nodes, e, d - 1))
+            for e in np.eye(d)  # d = 7 unit vectors, once
+        ],
+        axis=1,
+    )
+    table = np.empty((d + 1, k_count))
+    table[1:] = (to_monomials @ ds_dw[:, :d].T) / np.arange(1, d + 1)[:, None]  # ∫ D(w) dw
+    table[0] = s_all[:, -1]  # S at the interval's centre w = 0
     return tuple(np.ascontiguousarray(row) for row in table)
 
 
