@@ -1317,6 +1317,15 @@ def _ncx2_cdf_by_quadrature(a: np.ndarray, t: np.ndarray) -> np.ndarray:
     i0e(a·r) written as one exponential (log i0e from :func:`_bessel_terms`). Gaps are short
     (< 0.1 where the density is not negligible): 2.5e-13 from chndtr on the table's nodes.
     """
+    out = np.empty((len(a), len(t)))
+    rows = max(1, _BLOCK_VALUES // (3 * len(t)))
+    for i in range(0, len(a), rows):  # ~6 blocks of rows: ~32 k nodes each, kept in cache
+        out[i : i + rows] = _rice_cdf_rows(a[i : i + rows], t)
+    return out
+
+
+def _rice_cdf_rows(a: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """:func:`_ncx2_cdf_by_quadrature` of a few rows a at once."""
     b = np.abs(a[:, None] + t)
     order = np.argsort(b, axis=1)
     hi = np.take_along_axis(b, order, axis=1)
@@ -1324,9 +1333,9 @@ def _ncx2_cdf_by_quadrature(a: np.ndarray, t: np.ndarray) -> np.ndarray:
     half = 0.5 * (hi - lo)
     xg, wg = np.polynomial.legendre.leggauss(3)
     r = (0.5 * (hi + lo))[..., None] + half[..., None] * xg
-    log_i0e, _ = _bessel_terms((a[:, None, None] * r).ravel())
+    log_i0e, _ = _bessel_terms(a[:, None, None] * r)
     q = r - a[:, None, None]
-    dens = r * np.exp(log_i0e.reshape(r.shape) - 0.5 * q * q)
+    dens = r * np.exp(log_i0e - 0.5 * q * q)
     f_sorted = np.cumsum(half * (dens @ wg), axis=1)
     out = np.empty_like(f_sorted)
     np.put_along_axis(out, order, f_sorted, axis=1)
