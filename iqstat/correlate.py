@@ -465,11 +465,10 @@ def _bank_blocks(
         # The samples qL .. b − 1 (at most L − 1), eq. (3): Σ_l g_l·w^l by Horner's rule with
         # w = e^{−jω_i}, turned by e^{−jω_i qL} = e^{−jω_i b}·e^{jω_i ρ}.
         lm = np.arange(blk)
-        n_last = np.array([a.size - 1 for a in samples], dtype=np.int64)
+        # Indices past a burst's last sample (the last block's tail) are clipped to it by
+        # the gathers' mode="clip"; the mask below zeroes them (l >= ρ) anyway.
         idx = sc.get("bank_idx", (n_t, blk), np.int64)
-        np.multiply(q[:, None], blk, out=idx)
-        idx += lm
-        np.minimum(idx, np.take(n_last, row)[:, None], out=idx)
+        np.add((q * blk)[:, None], lm, out=idx)
         dt = np.result_type(*samples)
         g = sc.get("bank_g", (n_t, blk), dt)
         for a, o, k in zip(samples, begins, sizes, strict=True):  # one gather per burst

@@ -1274,6 +1274,23 @@ def _sliding_dots(a: np.ndarray, v: np.ndarray) -> np.ndarray:
     return r.reshape(r.shape[0], r.shape[1], -1).sum(axis=2)
 
 
+def _soft_header_dots(cc: np.ndarray, patterns: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """:func:`_sliding_dots` of the soft streams cc (B, K, M) with each (m, M) pattern: the
+    streams' transform once for all patterns, and the sum over the M tones taken in the
+    frequency domain (Σ_i IFFT(A_i·V_i) = IFFT(Σ_i A_i·V_i)), one inverse transform each."""
+    n, m = cc.shape[1], patterns[0].shape[0]
+    nfft = scipy.fft.next_fast_len(n + m - 1, real=True)
+    fa = scipy.fft.rfft(cc, nfft, axis=1)  # (B, F, M)
+    out = []
+    for v in patterns:
+        fv = scipy.fft.rfft(v[::-1], nfft, axis=0)  # (F, M)
+        spec = fa[:, :, 0] * fv[None, :, 0]
+        for i in range(1, fa.shape[2]):  # M <= 4 tones
+            spec += fa[:, :, i] * fv[None, :, i]
+        out.append(scipy.fft.irfft(spec, nfft, axis=1)[:, m - 1 : n])
+    return out
+
+
 def align_frame_many(
     hards: Sequence[np.ndarray],
     header_symbols: np.ndarray,
@@ -1405,8 +1422,13 @@ def _align_group(hs, cs, ids, hdr, m, detect_inverted, max_errors, out) -> None:
             soft[r, : hs[j].size] = cs[j]
         cc = soft - soft.mean(axis=2, keepdims=True)
         cc[np.arange(k_max)[None, :] >= ln[:, None]] = 0.0
-        s_norm = _sliding_dots(cc, (hdr[:, None] == np.arange(m)).astype(np.float64))
-        s_inv = _sliding_dots(cc, ((m - 1 - hdr)[:, None] == np.arange(m)).astype(np.float64))
+        s_norm, s_inv = _soft_header_dots(
+            cc,
+            [
+                (hdr[:, None] == np.arange(m)).astype(np.float64),
+                ((m - 1 - hdr)[:, None] == np.arange(m)).astype(np.float64),
+            ],
+        )
         metric = np.stack([s_norm, s_inv], axis=1)[:, : errs.shape[1]]
         pick = np.argmax(np.where(cand, metric, -np.inf).reshape(len(live), -1), axis=1)
     else:
@@ -1551,13 +1573,13 @@ def refine_timing_known(
         return timing, 0, 0.0
     j = np.arange(first, n_blk)
     idx_x = i0 + j[:, None] * nb - h + np.arange(nb + 2 * h)[None, :]
-    idx_r = j[:, None] * nb + np.arange(nb)[None, :]
     n_fft = scipy.fft.next_fast_len(nb + 2 * h)
     # Single precision for complex64 samples (their own precision; the lags and phases move
     # by ~1e-6 of a sample and radian), twice as fast.
     dt = np.complex64 if np.asarray(x).dtype == np.complex64 else np.complex128
     xs = scipy.fft.fft(x[idx_x], n_fft, axis=1)
-    rs = scipy.fft.fft(ref[idx_r].astype(dt), n_fft, axis=1)
+    # The reference's blocks j·nb .. (j + 1)·nb − 1 are consecutive: a reshape, no gather.
+    rs = scipy.fft.fft(ref[first * nb : n_blk * nb].astype(dt).reshape(-1, nb), n_fft, axis=1)
     xs *= np.conj(rs)
     cc = scipy.fft.ifft(xs, axis=1)[:, : 2 * h + 1]
     c = (cc.real.astype(np.float64)) ** 2 + cc.imag.astype(np.float64) ** 2
