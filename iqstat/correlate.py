@@ -663,6 +663,18 @@ def unit_phasors(cycles: np.ndarray) -> np.ndarray:
 
 def _check_tone_list(tone_freqs_list: Sequence[Sequence[float]], fs: float) -> np.ndarray:
     """Validate one tone list per burst, all of the same length M; return float64 (B, M)."""
+    try:  # the usual case in one pass; anything odd goes through the per-burst checks
+        f = np.array(tone_freqs_list, dtype=np.float64)
+    except (TypeError, ValueError):
+        f = None
+    if (
+        f is not None
+        and f.ndim == 2
+        and f.shape[1] > 0
+        and np.isfinite(f).all()
+        and not (np.abs(f) > fs / 2).any()
+    ):
+        return f
     rows = [check_tone_freqs(f, fs) for f in tone_freqs_list]
     sizes = {r.size for r in rows}
     if len(sizes) > 1:
