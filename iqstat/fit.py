@@ -174,29 +174,34 @@ def _bessel_terms(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """
     table = _bessel_table()
     k_count, c, b = _BESSEL_INTERVALS, _BESSEL_C, _BESSEL_B
-    r = u + c
-    np.divide(c, r, out=r)  # c/(u + c) = 1 − v  (u = inf gives v = 1, the last interval)
-    vk = 1.0 - r
-    vk *= k_count
+    rk = u + c
+    np.divide(c * k_count, rk, out=rk)  # K·(1 − v) = K·c/(u + c)  (u = inf: the last interval)
+    vk = np.subtract(k_count, rk)  # K·v (K a power of 2: the same bits as K·(1 − c/(u + c)))
     idx = vk.astype(np.intp)
     np.minimum(idx, k_count - 1, out=idx)
-    w = vk - idx
+    w = np.subtract(vk, idx, out=vk)
     w *= 2.0
     w -= 1.0
+    tmp = np.empty_like(w)
     p = table[-1][idx]
-    dp = np.zeros_like(w)
-    for coef in table[-2::-1]:  # Horner for S and dS/dw together (8 coefficients)
+    dp = p.copy()  # the first Horner step of the derivative from 0: 0·w + p = p
+    p *= w
+    p += table[-2][idx]
+    for coef in table[-3::-1]:  # Horner for S and dS/dw together (8 coefficients)
         dp *= w
         dp += p
         p *= w
         p += coef[idx]
     ub = u + b
-    p -= 0.5 * np.log((2.0 * math.pi) * ub)  # log i0e
-    # 1 − ρ = 1/(2(u + b)) − dS/du, dS/du = dS/dw · 2K·(1 − v)²/c
-    r *= r
-    dp *= r
-    dp *= 2.0 * k_count / c
-    omr = 0.5 / ub
+    np.multiply(ub, 2.0 * math.pi, out=tmp)
+    np.log(tmp, out=tmp)
+    tmp *= 0.5
+    p -= tmp  # log i0e
+    # 1 − ρ = 1/(2(u + b)) − dS/du, dS/du = dS/dw · 2K·(1 − v)²/c = dS/dw · (K(1 − v))²·2/(cK)
+    rk *= rk
+    dp *= rk
+    dp *= 2.0 / (c * k_count)
+    omr = np.divide(0.5, ub, out=ub)
     omr -= dp
     return p, omr
 
