@@ -6,7 +6,6 @@ reductions per chunk, and a Welch spectrum from a bounded subsample of frames.
 
 from __future__ import annotations
 
-import math
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -31,6 +30,9 @@ PILE_FRACTION = 1e-4
 #: largest values, and a noiseless constant-envelope signal's components thin out too).
 PILE_RATIO = 3.0
 PILE_BAND = 0.01
+#: Samples per block of the per-sample passes (512 KB of complex64: stays in a core's L2
+#: cache from one pass to the next); a multiple of FLOOR_FRAME.
+_BLOCK = 1 << 16
 OCCUPIED_FRACTION = 0.99  # occupied bandwidth: 99 % of the power above the noise floor
 
 
@@ -131,7 +133,6 @@ class FactsAccumulator:
         self.psd_acc = np.zeros(WELCH_FFT)
         self.psd_frames = 0
         self.pw = np.empty(int(chunk_samples), dtype=np.float32)
-        self.sq = np.empty(2 * int(chunk_samples), dtype=np.float32)
         # Samples to skip at the start of a chunk so Welch frames stay on the global grid.
         self.carry = 0
         self.clip_lo, self.clip_hi, self.clip_radius = _clip_levels(capture.datatype)
@@ -152,28 +153,36 @@ class FactsAccumulator:
         self.n_bad += bad
         if m > self.pw.size:
             self.pw = np.empty(m, dtype=np.float32)
-            self.sq = np.empty(2 * m, dtype=np.float32)
-        # Peak |x|²: the largest re² + im² in float32 (two multiplies and an add per sample,
-        # no hypot and square root); the squared components also serve _count_top.
-        v = x.view(np.float32)
-        sq = np.multiply(v, v, out=self.sq[: 2 * m])
-        chunk_peak = float(np.add(sq[0::2], sq[1::2], out=self.pw[:m]).max()) if m else 0.0
+        n_frames = m // FLOOR_FRAME
+        sums = np.empty(n_frames, dtype=np.float32)
+        # The per-sample passes run block by block, so that each block's values stay in the
+        # core's cache from one pass to the next (a 1 M-sample chunk is 8 MB).
+        peak_abs = 0.0
+        dc = 0.0 + 0.0j
+        for b0 in range(0, m, _BLOCK):
+            xb = x[b0 : b0 + _BLOCK]
+            vb = xb.view(np.float32)
+            # Peak |x|²: the largest float32 |x|, squared in float32 below (squaring is
+            # monotone, so this equals the largest float32 |x|²).
+            peak_abs = max(peak_abs, float(np.abs(xb, out=self.pw[: xb.size]).max()))
+            self._count_top(vb)
+            dc += complex(xb.sum())  # pairwise summation in complex64: ample for a mean
+            f0, nb = b0 // FLOOR_FRAME, xb.size // FLOOR_FRAME
+            if nb:
+                # Σ|x|² per frame as one dot product of the interleaved [re, im] values.
+                vf = vb[: 2 * nb * FLOOR_FRAME].reshape(nb, 2 * FLOOR_FRAME)
+                np.einsum("ij,ij->i", vf, vf, out=sums[f0 : f0 + nb])
+        self.dc += dc
+        chunk_peak = float(np.square(np.float32(peak_abs))) if m else 0.0
         self.peak = max(self.peak, chunk_peak)
         # A component at the clipping level makes |x| at least that level: count only then
         # (with a margin for the float32 rounding of |x|²); most chunks never come near.
         if raw is not None and chunk_peak >= (self.clip_radius * (1 - 1e-5)) ** 2:
             hi, lo = self.clip_hi, self.clip_lo
             self.n_clip += int(np.count_nonzero(((raw >= hi) | (raw <= lo)).any(axis=1)))
-        if m:
-            self._count_top(v, sq)
-        self.dc += complex(x.sum())  # pairwise summation in complex64: ample for a mean
-        n_frames = m // FLOOR_FRAME
         used = n_frames * FLOOR_FRAME
         self.last_frame_energy = None
         if n_frames:
-            # Σ|x|² per frame as one dot product of the interleaved [re, im] values per frame.
-            v = x[:used].view(np.float32).reshape(n_frames, 2 * FLOOR_FRAME)
-            sums = np.einsum("ij,ij->i", v, v)
             self.last_frame_energy = sums
             self.total_power += float(sums.sum(dtype=np.float64))
             self.frame_powers.append(sums / FLOOR_FRAME)
@@ -200,42 +209,24 @@ class FactsAccumulator:
         else:
             self.carry = max(0, self.carry - m)
 
-    def _count_top(self, v: np.ndarray, sq: np.ndarray) -> None:
+    def _count_top(self, v: np.ndarray) -> None:
         """Track the largest |I|, |Q| and how many components sit on it and just below it.
 
-        ``v`` holds the chunk's components (float32), ``sq`` their float32 squares. One
-        reduction per chunk (the largest square); chunks that may reach the level count on
-        the few components whose squares lie near the top (most chunks of an unclipped
-        capture never reach it, every chunk of a clipped one does).
+        ``v`` holds components (float32) of consecutive samples. Two reductions; the counts
+        run only where ``v`` reaches the level (most blocks of an unclipped capture never do,
+        every block of a clipped one does), on the components near it.
         """
-        # float32 squaring is monotone in |v| and within 6e-8 relative of the exact square:
-        # the largest |v| lies in [c_lo, c_hi].
-        r = math.sqrt(float(sq.max()))
-        c_lo, c_hi = r * (1 - 1e-6), r * (1 + 1e-6)
-        tol_max = 0.5 if self.integer else 1e-6 * c_hi  # half a step of the stored integers
-        if c_hi + tol_max < self.top:
-            return  # certainly below the level so far
-        # Every component the counts below can involve has |v| >= t (the new level is at
-        # least the old one and at least c - tol): pick those by their squares.
-        level = max(self.top, c_lo - tol_max)
-        t = min(level - tol_max, level * (1.0 - PILE_BAND)) * (1 - 1e-6)
-        if t > 0:
-            idx = np.flatnonzero(sq >= t * t)
-            a = np.abs(v[idx])
-        else:
-            idx = np.arange(v.size)
-            a = np.abs(v)
-        c = float(a.max()) if a.size else max(float(v.max()), -float(v.min()))
-        tol = 0.5 if self.integer else 1e-6 * c
+        c = max(float(v.max()), -float(v.min()))
+        tol = 0.5 if self.integer else 1e-6 * c  # half a step of the stored integers
         if c < self.top - tol:
             return
-        top = c if c > self.top + tol else self.top
-        if min(top - tol, top * (1.0 - PILE_BAND)) < t:
-            # (Not reached with the bounds above; kept so the counts stay exact regardless.)
-            idx = np.arange(v.size)
-            a = np.abs(v)
         if c > self.top + tol:
             self.top, self.n_top, self.n_near, self.n_top_samples = c, 0, 0, 0
+        a = np.abs(v)
+        # The components the counts below involve (both thresholds are at least this one,
+        # also after rounding to float32), and their indices.
+        idx = np.flatnonzero(a >= min(self.top - tol, self.top * (1.0 - PILE_BAND)))
+        a = a[idx]
         at = a >= self.top - tol
         self.n_top += int(np.count_nonzero(at))
         s = idx[at] // 2  # sample of each component at the level (ascending)
