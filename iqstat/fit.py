@@ -2045,8 +2045,14 @@ Grams = np.ndarray | Sequence[np.ndarray | None] | None
 def _dd_fsk_many(prep: _Prepared) -> tuple[np.ndarray, np.ndarray]:
     """DD moments per burst (A², N0): E|z_î|² = A² + N0, E[q] = M·N0 + A² (correct decisions)."""
     m = prep.z.shape[1]
-    energy = prep.z.real**2 + prep.z.imag**2
-    m1 = prep.segment_sums(np.max(energy, axis=1)) / prep.n
+    zr, zi = prep.z.real, prep.z.imag
+    top = zr[:, 0] * zr[:, 0]
+    top += zi[:, 0] * zi[:, 0]  # |z_0|²
+    for j in range(1, m):  # max over M ≤ 4 columns (a reduction along the short axis: 7x slower)
+        e = zr[:, j] * zr[:, j]
+        e += zi[:, j] * zi[:, j]
+        np.maximum(top, e, out=top)
+    m1 = prep.segment_sums(top) / prep.n
     n0 = (prep.segment_sums(prep.q) / prep.n - m1) / (m - 1)
     return m1 - n0, n0
 
