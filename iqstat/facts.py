@@ -164,8 +164,9 @@ class FactsAccumulator:
             vb = xb.view(np.float32)
             # Peak |x|²: the largest float32 |x|, squared in float32 below (squaring is
             # monotone, so this equals the largest float32 |x|²).
-            peak_abs = max(peak_abs, float(np.abs(xb, out=self.pw[: xb.size]).max()))
-            self._count_top(vb)
+            block_abs = float(np.abs(xb, out=self.pw[: xb.size]).max())
+            peak_abs = max(peak_abs, block_abs)
+            self._count_top(vb, block_abs)
             dc += complex(xb.sum())  # pairwise summation in complex64: ample for a mean
             f0, nb = b0 // FLOOR_FRAME, xb.size // FLOOR_FRAME
             if nb:
@@ -209,13 +210,18 @@ class FactsAccumulator:
         else:
             self.carry = max(0, self.carry - m)
 
-    def _count_top(self, v: np.ndarray) -> None:
+    def _count_top(self, v: np.ndarray, abs_max: float = np.inf) -> None:
         """Track the largest |I|, |Q| and how many components sit on it and just below it.
 
-        ``v`` holds components (float32) of consecutive samples. Two reductions; the counts
-        run only where ``v`` reaches the level (most blocks of an unclipped capture never do,
-        every block of a clipped one does), on the components near it.
+        ``v`` holds components (float32) of consecutive samples, ``abs_max`` their samples'
+        largest float32 |x| if known (no component exceeds it). Nothing to do when that is
+        below the level so far (most blocks of an unclipped capture); else two reductions,
+        and the counts where ``v`` reaches the level (every block of a clipped capture), on
+        the components near it.
         """
+        # |x| ≥ |I|, |Q|, also in float32 (a margin for its rounding).
+        if abs_max * (1 + 1e-6) + (0.5 if self.integer else 1e-6 * abs_max) < self.top:
+            return
         c = max(float(v.max()), -float(v.min()))
         tol = 0.5 if self.integer else 1e-6 * c  # half a step of the stored integers
         if c < self.top - tol:
