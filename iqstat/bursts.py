@@ -832,13 +832,13 @@ def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
         shift = a - ra  # pad, except where the window was clipped at the capture's start
         for nfft in np.unique(nfft_of).tolist():
             r = np.flatnonzero(nfft_of == nfft)
-            # One copy into the zero-padded rows, transformed in place.
-            w_c = min(x.shape[1], nfft)
-            X = np.zeros((r.size, nfft), dtype=x.dtype)
-            if r.size == x.shape[0]:
-                X[:, :w_c] = x[:, :w_c]
+            # One copy into the zero-padded rows, transformed in place (x is zero beyond each
+            # row's size already: rows that fit are taken as they are).
+            if nfft <= x.shape[1]:
+                X = x[:, :nfft].copy() if r.size == x.shape[0] else x[r, :nfft]
             else:
-                X[:, :w_c] = x[r, :w_c]
+                X = np.zeros((r.size, nfft), dtype=x.dtype)
+                X[:, : x.shape[1]] = x if r.size == x.shape[0] else x[r]
             X = scipy.fft.fft(X, axis=1, overwrite_x=True)
             f = scipy.fft.fftfreq(nfft, 1.0 / fs)
             r0, r1 = _runs((f < band_hz[0]) | (f > band_hz[1]))
@@ -851,13 +851,13 @@ def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
                     rs, ys = r, y[:, s : s + k.size]
                 else:
                     rs, ys = r[shifts == s], y[shifts == s, s : s + k.size]
-                # |y|² as re² + im² in float32, squares taken on the contiguous values
-                sq = np.square(ys.view(np.float32))
-                pw = sq[:, 0::2] + sq[:, 1::2]
+                # |y|² as re² + im² in float32, squares taken in place on the contiguous values
+                sq = ys.view(np.float32)
+                np.square(sq, out=sq)
                 if rs.size == r.size and r[0] + r.size - 1 == r[-1]:
-                    power[r[0] : r[-1] + 1, : ys.shape[1]] = pw
+                    np.add(sq[:, 0::2], sq[:, 1::2], out=power[r[0] : r[-1] + 1, : ys.shape[1]])
                 else:
-                    power[rs, : ys.shape[1]] = pw
+                    power[rs, : ys.shape[1]] = sq[:, 0::2] + sq[:, 1::2]
     t = _change_points(power, m, floor, lev, rising)
     edge = np.where(t >= 0, a + t, e * L)
     edges[sel] = edge
