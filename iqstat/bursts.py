@@ -739,13 +739,15 @@ def _change_points(
     n = noise if noise > 0 else 1.0
     b = np.where(ok, burst, 2.0 * n)
     dt = rows.dtype
-    r = rows * (1.0 / n - 1.0 / b).astype(dt)[:, None]
-    r -= np.log(b / n).astype(dt)[:, None]
+    # rising: maximise c[n] − c[τ] → minimise c[τ]; falling: maximise c[τ] (minimise −c[τ]).
+    # The sign goes into the coefficients: negation is exact, so −c is the sum of −r.
+    sign = np.where(rising, 1.0, -1.0)
     c = np.empty((rows.shape[0], rows.shape[1] + 1), dtype=dt)
     c[:, 0] = 0
-    np.cumsum(r, axis=1, out=c[:, 1:])
-    # rising: maximise c[n] − c[τ] → minimise c[τ]; falling: maximise c[τ] (minimise −c[τ])
-    np.negative(c, out=c, where=~rising[:, None])
+    r = c[:, 1:]
+    np.multiply(rows, (sign * (1.0 / n - 1.0 / b)).astype(dt)[:, None], out=r)
+    r -= (sign * np.log(b / n)).astype(dt)[:, None]
+    np.cumsum(r, axis=1, out=r)
     np.copyto(c, np.inf, where=np.arange(c.shape[1]) > lengths[:, None])
     return np.where(ok, np.argmin(c, axis=1), -1)
 
