@@ -59,17 +59,21 @@ def noise_floor_lowest_cluster(frame_power, dof: float) -> float:
         pm = (cs[m:] - cs[:-m]) / m
         g = m * dof
         q = float(special.gammaincinv(g, FLOOR_TRUNCATION_QUANTILE)) / g  # Gamma(g, 1/g) quantile
-        n = float(pm.min())
+        # Sorted once, with prefix sums: each iteration's truncated mean is then one binary
+        # search (the iterations are many when the start lies far below the noise).
+        ps = np.sort(pm)
+        n = float(ps[0])
         if n <= 0:
             continue
+        cps = np.cumsum(ps)
         for _ in range(100):
             t = n * q
-            below = pm[pm < t]
-            if below.size == 0:
+            k = int(np.searchsorted(ps, t, side="left"))  # values below t
+            if k == 0:
                 break
             x = t * g / n
             factor = float(special.gammainc(g + 1, x) / special.gammainc(g, x))
-            new = float(below.mean()) / factor
+            new = float(cps[k - 1]) / k / factor
             if abs(new - n) <= 1e-6 * n:
                 n = new
                 break
