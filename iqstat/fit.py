@@ -736,12 +736,19 @@ def _row_sums(batch: _Batch, u: np.ndarray, g: np.ndarray, p: np.ndarray, deriva
         vpsi = v * psi
         return np.stack([lse, w, w * psi, w * kappa, v, vpsi, vpsi * psi])
     if lik.shape[0] == 1:  # one hypothesis per row (DA): the posterior weight is 1
-        lse = lik[0]
         if not derivatives:
-            return lse[None, :]
+            return lik
         u0, o0 = u[0], omr[0]
-        psi = u0 * (1.0 - o0)
-        return np.stack([lse, psi, np.zeros_like(psi), u0 * u0 * o0 * (2.0 - o0)])
+        out = np.empty((4, u0.size))
+        out[0] = lik[0]
+        np.subtract(1.0, o0, out=out[1])
+        out[1] *= u0  # ψ = u·(1 − (1 − ρ))
+        out[2] = 0.0
+        np.multiply(u0, u0, out=out[3])
+        out[3] *= o0
+        np.subtract(2.0, o0, out=o0)
+        out[3] *= o0  # κ = u²(1 − ρ)(1 + ρ)
+        return out
     lik += batch.log_prior[:, None]
     if lik.shape[0] == 2:
         return _two_hypotheses(lik, u, omr, derivatives)
@@ -771,19 +778,18 @@ def _two_hypotheses(lik: np.ndarray, u: np.ndarray, omr: np.ndarray, derivatives
     the likelier hypothesis 1/(1 + t), and over the two hypotheses E_w ψ = ψ_1 + w_0(ψ_0 − ψ_1),
     Var_w ψ = w_0·w_1·(ψ_0 − ψ_1)², E_w κ = κ_1 + w_0(κ_0 − κ_1).
     """
-    d = lik[0] - lik[1]
-    t = np.abs(d)
-    np.negative(t, out=t)
-    np.exp(t, out=t)
-    out = np.empty((4 if derivatives else 1, d.size))
+    out = np.empty((4 if derivatives else 1, lik.shape[1]))
     np.maximum(lik[0], lik[1], out=out[0])
+    t = np.minimum(lik[0], lik[1])
+    t -= out[0]  # −|d|: rounding is symmetric, so min − max is −|ℓ_0 − ℓ_1| to the bit
+    np.exp(t, out=t)
     out[0] += np.log1p(t)
     if not derivatives:
         return out
     w0 = t
     w0 += 1.0
     np.divide(1.0, w0, out=w0)  # posterior of the likelier hypothesis
-    w0 = np.where(d >= 0.0, w0, 1.0 - w0)
+    w0 = np.where(lik[0] >= lik[1], w0, 1.0 - w0)
     psi = 1.0 - omr
     psi *= u  # ψ = u·I1/I0
     u *= u
@@ -817,7 +823,7 @@ def _signal_sums(batch: _Batch, a_over: np.ndarray, g: np.ndarray, p: np.ndarray
         b0 = int(np.searchsorted(ends, i, side="right"))  # first burst in the block
         b1 = int(np.searchsorted(batch.starts, j, side="left"))  # one past the last
         cuts = np.maximum(batch.starts[b0:b1], i) - i
-        rows = np.diff(np.r_[cuts, j - i])
+        rows = np.minimum(ends[b0:b1], j) - i - cuts  # rows of each burst inside the block
         u = np.repeat(a_over[b0:b1], rows) * batch.r[:, i:j]
         gg = np.repeat(g[b0:b1], rows)
         pp = np.repeat(p[b0:b1], rows) if batch.kind == "on-off" else None
