@@ -877,6 +877,12 @@ def _evaluate(batch: _Batch, x: np.ndarray, derivatives: bool):
 
 def _newton_steps(grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
     """Ascent steps (B, P): Newton where −H is positive definite, else eigenvalue-modified."""
+    if hess.shape[1] == 2:  # two parameters: the 2 x 2 case in closed form
+        return _newton_steps_2(grad, hess)
+    return _newton_steps_eigh(grad, hess)
+
+
+def _newton_steps_eigh(grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
     lam, vec = np.linalg.eigh(-hess)
     floor = 1e-8 * np.maximum(1.0, np.max(np.abs(lam), axis=1))
     lam = np.maximum(np.abs(lam), floor[:, None])
@@ -884,6 +890,28 @@ def _newton_steps(grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
     big = np.max(np.abs(step), axis=1)
     # never move A or N0 by more than e² in one step
     return step * np.where(big > 2.0, 2.0 / np.maximum(big, 2.0), 1.0)[:, None]
+
+
+def _newton_steps_2(grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
+    """:func:`_newton_steps` for P = 2 without LAPACK: −H = [[a, b], [b, c]] has eigenvalues
+    (a + c)/2 ± √(((a − c)/2)² + b²); where both exceed the floor the step is Cramer's
+    (−H)⁻¹g, the other bursts (rare: indefinite or nearly singular) go through eigh."""
+    a, b, c = -hess[:, 0, 0], -hess[:, 0, 1], -hess[:, 1, 1]
+    half = 0.5 * (a - c)
+    root = np.sqrt(half * half + b * b)
+    mean = 0.5 * (a + c)
+    lo, hi = mean - root, mean + root
+    floor = 1e-8 * np.maximum(1.0, np.maximum(np.abs(lo), np.abs(hi)))
+    det = a * c - b * b
+    g0, g1 = grad[:, 0], grad[:, 1]
+    step = np.stack([c * g0 - b * g1, a * g1 - b * g0], axis=1) / det[:, None]
+    big = np.max(np.abs(step), axis=1)
+    # never move A or N0 by more than e² in one step
+    step *= np.where(big > 2.0, 2.0 / np.maximum(big, 2.0), 1.0)[:, None]
+    odd = np.flatnonzero(~((lo > floor) & (det > 0.0)))
+    if odd.size:
+        step[odd] = _newton_steps_eigh(grad[odd], hess[odd])
+    return step
 
 
 #: Stop codes of :func:`_maximise`.

@@ -25,6 +25,8 @@ from iqstat.fit import (
     _bessel_terms,
     _chi2_2_cdf_rows,
     _log_i0,
+    _newton_steps,
+    _newton_steps_eigh,
     branch_energy_cdf,
     check_energy_laws,
     decide_symbols,
@@ -110,6 +112,31 @@ def test_log_i0_matches_scipy_iv_including_series_region():
     # just above the series cut (x = 1e-2) log(i0e(x)) + x cancels: relative 1e-11 there, i.e.
     # an absolute error below 1e-15, irrelevant in a log-likelihood
     np.testing.assert_allclose(_log_i0(x), np.log1p(series), rtol=1e-11)
+
+
+def test_two_parameter_newton_steps_match_linear_algebra():
+    # The closed-form 2 x 2 Newton step against numpy.linalg (reference library): where −H is
+    # positive definite it is the solution of (−H)·s = g (capped at 2 per coordinate), and
+    # indefinite or nearly singular Hessians take the eigenvalue-modified step of the general
+    # path. Positive definite rows with condition numbers up to 1e8, as at high Es/N0.
+    rng = np.random.default_rng(11)
+    k = 400
+    q, _ = np.linalg.qr(rng.standard_normal((k, 2, 2)))
+    lam = np.exp(rng.uniform(-3.0, 12.0, (k, 2)))
+    lam[: k // 4, 0] *= -1.0  # a quarter indefinite
+    lam[k // 4 : k // 4 + 5] = [1.0, 1e-12]  # nearly singular
+    hess = -np.einsum("kij,kj,klj->kil", q, lam, q)
+    grad = rng.standard_normal((k, 2)) * np.exp(rng.uniform(-6.0, 6.0, (k, 1)))
+    got = _newton_steps(grad, hess)
+    pd = lam.min(axis=1) > 1e-8 * np.maximum(1.0, np.abs(lam).max(axis=1))  # −H's floor
+    want = np.linalg.solve(-hess[pd], grad[pd][:, :, None])[:, :, 0]
+    big = np.max(np.abs(want), axis=1, keepdims=True)
+    want *= np.where(big > 2.0, 2.0 / big, 1.0)
+    # relative to the step's size: the 2 x 2 solve loses about cond·eps (cond ≤ e^15 here)
+    tol = 1e-16 * np.exp(15.0) * np.max(np.abs(want), axis=1, keepdims=True)
+    assert np.all(np.abs(got[pd] - want) <= tol)
+    np.testing.assert_allclose(got[~pd], _newton_steps_eigh(grad[~pd], hess[~pd]), rtol=1e-12)
+    assert (~pd).sum() >= k // 4
 
 
 def test_bessel_terms_match_scipy_over_the_whole_range():
