@@ -125,11 +125,13 @@ def _bessel_asymptotic(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 @functools.lru_cache(maxsize=1)
 def _bessel_table() -> tuple[np.ndarray, ...]:
-    """Monomial coefficients (lowest first, each an array over the intervals) of S(w).
+    """Monomial coefficients (lowest first, each an array over the intervals) of S in the
+    interval's local variable x = (w + 1)/2 ∈ [0, 1).
 
     Built on first use (not at import) from scipy.special: on each interval, dS/dw is
     interpolated at the Chebyshev points of degree d − 1 (from i1e/i0e, so the ratio is as
-    accurate as scipy's) and integrated, the constant fixed by S at the interval's centre.
+    accurate as scipy's) and integrated, the constant fixed by S at the interval's centre;
+    the polynomial in w ∈ [−1, 1] is then rewritten in x (w = 2x − 1, binomial expansion).
     """
     k_count, d, c, b = _BESSEL_INTERVALS, _BESSEL_DEGREE, _BESSEL_C, _BESSEL_B
     nodes = np.cos(np.pi * (np.arange(d) + 0.5) / d)  # Chebyshev points of the first kind
@@ -156,7 +158,11 @@ def _bessel_table() -> tuple[np.ndarray, ...]:
     table = np.empty((d + 1, k_count))
     table[1:] = (to_monomials @ ds_dw[:, :d].T) / np.arange(1, d + 1)[:, None]  # ∫ D(w) dw
     table[0] = s_all[:, -1]  # S at the interval's centre w = 0
-    return tuple(np.ascontiguousarray(row) for row in table)
+    # coefficient of x^i in (2x − 1)^j: C(j, i)·2^i·(−1)^(j − i)
+    to_x = np.array(
+        [[math.comb(j, i) * 2.0**i * (-1.0) ** (j - i) for j in range(d + 1)] for i in range(d + 1)]
+    )
+    return tuple(np.ascontiguousarray(row) for row in to_x @ table)
 
 
 def _bessel_terms(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -166,7 +172,7 @@ def _bessel_terms(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     -----
     S(u) = log i0e(u) + ½·log(2π(u + b)) is smooth on [0, ∞) and tends to 0 as u → ∞
     (i0e(u)·√(2πu) → 1, Abramowitz & Stegun 9.7.1). It is a polynomial of degree 4 in the
-    local variable w ∈ [−1, 1] of 4096 equal intervals of v = u/(u + c) ∈ [0, 1) (5 gathers
+    local variable x ∈ [0, 1) of 4096 equal intervals of v = u/(u + c) ∈ [0, 1) (5 gathers
     and 14 Horner passes per value; degree 7 on 256 intervals, as accurate, costs ~25 % more),
     evaluated by Horner together with its derivative, which gives the ratio:
     I1/I0 = d log I0/du = 1 + S'(u) − 1/(2(u + b)) (A&S 9.6.27: I0' = I1). Checked against
@@ -181,15 +187,13 @@ def _bessel_terms(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     vk = np.subtract(k_count, rk)  # K·v (K a power of 2: the same bits as K·(1 − c/(u + c)))
     idx = vk.astype(np.intp)
     np.minimum(idx, k_count - 1, out=idx)
-    w = np.subtract(vk, idx, out=vk)
-    w *= 2.0
-    w -= 1.0
+    w = np.subtract(vk, idx, out=vk)  # x, the position inside the interval
     tmp = np.empty_like(w)
     p = table[-1][idx]
     dp = p.copy()  # the first Horner step of the derivative from 0: 0·w + p = p
     p *= w
     p += table[-2][idx]
-    for coef in table[-3::-1]:  # Horner for S and dS/dw together (d + 1 coefficients)
+    for coef in table[-3::-1]:  # Horner for S and dS/dx together (d + 1 coefficients)
         dp *= w
         dp += p
         p *= w
@@ -199,10 +203,10 @@ def _bessel_terms(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     np.log(tmp, out=tmp)
     tmp *= 0.5
     p -= tmp  # log i0e
-    # 1 − ρ = 1/(2(u + b)) − dS/du, dS/du = dS/dw · 2K·(1 − v)²/c = dS/dw · (K(1 − v))²·2/(cK)
+    # 1 − ρ = 1/(2(u + b)) − dS/du, dS/du = dS/dx · K·(1 − v)²/c = dS/dx · (K(1 − v))²/(cK)
     rk *= rk
     dp *= rk
-    dp *= 2.0 / (c * k_count)
+    dp *= 1.0 / (c * k_count)
     omr = np.divide(0.5, ub, out=ub)
     omr -= dp
     return p, omr
