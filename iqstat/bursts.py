@@ -452,9 +452,20 @@ def _runs(mask: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.flatnonzero(d == 1), np.flatnonzero(d == -1)
 
 
-def _scale_regions(p: np.ndarray, dof: float, floor: float, pfa: float, m: int) -> np.ndarray:
-    """Frame intervals (k, 2) where the m-frame moving mean passes the hysteresis test."""
-    cs = np.concatenate(([0.0], np.cumsum(p, dtype=np.float64)))
+def _prefix_sums(p: np.ndarray) -> np.ndarray:
+    """[0, p0, p0 + p1, …] in float64."""
+    return np.concatenate(([0.0], np.cumsum(p, dtype=np.float64)))
+
+
+def _scale_regions(
+    p: np.ndarray, dof: float, floor: float, pfa: float, m: int, cs: np.ndarray | None = None
+) -> np.ndarray:
+    """Frame intervals (k, 2) where the m-frame moving mean passes the hysteresis test.
+
+    ``cs`` may give :func:`_prefix_sums` of ``p``.
+    """
+    if cs is None:
+        cs = _prefix_sums(p)
     stat = (cs[m:] - cs[:-m]) / m  # window i covers frames [i, i + m)
     t_start = threshold_from_floor(floor, m * dof, pfa)
     t_stop = threshold_from_floor(floor, m * dof, math.sqrt(pfa))
@@ -484,7 +495,8 @@ class _Prefix:
     """
 
     def __init__(self, p: np.ndarray) -> None:
-        self.cs = np.concatenate(([0.0], np.cumsum(p, dtype=np.float64))).tolist()
+        self.sums = _prefix_sums(p)
+        self.cs = self.sums.tolist()
         self.size = p.size
 
     def count(self, a: int, b: int) -> int:
@@ -608,15 +620,21 @@ def _split_by_scale(p: _Prefix, dof, floor, by_scale, scales_desc, a, b) -> list
     return sorted(out)
 
 
-def _detect_groups(p: np.ndarray, dof: float, floor: float, pfa: float) -> list[_Group]:
-    """Join the detections of all smoothing lengths into bursts with edge search windows."""
+def _detect_groups(
+    p: np.ndarray, dof: float, floor: float, pfa: float, pm: _Prefix | None = None
+) -> list[_Group]:
+    """Join the detections of all smoothing lengths into bursts with edge search windows.
+
+    ``pm`` may give ``_Prefix(p)`` (the floor iterations call this on the same powers).
+    """
     n_frames = p.size
+    if pm is None:
+        pm = _Prefix(p)
     scales = [m for m in SMOOTHING_FRAMES if m <= n_frames]
-    per_scale = [(m, _scale_regions(p, dof, floor, pfa, m)) for m in scales]
+    per_scale = [(m, _scale_regions(p, dof, floor, pfa, m, pm.sums)) for m in scales]
     allint = [(a, b, m) for m, r in per_scale for a, b in r.tolist()]
     if not allint:
         return []
-    pm = _Prefix(p)
     # Clusters: connected components of the union of all intervals.
     order = sorted(allint)
     clusters, cur, reach = [], [order[0]], order[0][1]
@@ -1241,8 +1259,9 @@ def _detect_bursts(
     start_floor = floor
     gap = np.ones(n_frames, dtype=bool)
     groups: list[_Group] = []
+    prefix = _Prefix(p)
     for _ in range(4):
-        groups = _detect_groups(p, dof, floor, pfa)
+        groups = _detect_groups(p, dof, floor, pfa, prefix)
         if not groups:
             break  # nothing detected: the gaps are the whole capture, keep the estimate
         gap = np.ones(n_frames, dtype=bool)
