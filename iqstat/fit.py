@@ -705,7 +705,7 @@ class _Batch:
         elem = np.repeat(self.starts[idx] - starts, rows) + np.arange(int(rows.sum()))
         return replace(
             self,
-            r=self.r[:, elem],
+            r=self.r.take(elem, axis=1),  # C order (r[:, elem] would be F order: strided rows)
             starts=starts,
             rows=rows,
             q_sum=self.q_sum[idx],
@@ -2117,7 +2117,7 @@ def _subsampled(batch: _Batch, idx: np.ndarray, n_keep: int, q: np.ndarray) -> _
     rows = np.array(rows)
     return replace(
         batch,
-        r=batch.r[:, np.concatenate(elems)],
+        r=batch.r.take(np.concatenate(elems), axis=1),  # C order, as _Batch.take
         starts=np.cumsum(rows) - rows,
         rows=rows,
         q_sum=np.array(qs),
