@@ -900,20 +900,27 @@ def _newton_steps_2(grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
     """:func:`_newton_steps` for P = 2 without LAPACK: −H = [[a, b], [b, c]] has eigenvalues
     (a + c)/2 ± √(((a − c)/2)² + b²); where both exceed the floor the step is Cramer's
     (−H)⁻¹g, the other bursts (rare: indefinite or nearly singular) go through eigh."""
-    a, b, c = -hess[:, 0, 0], -hess[:, 0, 1], -hess[:, 1, 1]
-    half = 0.5 * (a - c)
-    root = np.sqrt(half * half + b * b)
-    mean = 0.5 * (a + c)
-    lo, hi = mean - root, mean + root
-    floor = 1e-8 * np.maximum(1.0, np.maximum(np.abs(lo), np.abs(hi)))
-    det = a * c - b * b
+    h00, h01, h11 = hess[:, 0, 0], hess[:, 0, 1], hess[:, 1, 1]
+    half = 0.5 * (h11 - h00)  # (a − c)/2
+    root = np.sqrt(half * half + h01 * h01)
+    mean = -0.5 * (h00 + h11)  # (a + c)/2
+    lo = mean - root
+    # where lo > 0 the larger |eigenvalue| is mean + root: the floor 1e-8·max(1, |λ|)
+    ok = lo > 1e-8 * np.maximum(1.0, mean + root)
+    det = h00 * h11 - h01 * h01  # = det(−H)
+    ok &= det > 0.0
     g0, g1 = grad[:, 0], grad[:, 1]
-    step = np.stack([c * g0 - b * g1, a * g1 - b * g0], axis=1) / det[:, None]
+    step = np.empty_like(grad)
+    np.multiply(h01, g1, out=step[:, 0])
+    step[:, 0] -= h11 * g0  # c·g0 − b·g1 with a = −h00, b = −h01, c = −h11
+    np.multiply(h01, g0, out=step[:, 1])
+    step[:, 1] -= h00 * g1  # a·g1 − b·g0
+    step /= det[:, None]
     big = np.max(np.abs(step), axis=1)
     # never move A or N0 by more than e² in one step
     step *= np.where(big > 2.0, 2.0 / np.maximum(big, 2.0), 1.0)[:, None]
-    odd = np.flatnonzero(~((lo > floor) & (det > 0.0)))
-    if odd.size:
+    if not ok.all():
+        odd = np.flatnonzero(~ok)
         step[odd] = _newton_steps_eigh(grad[odd], hess[odd])
     return step
 
