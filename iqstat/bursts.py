@@ -620,44 +620,157 @@ def _split_by_scale(p: _Prefix, dof, floor, by_scale, scales_desc, a, b) -> list
     return sorted(out)
 
 
+def _chain_groups(x, y, m, present, a0, b0, cs, dof, floor, n_frames):
+    """Groups of clusters holding at most one interval per smoothing length, vectorised.
+
+    Row c of ``x``, ``y`` (int64, (n_clusters, n_scales), scales fine to coarse ``m``) holds
+    cluster c's interval of each length where ``present``; [a0, b0) are the clusters' frame
+    ranges. With one interval per length :func:`_split_by_scale` returns one piece: the
+    coarsest interval, replaced from the finest length up by the sharper edges of the chain
+    of finer intervals that overlap it, unless the coarser one's extra frames hold signal.
+    This evaluates that recursion for all clusters at once with the same arithmetic (same
+    bits). Returns start, stop, start_lo, start_hi, stop_lo, stop_hi as int64 arrays.
+    """
+    n_c, n_s = x.shape
+    # Top down: which lengths the recursion visits (the first length, coarse to fine, with
+    # an interval overlapping the window of the length visited before it).
+    chain = np.zeros((n_c, n_s), dtype=bool)
+    wa, wb = a0.copy(), b0.copy()
+    for s in range(n_s - 1, -1, -1):
+        v = present[:, s] & (y[:, s] > wa) & (x[:, s] < wb)
+        chain[:, s] = v
+        wa = np.where(v, x[:, s], wa)
+        wb = np.where(v, y[:, s], wb)
+    # Bottom up: the piece of the finer lengths, extended where _part_of_burst says so.
+    has = np.zeros(n_c, dtype=bool)
+    f0 = np.zeros(n_c, dtype=np.int64)
+    f1 = np.zeros(n_c, dtype=np.int64)
+    mf = np.zeros(n_c, dtype=np.int64)
+    ml = np.zeros(n_c, dtype=np.int64)
+    n = cs.size - 1
+
+    def part_of_burst(lo, hi, level):  # _part_of_burst on arrays, same operations
+        lo, hi = np.maximum(lo, 0), np.minimum(hi, n)
+        count = np.maximum(hi - lo, 0)
+        ok = count > 0
+        cnt = np.where(ok, count, 1)
+        mean = (cs[np.where(ok, hi, 0)] - cs[np.where(ok, lo, 0)]) / cnt
+        return (
+            ok & (mean > floor * (1.0 + 3.0 / np.sqrt(cnt * dof))) & (mean > 0.5 * (floor + level))
+        )
+
+    for s in range(n_s):
+        c = chain[:, s]
+        if not c.any():
+            continue
+        xs, ys, ms = x[:, s], y[:, s], m[s]
+        level = (cs[np.minimum(ys, n)] - cs[xs]) / np.maximum(np.minimum(ys, n) - xs, 1)
+        ext_lo = (f0 > xs + ms) & part_of_burst(xs, f0, level)
+        ext_hi = (f1 < ys - ms) & part_of_burst(f1, ys, level)
+        new = c & ~has
+        upd = c & has
+        lo_x = upd & ext_lo | new
+        hi_x = upd & ext_hi | new
+        f0 = np.where(lo_x, xs, f0)
+        mf = np.where(lo_x, ms, mf)
+        f1 = np.where(hi_x, ys, f1)
+        ml = np.where(hi_x, ms, ml)
+        has |= c
+    # Edge windows: every interval of the cluster overlapping the piece (neighbours: none).
+    over = present & (y > f0[:, None]) & (x < f1[:, None])
+    big = np.iinfo(np.int64).max
+    lo = np.maximum(np.min(np.where(over, x, big), axis=1) - 1, 0)
+    hi = np.minimum(np.max(np.where(over, y, -big), axis=1) + 1, n_frames)
+    mid = (f0 + f1 + 1) // 2
+    start_hi = np.maximum(np.minimum(f0 + mf + 1, mid), lo + 1)
+    stop_lo = np.minimum(np.maximum(f1 - ml - 1, mid), hi - 1)
+    return f0, f1, lo, start_hi, stop_lo, hi
+
+
 def _detect_groups(
-    p: np.ndarray, dof: float, floor: float, pfa: float, pm: _Prefix | None = None
+    p: np.ndarray,
+    dof: float,
+    floor: float,
+    pfa: float,
+    pm: _Prefix | None = None,
+    fast: bool = True,
 ) -> list[_Group]:
     """Join the detections of all smoothing lengths into bursts with edge search windows.
 
     ``pm`` may give ``_Prefix(p)`` (the floor iterations call this on the same powers).
+    ``fast`` groups clusters with at most one interval per smoothing length in one
+    vectorised pass (:func:`_chain_groups`, same groups); False runs the general code on
+    every cluster (kept for the tests that check the two agree).
     """
     n_frames = p.size
     if pm is None:
         pm = _Prefix(p)
     scales = [m for m in SMOOTHING_FRAMES if m <= n_frames]
-    per_scale = [(m, _scale_regions(p, dof, floor, pfa, m, pm.sums)) for m in scales]
-    allint = [(a, b, m) for m, r in per_scale for a, b in r.tolist()]
-    if not allint:
+    per_scale = [_scale_regions(p, dof, floor, pfa, m, pm.sums) for m in scales]
+    sizes = [r.shape[0] for r in per_scale]
+    if not sum(sizes):
         return []
-    # Clusters: connected components of the union of all intervals.
-    order = sorted(allint)
-    clusters, cur, reach = [], [order[0]], order[0][1]
-    for iv in order[1:]:
-        if iv[0] <= reach:
-            cur.append(iv)
-            reach = max(reach, iv[1])
-        else:
-            clusters.append(cur)
-            cur, reach = [iv], iv[1]
-    clusters.append(cur)
+    # Clusters: connected components of the union of all intervals, in sorted order.
+    iv = np.concatenate(per_scale)
+    si = np.repeat(np.arange(len(scales)), sizes)
+    order = np.lexsort((si, iv[:, 1], iv[:, 0]))
+    xa, ya, sa = iv[order, 0], iv[order, 1], si[order]
+    reach = np.maximum.accumulate(ya)
+    first = np.concatenate(([True], xa[1:] > reach[:-1]))
+    cid = np.cumsum(first) - 1
+    n_c = int(cid[-1]) + 1
+    bounds = np.append(np.flatnonzero(first), xa.size)
+    counts = np.zeros((n_c, len(scales)), dtype=np.int64)
+    np.add.at(counts, (cid, sa), 1)
+    single = counts.max(axis=1) <= 1 if fast else np.zeros(n_c, dtype=bool)
+
+    done: dict[int, _Group] = {}
+    if single.any():
+        sel = single[cid]
+        rows = np.cumsum(single) - 1
+        n_f = int(single.sum())
+        x = np.zeros((n_f, len(scales)), dtype=np.int64)
+        y = np.zeros_like(x)
+        present = np.zeros(x.shape, dtype=bool)
+        r, s = rows[cid[sel]], sa[sel]
+        x[r, s], y[r, s], present[r, s] = xa[sel], ya[sel], True
+        fc = np.flatnonzero(single)
+        a0 = xa[bounds[fc]]
+        b0 = reach[bounds[fc + 1] - 1]
+        cols = _chain_groups(
+            x,
+            y,
+            np.array(scales, dtype=np.int64),
+            present,
+            a0,
+            b0,
+            pm.sums,
+            dof,
+            floor,
+            n_frames,
+        )
+        for c, g in zip(fc.tolist(), zip(*(v.tolist() for v in cols), strict=True), strict=True):
+            done[c] = _Group(*g)
+    if len(done) == n_c:
+        return [done[c] for c in range(n_c)]
+    m_of = np.array(scales)[sa].tolist()
+    xl, yl, bl = xa.tolist(), ya.tolist(), bounds.tolist()
 
     groups: list[_Group] = []
-    for cl in clusters:
+    for ci in range(n_c):
+        if ci in done:
+            groups.append(done[ci])
+            continue
+        i0, i1 = bl[ci], bl[ci + 1]
         # From the coarsest smoothing length down: a burst is split only where a finer length
         # shows a gap that is decisively noise; within a burst, the finest length that still
         # sees it whole gives its edges. (Taking the finest fragments everywhere would let a
         # weak burst's dips mask the true gaps, and bursts would merge.)
         per_m: dict[int, list[tuple[int, int]]] = {m: [] for m in scales}
-        for a, b, mm in cl:
-            per_m[mm].append((a, b))
+        for k in range(i0, i1):
+            per_m[m_of[k]].append((xl[k], yl[k]))
         by_scale = {m: _Intervals(per_m[m]) for m in scales}
-        merged = _split_by_scale(pm, dof, floor, by_scale, scales[::-1], cl[0][0], reach_of(cl))
+        merged = _split_by_scale(pm, dof, floor, by_scale, scales[::-1], xl[i0], max(yl[i0:i1]))
         # A piece found at smoothing length m may start up to m frames before the true edge.
         for i, (a, b, m_first, m_last) in enumerate(merged):
             left = merged[i - 1][1] if i else 0

@@ -511,3 +511,34 @@ def test_batched_refinement_equals_one_group_at_a_time():
         for (a, b), (t0, t1) in zip(together[:2] + together[3:5], sizes, strict=True):
             assert abs(a - t0) < 20 * SPS and abs(b - t1) < 20 * SPS
         assert together[-1][1] == n
+
+
+@pytest.mark.parametrize("seed", [3, 8])
+def test_vectorised_grouping_equals_the_general_code(seed, monkeypatch):
+    # Clusters with at most one interval per smoothing length are grouped in one vectorised
+    # pass; it must give the general recursion's groups exactly (same edges and windows), on
+    # frame powers with strong, weak and split bursts, near the ends, and in a mix with
+    # clusters the general code handles (several intervals of one length).
+    import iqstat.bursts as bursts_mod
+
+    rng = np.random.default_rng(seed)
+    n_frames, dof = 40_000, 12.0
+    level = np.ones(n_frames)
+    pos = 0
+    while pos < n_frames:
+        pos += int(rng.integers(30, 400))
+        width = int(rng.integers(2, 200))
+        level[pos : pos + width] += float(10 ** rng.uniform(-0.8, 1.5))
+        pos += width
+    level[:5] += 3.0  # a burst at the very start
+    p = rng.gamma(dof, level / dof)  # Gamma(dof) frame powers of mean `level`
+    floor = noise_floor_lowest_cluster(p, dof)
+    chained = []
+    inner = bursts_mod._chain_groups
+    monkeypatch.setattr(
+        bursts_mod, "_chain_groups", lambda x, *a: (chained.append(x.shape[0]), inner(x, *a))[1]
+    )
+    fast = bursts_mod._detect_groups(p, dof, floor, 1e-4)
+    general = bursts_mod._detect_groups(p, dof, floor, 1e-4, fast=False)
+    assert fast == general
+    assert 0 < chained[0] < len(fast)  # both paths ran
