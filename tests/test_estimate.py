@@ -488,6 +488,27 @@ def test_batch_equals_single_bursts_and_keeps_failures_in_their_slots(modulation
         assert abs(batch[i].cfo_hz - cfo) <= max(50.0, 0.01 * RS), (i, batch[i].cfo_hz)
 
 
+def test_batch_split_into_chunks_equals_one_chunk(monkeypatch):
+    # Bursts of one DFT length go through the FFT in chunks of at most BATCH_ROWS rows; a
+    # row's numbers depend on that row alone, so chunking must not change any result (and a
+    # zeroed burst stays a failure in its slot) [project design rule].
+    import iqstat.estimate as estimate_module
+
+    xs = [
+        make_burst("2fsk", 1.0, 4.0 + 2.0 * i, seed=60 + i, cfo_hz=-2000.0 + 400.0 * i)[0]
+        for i in range(11)
+    ]
+    xs[5] = np.zeros_like(xs[5])
+    kw = dict(modulation="2fsk", symbol_rate_hz=RS, tone_spacing_hz=RS, band_margin_symbols=2.0)
+    whole = estimate_link_many(xs, FS, **kw)
+    monkeypatch.setattr(estimate_module, "BATCH_ROWS", 4)  # chunks of 4, 4 and 3 (+ 1 zero row)
+    split = estimate_link_many(xs, FS, **kw)
+    assert isinstance(whole[5], MeasurementError) and str(split[5]) == str(whole[5])
+    for i, (a, b) in enumerate(zip(whole, split, strict=True)):
+        if i != 5:
+            assert a.to_dict() == b.to_dict(), i
+
+
 def test_band_energy_matches_a_direct_dft_sum():
     # Parseval (Σ|X_k|²/N = Σ|x_n|², any DFT text): the band energy is the bins' power over the
     # DFT length; recomputed here with numpy's FFT and fftfreq on the same zero-padded length.
