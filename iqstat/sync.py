@@ -730,8 +730,10 @@ def recover_timing_mixed_many(
 
 
 #: Bursts worked together by :func:`time_and_correlate_many`: their block sums and feature
-#: temporaries stay below about this many bytes (reused from chunk to chunk).
-_FUSED_CHUNK_BYTES = 8 << 20
+#: temporaries stay below about this many bytes (reused from chunk to chunk). 12 MB holds a
+#: whole batch of measure_capture (1 M samples of 2-FSK at 4-sample blocks: ~10 MB) in one
+#: chunk, so each batch pays the chunk's fixed numpy calls once (8 MB split it in two).
+_FUSED_CHUNK_BYTES = 12 << 20
 #: Bursts whose symbols the bank takes together (their per-symbol arrays stay cached).
 _BANK_SLICE_BURSTS = 8
 
@@ -774,7 +776,7 @@ def time_and_correlate_many(
     :func:`~iqstat.correlate.mix_blocks_many` (blocks of
     :func:`~iqstat.correlate.block_samples_for` the nominal period),
     :func:`recover_timing_blocks_many` and ``correlate_symbols_many(blocks=)`` run on a few
-    bursts at a time (~8 MB of block sums, about one batch of measure_capture; the same work
+    bursts at a time (~12 MB of block sums, one batch of measure_capture; the same work
     arrays for every chunk). Inside, the elementwise passes run on slices of a few bursts
     (~1 MB) and the bank on _BANK_SLICE_BURSTS bursts at a time, so that their temporaries
     stay cached; larger chunks only amortise the fixed number of numpy calls better.
