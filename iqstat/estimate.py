@@ -865,9 +865,10 @@ def _signal_width(m: int, spacing_hz: float | None, rate_hz: float) -> float:
 _FFT_MANTISSAS = (32, 36, 40, 45, 48, 50, 54, 60)
 #: Bursts transformed together (rows of one 2-D FFT). Rows are independent (a row's numbers
 #: depend on that row alone), so this trades only the per-chunk numpy calls against memory:
-#: 64 rows of 40 k samples take ~22 MB (complex64); measure's batches of <= 1 M samples fit
-#: in one chunk (~9 MB). 16 -> 64 rows: ~190 -> ~167 us per burst of 29 k samples.
-BATCH_ROWS = 64
+#: measure's batches (~35 bursts, <= 1 M samples) are one chunk; 64 bursts of 40 k samples
+#: are two chunks of 32, ~23 MB at the peak. 16 -> 40 rows: ~190 -> ~167 us per burst of
+#: 29 k samples (64 rows are no faster and twice the memory).
+BATCH_ROWS = 40
 
 
 def fft_size(n_samples: int) -> int:
