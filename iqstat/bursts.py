@@ -521,11 +521,6 @@ def _split_gap(p: _Prefix, dof: float, floor: float, a, b) -> bool:
     return llr > _SPLIT_LOG_LR
 
 
-def reach_of(cluster) -> int:
-    """One past the last frame of a cluster of (start, stop, m) intervals."""
-    return max(iv[1] for iv in cluster)
-
-
 def _part_of_burst(p: _Prefix, dof: float, floor: float, level: float, a: int, b: int) -> bool:
     """Whether frames [a, b) belong to a burst of mean power ``level`` next to them.
 
