@@ -228,7 +228,6 @@ def correlate_symbols_many(
     n_symbols_list: Sequence[int],
     *,
     cumulatives: Sequence[np.ndarray] | None = None,
-    mixed: Sequence[np.ndarray] | None = None,
     blocks: BlockSums | None = None,
 ) -> list[np.ndarray]:
     """:func:`correlate_symbols` of a batch of bursts, in a fixed number of numpy calls.
@@ -247,10 +246,6 @@ def correlate_symbols_many(
         :func:`mix_cumulative_many` of the same bursts and tones (or one
         :func:`mix_cumulative` per burst): the sums are then differences of it, eq. (2) of
         :func:`correlate_symbols`.
-    mixed : sequence of B ndarrays, optional
-        :func:`mix_many` of the same bursts and tones: each symbol's sums are then one
-        ``np.add.reduceat`` per burst of the mixed samples (complex64 sums of one symbol,
-        ~1e-7 relative to the cumulative path), and no running sums are needed.
     blocks : BlockSums, optional
         :func:`mix_blocks_many` of the same bursts and tones: each boundary's running sum is
         the block-start sum plus the at most L − 1 samples from there to the boundary, eq. (3)
@@ -307,23 +302,6 @@ def correlate_symbols_many(
     if blocks is not None:
         _bank_from_blocks(blocks, arrays, freqs / fs, bnd, offs, out)
         return [out[offs[i] : offs[i + 1]] for i in range(n_b)]
-    if mixed is not None:
-        if len(mixed) != n_b:
-            raise ParameterError(f"mixed has {len(mixed)} entries for {n_b} bursts; give one each")
-        for i, (y, b) in enumerate(zip(mixed, bnd, strict=True)):
-            if y.shape != (m, arrays[i].size):
-                raise ParameterError(
-                    f"mixed[{i}] has shape {y.shape}, expected {(m, arrays[i].size)} "
-                    "(mix_many of the same bursts and tones)"
-                )
-            k = b.size - 1
-            if k:
-                # Segments [b_k, b_{k+1}): cut y at the last boundary so the final one ends there.
-                out[offs[i] : offs[i + 1]] = np.add.reduceat(y[:, : b[-1]], b[:-1], axis=1).T
-        centre = starts + (nk - 1) / 2.0
-        out *= unit_phasors(freqs[burst_of] / fs * centre[:, None])  # eq. (2)
-        out /= np.sqrt(nk)[:, None]
-        return [out[offs[i] : offs[i + 1]] for i in range(n_b)]
     if cumulatives is not None:
         if len(cumulatives) != n_b:
             raise ParameterError(
@@ -367,8 +345,8 @@ def _bank_from_blocks(blocks: BlockSums, arrays, c, bnd, offs, out) -> None:
     n_b = len(arrays)
     if blocks.samples is None:
         raise ParameterError(
-            "blocks were made from mixed samples (no raw samples for the symbol edges); pass "
-            "mix_blocks_many of the bursts and tones"
+            "blocks hold no raw samples for the symbol edges; pass mix_blocks_many of the "
+            "bursts and tones"
         )
     if len(blocks) != n_b:
         raise ParameterError(
@@ -752,60 +730,6 @@ def mix_cumulative_many(
     return [buf[b, :, : a.size + 1] for b, a in enumerate(arrays)]
 
 
-def mix_many(
-    xs: Sequence[np.ndarray],
-    sample_rate_hz: float,
-    tone_freqs_list: Sequence[Sequence[float]],
-) -> list[np.ndarray]:
-    """Each burst mixed down by each of its tones (no running sums).
-
-    Parameters
-    ----------
-    xs : sequence of B ndarrays, shapes (n_b,)
-        The bursts' samples (ragged).
-    sample_rate_hz : float
-        Sample rate fs [Hz].
-    tone_freqs_list : sequence of B sequences of float
-        Each burst's tones [Hz]; the same count M for every burst.
-
-    Returns
-    -------
-    list of B ndarrays of complex64, shapes (M, n_b)
-        y_b[i, n] = x_b[n]·exp(−j2πf_{b,i} n/fs): what :func:`correlate_symbols_many`
-        (``mixed=``) sums over each symbol and
-        :func:`~iqstat.sync.recover_timing_mixed_many` over sub-symbol blocks. Views of
-        one (B, M, W) buffer.
-
-    Notes
-    -----
-    The phasors are the two-table products of :func:`mix_cumulative_many` (float64, phase
-    reduced modulo one cycle), rounded to complex64 once: a relative error of ~6e-8 per
-    sample, far below the noise of any capture.
-    """
-    fs = _check_rate("sample_rate_hz", sample_rate_hz)
-    if len(tone_freqs_list) != len(xs):
-        raise ParameterError(
-            f"xs has {len(xs)} bursts but tone_freqs_list has {len(tone_freqs_list)} entries; "
-            "give one tone list per burst"
-        )
-    if len(xs) == 0:
-        return []
-    arrays = [check_samples(x) for x in xs]
-    freqs = _check_tone_list(tone_freqs_list, fs)
-    n_b, m = freqs.shape
-    n = np.array([a.size for a in arrays])
-    block, n_blocks = _phasor_block(int(n.max()))
-    buf = np.empty((n_b, m, n_blocks * block), dtype=np.complex64)
-    body = buf.reshape(n_b, m, n_blocks, block)
-    c = freqs / fs
-    within = unit_phasors(-c[:, :, None] * np.arange(block))
-    starts = unit_phasors(-c[:, :, None] * (np.arange(n_blocks) * block))
-    np.multiply(starts[:, :, :, None], within[:, :, None, :], out=body, casting="same_kind")
-    for b, a in enumerate(arrays):  # ragged rows: one product per burst
-        buf[b, :, : a.size] *= a
-    return [buf[b, :, : a.size] for b, a in enumerate(arrays)]
-
-
 def batch_buffer(
     cumulatives: Sequence[np.ndarray], n_tones: int, n_samples: Sequence[int]
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -912,8 +836,8 @@ class BlockSums:
         The tones as f_{b,i}/fs.
     samples : tuple of B ndarrays, or None
         The bursts (the bank takes the few samples between a symbol boundary and the next
-        block start from them); None when made from mixed samples (:func:`blocks_of_mixed`),
-        which only the timing reads.
+        block start from them); None for block sums built by hand that only the timing
+        (:func:`~iqstat.sync.recover_timing_blocks_many`) reads.
     """
 
     sums: np.ndarray
@@ -1038,39 +962,4 @@ def _mix_blocks(arrays, c: np.ndarray, blk: int, fs: float, scratch: Scratch) ->
         sample_rate_hz=fs,
         cycles_per_sample=c,
         samples=tuple(arrays),
-    )
-
-
-def blocks_of_mixed(
-    mixed: Sequence[np.ndarray], sample_rate_hz: float, block_samples: int
-) -> BlockSums:
-    """:class:`BlockSums` of bursts already mixed down (:func:`mix_many`): the block sums of
-    the mixed samples by a reshape, and their running sums (``samples`` None, tones unknown:
-    only the timing, :func:`~iqstat.sync.recover_timing_blocks_many`, reads this form).
-    """
-    fs = _check_rate("sample_rate_hz", sample_rate_hz)
-    if isinstance(block_samples, bool) or int(block_samples) != block_samples or block_samples < 1:
-        raise ParameterError(f"block_samples {block_samples!r} must be a positive whole number")
-    blk = int(block_samples)
-    ys = [np.asarray(y) for y in mixed]
-    if not ys:
-        raise ParameterError("mixed is empty; give at least one burst")
-    m = ys[0].shape[0]
-    if any(y.ndim != 2 or y.shape[0] != m for y in ys):
-        raise ParameterError("mixed must hold (M, n) arrays with one tone count M per batch")
-    nbk = np.array([y.shape[1] // blk for y in ys], dtype=np.int64)
-    j_max = int(nbk.max())
-    sums = np.zeros((len(ys), m, j_max + 1), dtype=np.complex128)
-    for b, y in enumerate(ys):
-        k = int(nbk[b])
-        sums[b, :, 1 : k + 1] = y[:, : k * blk].reshape(m, k, blk).sum(axis=2)
-    np.cumsum(sums, axis=2, out=sums)
-    return BlockSums(
-        sums=sums,
-        n_blocks=nbk,
-        n_samples=np.array([y.shape[1] for y in ys], dtype=np.int64),
-        block_samples=blk,
-        sample_rate_hz=fs,
-        cycles_per_sample=np.full((len(ys), m), np.nan),
-        samples=None,
     )

@@ -37,7 +37,6 @@ from iqstat.correlate import (
     _mix_blocks,
     batch_buffer,
     block_samples_for,
-    blocks_of_mixed,
     check_samples,
     mix_cumulative_many,
     symbol_boundaries,
@@ -76,7 +75,7 @@ _MAX_CHECK_MOVES = 4
 CLOCK_SIGNIFICANCE = 3.0
 
 #: At and above this symbol-rate line SNR [dB] the decimated timing
-#: (:func:`recover_timing_mixed_many`) is final: its own spread is then below ~1 % of a symbol,
+#: (:func:`time_and_correlate_many`) is final: its own spread is then below ~1 % of a symbol,
 #: well inside the matched-energy check's finest step (5 %).
 STRONG_LINE_DB = 20.0
 
@@ -693,40 +692,6 @@ def _time_chunk(buf, rows, n, p0, part, track_clock, out, given) -> None:
             message=message,
             reliable=bool(reliable),
         )
-
-
-def recover_timing_mixed_many(
-    mixed: Sequence[np.ndarray],
-    sample_rate_hz: float,
-    symbol_rate_hz: float,
-    *,
-    track_clock: bool = True,
-) -> list[SymbolTiming | MeasurementError | None]:
-    """Symbol timing of a batch from its mixed samples on a decimated feature.
-
-    Parameters
-    ----------
-    mixed : sequence of B ndarrays, shapes (M, n_b)
-        :func:`~iqstat.correlate.mix_many` of the bursts and their tones.
-    sample_rate_hz : float
-        Sample rate fs [Hz].
-    symbol_rate_hz : float
-        Nominal symbol rate Rs [Bd], common to the batch.
-    track_clock : bool
-        Estimate the clock offset (see :func:`recover_timing`).
-
-    Returns
-    -------
-    list of B SymbolTiming, MeasurementError or None
-        As :func:`recover_timing_blocks_many` (the same core, on block sums of the mixed
-        samples, :func:`~iqstat.correlate.blocks_of_mixed`).
-    """
-    fs = _check_rate("sample_rate_hz", sample_rate_hz)
-    rate = _check_rate("symbol_rate_hz", symbol_rate_hz)
-    if len(mixed) == 0:
-        return []
-    blocks = blocks_of_mixed(mixed, fs, block_samples_for(fs / rate))
-    return recover_timing_blocks_many(blocks, rate, track_clock=track_clock)
 
 
 #: Bursts worked together by :func:`time_and_correlate_many`: their block sums and feature

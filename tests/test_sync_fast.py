@@ -15,19 +15,15 @@ import pytest
 
 from iqstat.correlate import (
     block_samples_for,
-    blocks_of_mixed,
     correlate_symbols_many,
     mix_blocks_many,
-    mix_many,
     template_gram,
 )
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.sync import (
     STRONG_LINE_DB,
     recover_timing,
-    recover_timing_blocks_many,
     recover_timing_many,
-    recover_timing_mixed_many,
     time_and_correlate_many,
 )
 from iqstat.synth import modulate
@@ -52,31 +48,6 @@ def _burst(rng, n_sym, esn0_db, *, ppm=0.0, t_off=None, modulation="2fsk", cfo=7
     return x, list(cfo + offs), t_off, P0 / (1 + ppm * 1e-6)
 
 
-def test_mixed_bank_equals_template_products():
-    # eq. (1) of correlate_symbols (no running sums) as the reference; complex64 mixing
-    # leaves ~1e-7 relative (float32 rounding of ~50-sample sums).
-    rng = np.random.default_rng(5)
-    xs, tones = [], []
-    for n in (3000, 2500, 4100):
-        xs.append((rng.standard_normal(n) + 1j * rng.standard_normal(n)).astype(np.complex64))
-        tones.append(list(rng.uniform(-5e3, 5e3, 2)))
-    grids = ([0.3, 1.7, 40.2], [52.083, 52.09, 51.9], [57, 47, 77])
-    ys = mix_many(xs, FS, tones)
-    got = correlate_symbols_many(xs, FS, tones, *grids, mixed=ys)
-    ref = correlate_symbols_many(xs, FS, tones, *grids)
-    for g, r in zip(got, ref, strict=True):
-        assert g.shape == r.shape
-        np.testing.assert_allclose(g, r, rtol=0, atol=1e-6 * np.abs(r).max())
-
-
-def test_mixed_bank_checks_shapes():
-    x = np.ones(1000, np.complex64)
-    with pytest.raises(ParameterError, match="mixed"):
-        correlate_symbols_many(
-            [x], FS, [[0.0, 100.0]], [0.0], [P0], [10], mixed=[np.ones((1, 1000), np.complex64)]
-        )
-
-
 @pytest.mark.parametrize(
     ("modulation", "ppm", "n_sym"),
     [("2fsk", 0.0, 600), ("2fsk", 20.0, 3000), ("2fsk", -20.0, 3000), ("4fsk", 0.0, 600)],
@@ -89,7 +60,7 @@ def test_decimated_timing_finds_the_true_grid(modulation, ppm, n_sym):
     rng = np.random.default_rng(11)
     for _ in range(4):
         x, tones, t_off, period = _burst(rng, n_sym, 20.0, ppm=ppm, modulation=modulation)
-        (t,) = recover_timing_mixed_many(mix_many([x], FS, [tones]), FS, RS)
+        (t,), _ = time_and_correlate_many([x], FS, RS, [tones])
         assert t.quality["line_snr_db"] >= STRONG_LINE_DB
         k = t.n_symbols // 2
         true_k = t_off + round((t.t0_samples + k * t.period_samples - t_off) / period) * period
@@ -105,7 +76,7 @@ def test_decimated_timing_agrees_with_the_full_rate_feature():
     for _ in range(6):
         x, tones, _, _ = _burst(rng, 560, 16.0)
         full = recover_timing(x, FS, RS, tones)
-        (fast,) = recover_timing_mixed_many(mix_many([x], FS, [tones]), FS, RS)
+        (fast,), _ = time_and_correlate_many([x], FS, RS, [tones])
         k = full.n_symbols // 2
         a = full.t0_samples + k * full.period_samples
         b = fast.t0_samples + round((a - fast.t0_samples) / fast.period_samples) * (
@@ -119,14 +90,11 @@ def test_decimated_timing_reports_bad_bursts_in_their_slots():
     x, tones, t_off, period = _burst(rng, 600, 20.0, t_off=7.25)
     zero = np.zeros_like(x)
     short = x[:800]
-    ys = mix_many([x, zero, short], FS, [tones] * 3)
-    good, none, few = recover_timing_mixed_many(ys, FS, RS)
+    (good, none, few), zs = time_and_correlate_many([x, zero, short], FS, RS, [tones] * 3)
     assert isinstance(none, MeasurementError) and "no energy" in str(none)
     assert isinstance(few, MeasurementError) and "fewer than" in str(few)
     assert abs(good.t0_samples - 7.25) < 0.005 * P0
-    # Under 8 samples per symbol there is nothing to decimate: the slot says so with None.
-    (slow,) = recover_timing_mixed_many(mix_many([x[:4000]], FS, [tones]), FS, FS / 7.0)
-    assert slow is None
+    assert zs[0].shape == (good.n_symbols, 2) and zs[1] is None and zs[2] is None
 
 
 # ------------------------------------------------------------- block-rate mixing (fused path)
@@ -210,20 +178,6 @@ def test_fused_timing_finds_the_true_grid(modulation, ppm):
         assert z.shape == (t.n_symbols, len(tones))
 
 
-def test_mixed_and_block_paths_share_the_timing_core():
-    # recover_timing_mixed_many (block sums of mix_many output) and the fused path see the
-    # same block sums up to complex64 mixing rounding: the grids agree to ~1e-4 samples.
-    rng = np.random.default_rng(25)
-    x, tones, _, _ = _burst(rng, 800, 15.0, ppm=20.0)
-    (a,) = recover_timing_mixed_many(mix_many([x], FS, [tones]), FS, RS)
-    (b,) = recover_timing_blocks_many(mix_blocks_many([x], FS, [tones], block_samples_for(P0)), RS)
-    assert a.n_symbols == b.n_symbols
-    assert (
-        abs(a.t0_samples - b.t0_samples) < 1e-3
-        and abs(a.period_samples / b.period_samples - 1) < 1e-8
-    )
-
-
 def test_block_path_parameter_errors():
     x = np.ones(4000, np.complex64)
     with pytest.raises(ParameterError, match="block_samples"):
@@ -233,9 +187,6 @@ def test_block_path_parameter_errors():
     blocks = mix_blocks_many([x], FS, [[0.0, 100.0]], 4)
     with pytest.raises(ParameterError, match="other tones"):
         correlate_symbols_many([x], FS, [[0.0, 200.0]], [0.0], [P0], [10], blocks=blocks)
-    with pytest.raises(ParameterError, match="mixed samples"):
-        mixed = blocks_of_mixed(mix_many([x], FS, [[0.0, 100.0]]), FS, 4)
-        correlate_symbols_many([x], FS, [[0.0, 100.0]], [0.0], [P0], [10], blocks=mixed)
     # Under 8 samples per symbol nothing is decimated: every slot None, no bank.
     assert time_and_correlate_many([x], FS, FS / 7.0, [[0.0, 100.0]]) == ([None], [None])
 
