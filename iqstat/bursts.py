@@ -314,7 +314,7 @@ def measure_frame_powers(
     *,
     frame_samples: int,
     band_hz: tuple[float, float] | None = None,
-    chunk_samples: int = 1 << 20,
+    chunk_samples: int = DEFAULT_CHUNK_SAMPLES,
 ) -> FramePowers:
     """Per-frame full-band and in-band mean powers in one streaming pass.
 
@@ -1163,7 +1163,7 @@ def detect_bursts(
     pfa: float = 1e-6,
     frame_samples: int | None = None,
     band_hz: tuple[float, float] | None = None,
-    chunk_samples: int = 1 << 20,
+    chunk_samples: int = DEFAULT_CHUNK_SAMPLES,
     expected_burst_s: float | None = None,
     signal_bandwidth_hz: float | None = None,
 ) -> BurstDetection:
