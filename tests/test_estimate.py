@@ -420,7 +420,7 @@ def test_bad_parameters_raise_parameter_error():
 def test_noise_floor_percentile_equals_numpy(n, q):
     # The one-partition percentile used for the spectral noise floor is numpy's default
     # (linear interpolation between order statistics).
-    from iqstat.estimate import _percentile
+    from iqstat.estimate.batch import _percentile
 
     v = np.random.default_rng(n).exponential(size=n)
     assert _percentile(v, q) == pytest.approx(np.percentile(v, 100 * q), rel=1e-15, abs=0)
@@ -492,7 +492,7 @@ def test_batch_split_into_chunks_equals_one_chunk(monkeypatch):
     # Bursts of one DFT length go through the FFT in chunks of at most BATCH_ROWS rows; a
     # row's numbers depend on that row alone, so chunking must not change any result (and a
     # zeroed burst stays a failure in its slot) [project design rule].
-    import iqstat.estimate as estimate_module
+    import iqstat.estimate.batch as estimate_module
 
     xs = [
         make_burst("2fsk", 1.0, 4.0 + 2.0 * i, seed=60 + i, cfo_hz=-2000.0 + 400.0 * i)[0]
@@ -538,7 +538,7 @@ def test_fft_size_is_a_fast_length_with_little_padding(n):
 def test_row_median_equals_numpy(n):
     # The one-partition median of the line windows is numpy's median (mean of the two middle
     # order statistics for an even count) [numpy.median documentation].
-    from iqstat.estimate import _median_rows
+    from iqstat.estimate.batch import _median_rows
 
     v = np.random.default_rng(n).exponential(size=(5, n)).astype(np.float32)
     assert np.array_equal(_median_rows(v), np.median(v, axis=1))
@@ -548,7 +548,7 @@ def test_spectrum_windows_equal_circular_indexing():
     # Windows read from the spectrum followed by its first bins again must hold exactly the
     # bins k mod nfft (the DFT is periodic in k, any DFT text), also across the wrap and
     # after a window is gathered again far away.
-    from iqstat.estimate import _runs_view, _Windows
+    from iqstat.estimate.batch import _runs_view, _Windows
 
     rng = np.random.default_rng(3)
     nfft, width = 1000, 150
@@ -618,7 +618,7 @@ def test_batch_equals_single_near_the_band_edges_with_a_nan_burst():
 def test_feature_is_largest_minus_second_largest_magnitude(modulation):
     # The symbol-boundary feature E[n] = |y|(1) − |y|(2) (largest minus second largest branch
     # magnitude), checked against numpy's sort of the branch magnitudes.
-    from iqstat.estimate import _Burst, tone_frequencies_hz
+    from iqstat.estimate.batch import _Burst, tone_frequencies_hz
 
     x, _ = make_burst(modulation, 1.0, 10.0, seed=70, n_symbols=60)
     b = _Burst(x, FS, modulation)
