@@ -278,7 +278,7 @@ def test_running_sums_passed_in_give_the_same_timing(modulation):
 def test_clock_line_fit_matches_numpy_polyfit():
     # The block-phase line fit of the coarse clock estimate, against np.polyfit with weights
     # √w and its residual-scaled covariance (numpy's documented estimator, n − 2 dof).
-    from iqstat.sync import _weighted_line
+    from iqstat.sync.grid import _weighted_line
 
     rng = np.random.default_rng(62)
     x = np.arange(9) * 3333.0 + 1666.0
