@@ -22,11 +22,6 @@ from scipy import integrate, optimize, special, stats
 from iqstat.errors import ParameterError
 from iqstat.fit import (
     NoncoherentFit,
-    _bessel_terms,
-    _chi2_2_cdf_rows,
-    _log_i0,
-    _newton_steps,
-    _newton_steps_eigh,
     branch_energy_cdf,
     check_energy_laws,
     decide_symbols,
@@ -36,6 +31,9 @@ from iqstat.fit import (
     ook_decision_threshold,
     symbol_posteriors,
 )
+from iqstat.fit.bessel import _bessel_terms, _log_i0
+from iqstat.fit.maximise import _newton_steps, _newton_steps_eigh
+from iqstat.fit.ncx2_cdf import _chi2_2_cdf_rows
 
 MOD = {2: "2fsk", 4: "4fsk"}
 # h = 1/2 tone pair: rho = (1/T)∫ exp(j2π·Δf·t) dt with Δf·T = 1/2 equals 2j/π (|rho| = 2/π,
@@ -767,7 +765,7 @@ def test_chi2_cdf_against_scipy_noncentral_law(lam):
     # Poisson-series terms are used; the remainder bound (λ/2)²/2 is the tolerance there.
     from scipy import stats
 
-    from iqstat.fit import _chi2_2_cdf
+    from iqstat.fit.ncx2_cdf import _chi2_2_cdf
 
     y = np.concatenate([np.geomspace(1e-6, 1.0, 30), np.linspace(1.0, 200.0, 60)])
     ref = stats.chi2.cdf(y, 2) if lam == 0 else stats.ncx2.cdf(y, 2, lam)
@@ -827,7 +825,7 @@ def test_gof_cdf_table_matches_scipy_chndtr_on_a_dense_grid():
     # the whole range it serves: λ in [4, 576], t = √y − √λ from below the window's lower cut
     # to above its upper end, and y down to 0 (small λ). The KS statistic resolves ~1/n, n ~
     # 500: an absolute error of 1e-9 would do; the table gives ~3e-12, 1e-10 is asserted.
-    from iqstat.fit import _ncx2_cdf_from_pairs, _ncx2_cdf_pairs
+    from iqstat.fit.ncx2_cdf import _ncx2_cdf_from_pairs, _ncx2_cdf_pairs
 
     lam = np.r_[4.0, np.geomspace(4.0, 576.0, 97)[1:-1], 576.0]
     a = np.sqrt(lam)
@@ -850,7 +848,9 @@ def test_gof_with_table_equals_gof_with_exact_cdf(monkeypatch):
     # The batched GOF statistics and p-values with the table equal those with chndtr
     # everywhere (table range emptied) to 1e-10, on 2-FSK outputs over Es/N0 3-26 dB: λ = 4.0
     # and 796 lie outside the table's [4, 576] (chndtr), the others inside.
-    import iqstat.fit as fit_module
+    # _ks_marginal_many reads the table range from its own module's globals (imported there
+    # from iqstat.fit.ncx2_cdf), so that is the module to patch
+    import iqstat.fit.goodness_of_fit as gof_module
 
     rng = np.random.default_rng(4)
     ns = [560, 300, 900, 450, 200]
@@ -867,10 +867,10 @@ def test_gof_with_table_equals_gof_with_exact_cdf(monkeypatch):
     lam = np.zeros((len(ns), 2, 2))
     lam[:, 0, 0] = lam[:, 1, 1] = 2.0 * 10 ** (np.array(es_db) / 10)  # λ = 2Es/N0
     priors = np.full((len(ns), 2), 0.5)
-    d_tab, p_tab = fit_module._ks_marginal_many(y, starts, n, lam, priors)
+    d_tab, p_tab = gof_module._ks_marginal_many(y, starts, n, lam, priors)
     assert np.sum((lam[:, 0, 0] >= 4.0) & (lam[:, 0, 0] <= 576.0)) == 3
-    monkeypatch.setattr(fit_module, "_NCX2_LAM_MIN", math.inf)
-    d_ref, p_ref = fit_module._ks_marginal_many(y, starts, n, lam, priors)
+    monkeypatch.setattr(gof_module, "_NCX2_LAM_MIN", math.inf)
+    d_ref, p_ref = gof_module._ks_marginal_many(y, starts, n, lam, priors)
     assert np.all(d_ref > 1e-3)
     np.testing.assert_allclose(d_tab, d_ref, rtol=0, atol=1e-10)
     np.testing.assert_allclose(p_tab, p_ref, rtol=0, atol=1e-10)
@@ -880,7 +880,7 @@ def test_gof_table_nodes_by_quadrature_match_scipy_ncx2():
     # The table's node values: the Rice distribution function accumulated by 3-point
     # Gauss–Legendre over short gaps (Abramowitz & Stegun 25.4.29), against
     # scipy.stats.ncx2.cdf (reference library), including b < 0 (F even in b).
-    from iqstat.fit import _ncx2_cdf_by_quadrature
+    from iqstat.fit.ncx2_cdf import _ncx2_cdf_by_quadrature
 
     a = np.array([2.0, 5.0, 12.0, 24.0])
     t = np.linspace(-8.5, 7.5, 321)  # gaps of 0.05, as between the table's nodes
