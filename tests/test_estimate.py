@@ -420,7 +420,7 @@ def test_bad_parameters_raise_parameter_error():
 def test_noise_floor_percentile_equals_numpy(n, q):
     # The one-partition percentile used for the spectral noise floor is numpy's default
     # (linear interpolation between order statistics).
-    from iqstat.estimate.batch import _percentile
+    from iqstat.estimate.spectrum import _percentile
 
     v = np.random.default_rng(n).exponential(size=n)
     assert _percentile(v, q) == pytest.approx(np.percentile(v, 100 * q), rel=1e-15, abs=0)
@@ -492,7 +492,7 @@ def test_batch_split_into_chunks_equals_one_chunk(monkeypatch):
     # Bursts of one DFT length go through the FFT in chunks of at most BATCH_ROWS rows; a
     # row's numbers depend on that row alone, so chunking must not change any result (and a
     # zeroed burst stays a failure in its slot) [project design rule].
-    import iqstat.estimate.batch as estimate_module
+    import iqstat.estimate.link as link_module
 
     xs = [
         make_burst("2fsk", 1.0, 4.0 + 2.0 * i, seed=60 + i, cfo_hz=-2000.0 + 400.0 * i)[0]
@@ -501,7 +501,7 @@ def test_batch_split_into_chunks_equals_one_chunk(monkeypatch):
     xs[5] = np.zeros_like(xs[5])
     kw = dict(modulation="2fsk", symbol_rate_hz=RS, tone_spacing_hz=RS, band_margin_symbols=2.0)
     whole = estimate_link_many(xs, FS, **kw)
-    monkeypatch.setattr(estimate_module, "BATCH_ROWS", 4)  # chunks of 4, 4 and 3 (+ 1 zero row)
+    monkeypatch.setattr(link_module, "BATCH_ROWS", 4)  # chunks of 4, 4 and 3 (+ 1 zero row)
     split = estimate_link_many(xs, FS, **kw)
     assert isinstance(whole[5], MeasurementError) and str(split[5]) == str(whole[5])
     for i, (a, b) in enumerate(zip(whole, split, strict=True)):
@@ -618,7 +618,7 @@ def test_batch_equals_single_near_the_band_edges_with_a_nan_burst():
 def test_feature_is_largest_minus_second_largest_magnitude(modulation):
     # The symbol-boundary feature E[n] = |y|(1) − |y|(2) (largest minus second largest branch
     # magnitude), checked against numpy's sort of the branch magnitudes.
-    from iqstat.estimate.batch import _Burst, tone_frequencies_hz
+    from iqstat.estimate.spectrum import _Burst
 
     x, _ = make_burst(modulation, 1.0, 10.0, seed=70, n_symbols=60)
     b = _Burst(x, FS, modulation)
