@@ -164,9 +164,10 @@ def estimate_tone_spacing(
 ) -> float:
     """Tone spacing Δf [Hz] of an FSK burst, blind (the symbol rate too, unless given).
 
-    Coarse spacing and centre from instantaneous-frequency clusters, then the spectral lines
-    of the burst or its square (see :func:`estimate_carrier`) or the energy search. Returns Δf
-    in Hz. Use :func:`estimate_link` to get the carrier and the rate from the same pass.
+    Coarse spacing and centre from the burst's spectrum (equally spaced lines, else its second
+    moment), then the spectral lines of the burst or its square (see :func:`estimate_carrier`)
+    or the energy search. Returns Δf in Hz. Use :func:`estimate_link` to get the carrier and
+    the rate from the same pass.
     """
     if modulation == "ook":
         raise ParameterError("modulation 'ook' has no tone spacing; use 2fsk or 4fsk")
@@ -241,9 +242,9 @@ def estimate_link(
     Notes
     -----
     Chain: coarse centre (spectral centroid) and, for a blind spacing, coarse tones from the
-    instantaneous-frequency clusters → symbol rate from the feature line (when not given) →
-    carrier and spacing from the spectral lines of the burst or its square, or the energy
-    search → the symbol rate once more on the refined tones.
+    spectrum (equally spaced lines, else its second moment) → symbol rate from the feature
+    line (when not given) → carrier and spacing from the spectral lines of the burst or its
+    square, or the energy search → the symbol rate once more on the refined tones.
     """
     res = estimate_link_many(
         [x],
