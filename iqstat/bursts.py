@@ -124,6 +124,9 @@ class BurstDetection:
         σ², full-band noise variance per complex sample (linear, full-scale units).
     noise_psd_db_per_hz : float
         Noise PSD in the signal band away from DC, dBFS/Hz (white noise: σ²/fs).
+    noise_psd_dof : float
+        Gamma shape of that PSD estimate under white Gaussian noise (in-band DFT bins per
+        frame × gap frames); its relative variance is 1/dof. 0 when there are no gaps.
     band_hz : tuple of float or None
         Edges of the occupied band used for detection (bin edges), Hz relative to the centre
         frequency; None when the full band was used.
@@ -141,6 +144,7 @@ class BurstDetection:
     noise_floor_dbfs: float
     noise_var: float
     noise_psd_db_per_hz: float
+    noise_psd_dof: float
     band_hz: tuple[float, float] | None
     threshold_dbfs: float
     frame_samples: int
@@ -153,6 +157,7 @@ class BurstDetection:
             "noise_floor_dbfs": self.noise_floor_dbfs,
             "noise_var": self.noise_var,
             "noise_psd_db_per_hz": self.noise_psd_db_per_hz,
+            "noise_psd_dof": self.noise_psd_dof,
             "band_hz": list(self.band_hz) if self.band_hz is not None else None,
             "threshold_dbfs": self.threshold_dbfs,
             "frame_samples": self.frame_samples,
@@ -1475,6 +1480,7 @@ def _detect_bursts(
         noise_floor_dbfs=floor_dbfs,
         noise_var=noise_var,
         noise_psd_db_per_hz=_db(psd) if np.isfinite(psd) else float("nan"),
+        noise_psd_dof=float(gap_frames.size * dof) if np.isfinite(psd) else 0.0,
         band_hz=band_edges,
         threshold_dbfs=_db(thr),
         frame_samples=L,

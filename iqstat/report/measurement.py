@@ -237,7 +237,10 @@ def _headline(report: MeasurementReport, console: Console) -> None:
     if s.available_ebn0_db is not None:
         t.add_row(
             "Eb/N0 from power",
-            _db(s.available_ebn0_db, 2) + f"   (detection loss {_db(s.detection_loss_db, 2)})",
+            _db(s.available_ebn0_db, 2)
+            + _ci(s.available_ebn0_db_ci95, lambda v: f"{v:.2f}")
+            + f"   detection loss {_db(s.detection_loss_db, 2)}"
+            + _ci(s.detection_loss_db_ci95, lambda v: f"{v:+.2f}"),
         )
     if s.ebn0_db_dd is not None:
         t.add_row(
