@@ -34,6 +34,7 @@ from iqstat.facts import (
     iter_unscaled_chunks,
     unscaled_factor,
 )
+from iqstat.frontend import NO_CORRECTION, IqCorrection, measure_iq_correction
 from iqstat.noise import (
     noise_floor_lowest_cluster,
     threshold_from_floor,
@@ -141,6 +142,9 @@ class BurstDetection:
     dc_offset : complex
         Mean of the samples in the gaps (full-scale units): the receiver's DC offset, which
         the noise figures above exclude and measurement subtracts. 0 without gaps.
+    iq : IqCorrection
+        The receiver's quadrature imbalance measured on the gap noise (after the DC), and the
+        correction measurement applies when it is significant.
     """
 
     bursts: tuple[Burst, ...]
@@ -154,6 +158,7 @@ class BurstDetection:
     gap_samples: int
     message: str
     dc_offset: complex
+    iq: IqCorrection
 
     @property
     def dc_offset_dbfs(self) -> float:
@@ -173,6 +178,9 @@ class BurstDetection:
             "gap_samples": self.gap_samples,
             "message": self.message,
             "dc_offset": [self.dc_offset.real, self.dc_offset.imag],
+            "iq_improperness": self.iq.improperness,
+            "iq_image_rejection_db": self.iq.image_rejection_db,
+            "iq_corrected": self.iq.applied,
         }
 
 
@@ -1147,6 +1155,22 @@ def _noise_psd(p_gap: np.ndarray, dof: float, L: int, fs: float):
     return float(np.mean(p_gap, dtype=np.float64)) * L / (dof * fs)
 
 
+#: Most gap frames read back to measure the receiver's quadrature imbalance.
+_IQ_GAP_FRAMES = 1024
+
+
+def _gap_iq_correction(capture: Capture, gap_frames: np.ndarray, L: int, dc: complex):
+    """Quadrature imbalance from up to _IQ_GAP_FRAMES gap frames spread over the capture."""
+    if not capture.is_complex or gap_frames.size == 0:
+        return NO_CORRECTION
+    k = min(_IQ_GAP_FRAMES, gap_frames.size)
+    pick = gap_frames[np.linspace(0, gap_frames.size - 1, k).round().astype(np.int64)]
+    x = _read_windows(capture, np.unique(pick) * L, L)
+    if dc:
+        x -= np.complex64(dc)
+    return measure_iq_correction(x)
+
+
 #: Share of the quietest frames (by full-band power) whose bin 0 gives the first DC estimate.
 _DC_QUIET_SHARE = 0.1
 
@@ -1534,6 +1558,7 @@ def _detect_bursts(
     if not capture.is_complex:
         dc = complex(dc.real, 0.0)
     dc_power = abs(dc) ** 2
+    iq = _gap_iq_correction(capture, gap_frames, L, dc)
     p_gap = fp.band[gap_frames].astype(np.float64)
     if fp.dc_in_band and dc:
         p_gap = _without_dc(p_gap, fp.sums[gap_frames], L, dc)
@@ -1584,4 +1609,5 @@ def _detect_bursts(
         gap_samples=int(gap_frames.size * L),
         message=message,
         dc_offset=dc,
+        iq=iq,
     )

@@ -145,29 +145,34 @@ def _window(capture: Capture, burst: Burst, margin: int) -> tuple[int, int]:
     return a, b
 
 
-def _read(capture: Capture, start: int, count: int, dc: complex) -> np.ndarray:
-    """Samples [start, start + count) less the receiver's DC offset (a new array)."""
+def _read(capture: Capture, start: int, count: int, det: BurstDetection) -> np.ndarray:
+    """Samples [start, start + count) with the receiver's DC offset and quadrature imbalance
+    (measured in the gaps by the burst detection) taken off; a new array."""
     x = capture.read(start, count)
-    if dc:
-        x -= np.complex64(dc)
-    return x
+    if det.dc_offset:
+        x -= np.complex64(det.dc_offset)
+    return det.iq.apply(x)
 
 
-def _read_burst(capture: Capture, burst: Burst, margin: int, dc: complex) -> tuple[int, np.ndarray]:
-    """The burst's window (see :func:`_window`) as ``(first index, samples)``, DC removed."""
+def _read_burst(
+    capture: Capture, burst: Burst, margin: int, det: BurstDetection
+) -> tuple[int, np.ndarray]:
+    """The burst's window (see :func:`_window`) as ``(first index, samples)``; see _read."""
     a, b = _window(capture, burst, margin)
-    return a, _read(capture, a, b - a, dc)
+    return a, _read(capture, a, b - a, det)
 
 
 def _read_bursts(
-    capture: Capture, bursts: Sequence[Burst], margin: int, dc: complex
+    capture: Capture, bursts: Sequence[Burst], margin: int, det: BurstDetection
 ) -> list[tuple[int, np.ndarray]]:
     """The windows of consecutive bursts; one read of their whole span where they are dense.
 
-    The DC offset measured in the gaps (``dc``, from the burst detection) is subtracted: a
-    constant leaks into every tone correlator over a symbol (for a tone half a cycle per
-    symbol from DC, 2/π of its amplitude times the symbol's samples) and adds coherently,
-    where noise adds in power; a DC 16 dB under the noise power costs ~2 dB of Eb/N0.
+    The front end's artefacts measured in the gaps are taken off (:func:`_read`). The DC
+    offset: a constant leaks into every tone correlator over a symbol (for a tone half a
+    cycle per symbol from DC, 2/π of its amplitude times the symbol's samples) and adds
+    coherently, where noise adds in power; a DC 16 dB under the noise power costs ~2 dB of
+    Eb/N0. The quadrature imbalance: the image of the sent tone lands on the other tone's
+    correlator (:mod:`iqstat.frontend`).
     Windows may overlap (close bursts); they are views of one array then, and no stage
     writes into its samples.
     """
@@ -176,8 +181,8 @@ def _read_bursts(
         return []
     lo, hi = spans[0][0], max(b for _, b in spans)
     if hi - lo > 2 * sum(b - a for a, b in spans):
-        return [(a, _read(capture, a, b - a, dc)) for a, b in spans]
-    block = _read(capture, lo, hi - lo, dc)
+        return [(a, _read(capture, a, b - a, det)) for a, b in spans]
+    block = _read(capture, lo, hi - lo, det)
     return [(a, block[a - lo : b - lo]) for a, b in spans]
 
 
@@ -196,7 +201,7 @@ def _blind_rates(capture, detection, profile, margin) -> tuple[float | None, flo
         bursts = tuple(bursts[i] for i in pick)
     good = []
     for batch in _batches(bursts, margin):
-        windows = _read_bursts(capture, batch, margin, detection.dc_offset)
+        windows = _read_bursts(capture, batch, margin, detection)
         ests = estimate_link_many(
             [x for _, x in windows],
             fs,
@@ -867,7 +872,7 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
             for b in bursts
         ]
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * ctx.fs / ctx.symbol_rate_hz))
-    windows = _read_bursts(capture, bursts, margin, ctx.detection.dc_offset)
+    windows = _read_bursts(capture, bursts, margin, ctx.detection)
     works = [_Work(burst=b, x0=a, x=x) for b, (a, x) in zip(bursts, windows, strict=True)]
     _batched(works, lambda batch: _stage_link(batch, ctx))
     _batched(works, lambda batch: _stage_timing(batch, ctx))
@@ -982,7 +987,7 @@ def _check_profile_rates(capture, detection, profile, margin) -> tuple[str, ...]
     if not detection.bursts or (profile.symbol_rate_hz is None and profile.tone_spacing_hz is None):
         return ()
     longest = max(detection.bursts, key=lambda b: b.n_samples)
-    _, x = _read_burst(capture, longest, margin, detection.dc_offset)
+    _, x = _read_burst(capture, longest, margin, detection)
     try:
         blind = estimate_link(x, capture.sample_rate_hz, modulation=profile.modulation)
     except IqstatError:

@@ -105,6 +105,8 @@ def _document(report: MeasurementReport) -> dict:
             "noise_floor_dbfs": report.detection.noise_floor_dbfs,
             "noise_psd_dbfs_per_hz": report.detection.noise_psd_db_per_hz,
             "dc_offset_removed_dbfs": report.detection.dc_offset_dbfs,
+            "iq_image_rejection_db": report.detection.iq.image_rejection_db,
+            "iq_corrected": report.detection.iq.applied,
             "detection_band_hz": report.detection.band_hz,
         },
         "profile": report.profile.to_dict(),
@@ -147,6 +149,8 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
     dc = ""
     if det.dc_offset_dbfs > det.noise_floor_dbfs - DC_SHOWN_BELOW_NOISE_DB:
         dc = f", DC offset {det.dc_offset_dbfs:.1f} dBFS (removed)"
+    if det.iq.applied:
+        dc += f", I/Q image {det.iq.image_rejection_db:.1f} dB down (corrected)"
     console.print(
         f"  {f.samples:,} samples of {f.datatype} at {f.sample_rate_hz / 1e3:g} kS/s "
         f"({f.duration_s:.3f} s); noise floor {_db(det.noise_floor_dbfs, 1, ' dBFS')}"
