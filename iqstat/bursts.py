@@ -34,6 +34,7 @@ from iqstat.facts import (
     iter_unscaled_chunks,
     unscaled_factor,
 )
+from iqstat.frontend import NO_CORRECTION, IqCorrection, measure_iq_correction
 from iqstat.noise import (
     noise_floor_lowest_cluster,
     threshold_from_floor,
@@ -124,6 +125,9 @@ class BurstDetection:
         σ², full-band noise variance per complex sample (linear, full-scale units).
     noise_psd_db_per_hz : float
         Noise PSD in the signal band away from DC, dBFS/Hz (white noise: σ²/fs).
+    noise_psd_dof : float
+        Gamma shape of that PSD estimate under white Gaussian noise (in-band DFT bins per
+        frame × gap frames); its relative variance is 1/dof. 0 when there are no gaps.
     band_hz : tuple of float or None
         Edges of the occupied band used for detection (bin edges), Hz relative to the centre
         frequency; None when the full band was used.
@@ -135,17 +139,31 @@ class BurstDetection:
         Samples in the noise-only gaps the noise estimates come from.
     message : str
         One line on the outcome.
+    dc_offset : complex
+        Mean of the samples in the gaps (full-scale units): the receiver's DC offset, which
+        the noise figures above exclude and measurement subtracts. 0 without gaps.
+    iq : IqCorrection
+        The receiver's quadrature imbalance measured on the gap noise (after the DC), and the
+        correction measurement applies when it is significant.
     """
 
     bursts: tuple[Burst, ...]
     noise_floor_dbfs: float
     noise_var: float
     noise_psd_db_per_hz: float
+    noise_psd_dof: float
     band_hz: tuple[float, float] | None
     threshold_dbfs: float
     frame_samples: int
     gap_samples: int
     message: str
+    dc_offset: complex
+    iq: IqCorrection
+
+    @property
+    def dc_offset_dbfs(self) -> float:
+        """|dc|² in dBFS (−inf for none)."""
+        return _db(abs(self.dc_offset) ** 2)
 
     def to_dict(self) -> dict:
         return {
@@ -153,11 +171,16 @@ class BurstDetection:
             "noise_floor_dbfs": self.noise_floor_dbfs,
             "noise_var": self.noise_var,
             "noise_psd_db_per_hz": self.noise_psd_db_per_hz,
+            "noise_psd_dof": self.noise_psd_dof,
             "band_hz": list(self.band_hz) if self.band_hz is not None else None,
             "threshold_dbfs": self.threshold_dbfs,
             "frame_samples": self.frame_samples,
             "gap_samples": self.gap_samples,
             "message": self.message,
+            "dc_offset": [self.dc_offset.real, self.dc_offset.imag],
+            "iq_improperness": self.iq.improperness,
+            "iq_image_rejection_db": self.iq.image_rejection_db,
+            "iq_corrected": self.iq.applied,
         }
 
 
@@ -178,6 +201,10 @@ class FramePowers:
     band_hz : tuple of float or None
         Band edges used (bin edges), Hz; None for the full band.
     frame_samples : int
+    sums : ndarray of complex128, shape (n_frames,)
+        Σx per frame (DFT bin 0): the gap frames' mean of it is the receiver's DC offset.
+    dc_in_band : bool
+        Whether bin 0 is one of the band's bins (so that ``band`` holds the DC's power).
     """
 
     full: np.ndarray
@@ -185,6 +212,8 @@ class FramePowers:
     band_dof: float
     band_hz: tuple[float, float] | None
     frame_samples: int
+    sums: np.ndarray
+    dc_in_band: bool
 
 
 # --------------------------------------------------------------------------------------------
@@ -374,20 +403,29 @@ class _FramePowerPass:
             self.edges = _band_edges(self.bins, L, fs)
             self.dof = float(self.bins.size)
         bins = self.bins
+        self.sums = np.empty(self.n_frames, dtype=np.complex128)
+        self.dc_in_band = bins is None or bool(np.any(bins == 0))
         self.use_mm = bins is not None and bins.size <= _MATMUL_MAX_BIN_FRACTION * L
         if self.use_mm:
             # Real form of the partial DFT, so that a float32 matrix product (fast, and cheap
             # on a busy core) gives [Re X_k, Im X_k] from the interleaved [re, im] samples.
             # Columns padded with zeros to a multiple of 8: the product's kernels are much
             # faster then (38 → 40 columns: −15 % time), and the columns it has are the same
-            # bits.
+            # bits. Two more columns give bin 0, the frame's sum, where the band lacks it.
             w = np.exp(-2j * np.pi * np.arange(L)[:, None] * bins[None, :] / L)
             n_col = 2 * bins.size
-            dft = np.zeros((2 * L, -(-n_col // 8) * 8), dtype=np.float32)
+            n_all = n_col + (0 if self.dc_in_band else 2)
+            dft = np.zeros((2 * L, -(-n_all // 8) * 8), dtype=np.float32)
             dft[0::2, 0:n_col:2], dft[1::2, 0:n_col:2] = w.real, -w.imag
             dft[0::2, 1:n_col:2], dft[1::2, 1:n_col:2] = w.imag, w.real
+            if self.dc_in_band:
+                k0 = 2 * int(np.flatnonzero(bins == 0)[0])
+            else:
+                k0 = n_col
+                dft[0::2, k0] = dft[1::2, k0 + 1] = 1.0
             self.dft = dft
             self.n_col = n_col
+            self.k0 = k0
         self.fi = 0  # frames done
         self.carry = np.empty(L, dtype=np.complex64)
         self.n_carry = 0
@@ -400,14 +438,24 @@ class _FramePowerPass:
         v = frames[:m].view(np.float32)
         pf = (np.einsum("ij,ij->i", v, v) if energy is None else energy[:m]) / L
         self.p_full[fi : fi + m] = pf if scale2 == 1.0 else pf * scale2
+        sc = 1.0 if scale2 == 1.0 else math.sqrt(scale2)  # a power of two: exact
+        sums = self.sums[fi : fi + m]
         if self.bins is not None:
             if self.use_mm:
-                vb = (v @ self.dft)[:, : self.n_col]
+                va = v @ self.dft
+                vb = va[:, : self.n_col]
                 pb = np.einsum("ij,ij->i", vb, vb) / (L * L)
+                sums.real, sums.imag = va[:, self.k0], va[:, self.k0 + 1]
             else:
-                xb = np.fft.fft(frames[:m], axis=1)[:, self.bins]
+                xf = np.fft.fft(frames[:m], axis=1)
+                xb = xf[:, self.bins]
                 pb = np.sum(xb.real**2 + xb.imag**2, axis=1) / (L * L)
+                sums[:] = xf[:, 0]
             self.p_band[fi : fi + m] = pb if scale2 == 1.0 else pb * scale2
+        else:
+            sums[:] = v.reshape(m, L, 2).sum(axis=1, dtype=np.float64) @ np.array([1.0, 1j])
+        if sc != 1.0:
+            sums *= sc
         self.fi += m
 
     def add(self, x: np.ndarray, scale2: float = 1.0, energy: np.ndarray | None = None) -> None:
@@ -440,7 +488,9 @@ class _FramePowerPass:
             self.n_carry = rest
 
     def result(self) -> FramePowers:
-        return FramePowers(self.p_full, self.p_band, self.dof, self.edges, self.L)
+        return FramePowers(
+            self.p_full, self.p_band, self.dof, self.edges, self.L, self.sums, self.dc_in_band
+        )
 
 
 # --------------------------------------------------------------------------------------------
@@ -887,6 +937,7 @@ def _refine_many(
     floor: float,
     dof: float,
     end_energy: dict | None = None,
+    dc: complex = 0j,
 ) -> list[tuple[int, int]]:
     """Edges of every group to one sample: frame-level CUSUM, then sample level around it.
 
@@ -894,16 +945,17 @@ def _refine_many(
     calls per batch (plus one read per span of nearby edges, and one FFT per distinct length
     of the band-limited windows). ``end_energy``, if given, receives Σ|x|² of the partial frame
     inside each refined edge, keyed by its sample range, from the samples read here
-    (:func:`_mean_power` needs them).
+    (:func:`_mean_power` needs them). The samples read are taken less ``dc``, the receiver's
+    DC offset (as the frame powers ``p`` are).
     """
     out: list[tuple[int, int]] = []
     for i in range(0, len(groups), _REFINE_BATCH_GROUPS):
         batch = groups[i : i + _REFINE_BATCH_GROUPS]
-        out.extend(_refine_batch(capture, batch, L, band_hz, p, floor, dof, end_energy))
+        out.extend(_refine_batch(capture, batch, L, band_hz, p, floor, dof, end_energy, dc))
     return out
 
 
-def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
+def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy, dc):
     n = capture.n_samples
     n_frames = p.size
     fs = capture.sample_rate_hz
@@ -947,6 +999,8 @@ def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy):
     ra, rb = np.maximum(a - pad, 0), np.minimum(b + pad, n)
     size = rb - ra
     x = _read_windows(capture, ra, int(size.max()))
+    if dc:
+        x -= np.complex64(dc)
     k = np.arange(int(m.max()))
     if band_hz is None:
         power = x.real.astype(np.float64) ** 2 + x.imag.astype(np.float64) ** 2
@@ -1027,22 +1081,35 @@ def _energy(x: np.ndarray) -> float:
 
 
 def _mean_power(
-    capture: Capture, fp: FramePowers, s0: int, s1: int, end_energy: dict | None = None
+    capture: Capture,
+    fp: FramePowers,
+    s0: int,
+    s1: int,
+    end_energy: dict | None = None,
+    dc: complex = 0j,
 ) -> float:
-    """Mean |x|² over samples [s0, s1): whole frames from the frame powers, ends read back.
+    """Mean |x − dc|² over samples [s0, s1): whole frames from the frame powers and sums,
+    ends read back.
 
-    ``end_energy`` may hold the partial ends' Σ|x|² already (from :func:`_refine`).
+    ``end_energy`` may hold the partial ends' Σ|x − dc|² already (from :func:`_refine`).
+    Per frame, Σ|x − dc|² = Σ|x|² − 2·Re(dc*·Σx) + L·|dc|².
     """
     L = fp.frame_samples
     f0, f1 = -(-s0 // L), min(s1 // L, fp.full.size)
     if f1 - f0 < 1:
-        x = capture.read(s0, s1 - s0)
+        x = capture.read(s0, s1 - s0) - np.complex64(dc)
         return float(np.mean(_power64(x))) if x.size else 0.0
     total = float(np.sum(fp.full[f0:f1], dtype=np.float64)) * L
+    if dc:
+        total += (f1 - f0) * L * abs(dc) ** 2 - 2.0 * float(
+            (np.conj(dc) * fp.sums[f0:f1].sum()).real
+        )
     for a, b in ((s0, f0 * L), (f1 * L, s1)):
         if b > a:
             known = None if end_energy is None else end_energy.get((a, b))
-            total += _energy(capture.read(a, b - a)) if known is None else known
+            if known is None:
+                known = _energy(capture.read(a, b - a) - np.complex64(dc))
+            total += known
     return total / (s1 - s0)
 
 
@@ -1075,16 +1142,57 @@ def _burst_frame_figures(spans, p_band: np.ndarray, p_full: np.ndarray, L: int):
     return mean.tolist(), peak.tolist()
 
 
-def _noise_psd(p_band: np.ndarray, gap_frames: np.ndarray, dof: float, L: int, fs: float):
+def _noise_psd(p_gap: np.ndarray, dof: float, L: int, fs: float):
     """Noise PSD [FS²/Hz] in the detection band from the in-band power of every gap frame.
 
     The in-band frame power of white noise has mean σ²·|B|/L (see measure_frame_powers), so
-    N0 = mean(p_band[gaps])·L/(|B|·fs) for a complex capture (|B| = dof bins). Using every
-    gap frame and every band bin keeps the estimate's relative spread at 1/√(n_gap·|B|).
+    N0 = mean(p_gap)·L/(|B|·fs) for a complex capture (|B| = dof bins). Using every gap
+    frame and every band bin keeps the estimate's relative spread at 1/√(n_gap·|B|).
+    ``p_gap`` are the gap frames' in-band powers with the DC offset taken off.
     """
-    if gap_frames.size == 0:
+    if p_gap.size == 0:
         return float("nan")
-    return float(np.mean(p_band[gap_frames], dtype=np.float64)) * L / (dof * fs)
+    return float(np.mean(p_gap, dtype=np.float64)) * L / (dof * fs)
+
+
+#: Most gap frames read back to measure the receiver's quadrature imbalance.
+_IQ_GAP_FRAMES = 1024
+
+
+def _gap_iq_correction(capture: Capture, gap_frames: np.ndarray, L: int, dc: complex):
+    """Quadrature imbalance from up to _IQ_GAP_FRAMES gap frames spread over the capture."""
+    if not capture.is_complex or gap_frames.size == 0:
+        return NO_CORRECTION
+    k = min(_IQ_GAP_FRAMES, gap_frames.size)
+    pick = gap_frames[np.linspace(0, gap_frames.size - 1, k).round().astype(np.int64)]
+    x = _read_windows(capture, np.unique(pick) * L, L)
+    if dc:
+        x -= np.complex64(dc)
+    return measure_iq_correction(x)
+
+
+#: Share of the quietest frames (by full-band power) whose bin 0 gives the first DC estimate.
+_DC_QUIET_SHARE = 0.1
+
+
+def _quiet_dc(fp: FramePowers) -> complex:
+    """Mean of x over the quietest frames: a first estimate of the receiver's DC offset.
+
+    Frames with the lowest full-band power are noise-only wherever bursts fill less than
+    ~90 % of the capture; their bin 0 holds L·dc plus noise, with no signal to bias it (a
+    carrier near 0 Hz would, in burst frames).
+    """
+    n = fp.full.size
+    k = max(1, int(_DC_QUIET_SHARE * n))
+    quiet = np.argpartition(fp.full, k - 1)[:k] if k < n else np.arange(n)
+    return complex(fp.sums[quiet].mean() / fp.frame_samples)
+
+
+def _without_dc(p_band: np.ndarray, sums: np.ndarray, L: int, dc: complex) -> np.ndarray:
+    """In-band frame powers with bin 0 taken as X_0 − L·dc: the DC offset removed."""
+    x0 = sums / L
+    d = x0 - dc
+    return p_band - (x0.real**2 + x0.imag**2) + (d.real**2 + d.imag**2)
 
 
 def _db(x: float) -> float:
@@ -1354,6 +1462,13 @@ def _detect_bursts(
     fp = fpass.result()
     p = fp.band.astype(np.float64)
     dof = fp.band_dof
+    # A receiver DC offset is a stationary line at 0 Hz: in the band it would lift every
+    # frame's power alike and read as one capture-long burst when it is stronger than the
+    # in-band noise. Taken off the frame powers with a first estimate, the mean of bin 0 over
+    # the quietest frames (gaps, whatever the duty cycle up to ~90 %); the gaps refine it.
+    dc_quiet = _quiet_dc(fp)
+    if fp.dc_in_band and dc_quiet:
+        p = _without_dc(p, fp.sums, L, dc_quiet)
 
     floor = noise_floor_lowest_cluster(p, dof)
     if survey is not None:
@@ -1391,7 +1506,7 @@ def _detect_bursts(
         cut_before = {i for i, g in enumerate(split) if g.start not in originals}
         groups = split
     end_energy: dict = {}
-    refined = _refine_many(capture, groups, L, band_edges, p, floor, dof, end_energy)
+    refined = _refine_many(capture, groups, L, band_edges, p, floor, dof, end_energy, dc_quiet)
     spans = [(s0, s1, i in cut_before) for i, (s0, s1) in enumerate(refined)]
     spans.sort()
     joined: list[list[int]] = []
@@ -1413,7 +1528,7 @@ def _detect_bursts(
             whole = _Group(f0, f1, max(f0 - 1, 0), f0 + 2, max(f1 - 2, f0 + 1), f1)
             pieces.append(_split_long_groups([whole], p, e_frames))
         flat = [g for pc in pieces for g in pc]
-        ends = iter(_refine_many(capture, flat, L, band_edges, p, floor, dof, end_energy))
+        ends = iter(_refine_many(capture, flat, L, band_edges, p, floor, dof, end_energy, dc_quiet))
         again = []
         for (s0, s1), pc in zip(joined, pieces, strict=True):
             if not pc:
@@ -1435,8 +1550,20 @@ def _detect_bursts(
             gap = final_gap
             floor = float(p[gap].mean())
     gap_frames = np.flatnonzero(gap)
+    # The receiver's DC offset, measured where there is no signal (a mean over the gaps, so a
+    # carrier near 0 Hz does not bias it): mean |x|² there is σ² + |dc|², and the in-band
+    # power holds |dc|² too when bin 0 is in the band. Measurement subtracts it from the
+    # samples, so the noise figures are those of the noise alone.
+    dc = complex(fp.sums[gap_frames].sum() / (gap_frames.size * L)) if gap_frames.size else 0j
+    if not capture.is_complex:
+        dc = complex(dc.real, 0.0)
+    dc_power = abs(dc) ** 2
+    iq = _gap_iq_correction(capture, gap_frames, L, dc)
+    p_gap = fp.band[gap_frames].astype(np.float64)
+    if fp.dc_in_band and dc:
+        p_gap = _without_dc(p_gap, fp.sums[gap_frames], L, dc)
     noise_var = (
-        float(np.mean(fp.full[gap_frames], dtype=np.float64))
+        max(float(np.mean(fp.full[gap_frames], dtype=np.float64)) - dc_power, 0.0)
         if gap_frames.size
         else (noise_floor_lowest_cluster(fp.full, L if capture.is_complex else L / 2))
     )
@@ -1445,7 +1572,7 @@ def _detect_bursts(
     for i, (s0, s1) in enumerate(joined):
         pb = band_means[i] if band_means[i] == band_means[i] else floor  # NaN: no frame
         snr = (pb - floor) / floor if floor > 0 else float("inf")
-        power = _mean_power(capture, fp, s0, s1, end_energy)
+        power = _mean_power(capture, fp, s0, s1, end_energy, dc_quiet)
         peak = peaks[i] if peaks[i] == peaks[i] else power
         bursts.append(
             Burst(
@@ -1457,7 +1584,7 @@ def _detect_bursts(
                 peak_dbfs=_db(peak),
             )
         )
-    psd = _noise_psd(p, gap_frames, dof if capture.is_complex else 2 * dof, L, fs)
+    psd = _noise_psd(p_gap, dof if capture.is_complex else 2 * dof, L, fs)
     floor_dbfs = _db(noise_var)
     if bursts:
         message = (
@@ -1475,9 +1602,12 @@ def _detect_bursts(
         noise_floor_dbfs=floor_dbfs,
         noise_var=noise_var,
         noise_psd_db_per_hz=_db(psd) if np.isfinite(psd) else float("nan"),
+        noise_psd_dof=float(gap_frames.size * dof) if np.isfinite(psd) else 0.0,
         band_hz=band_edges,
         threshold_dbfs=_db(thr),
         frame_samples=L,
         gap_samples=int(gap_frames.size * L),
         message=message,
+        dc_offset=dc,
+        iq=iq,
     )

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from iqstat.available import AvailableEbN0, detection_loss_ci95
 from iqstat.bursts import BurstDetection
 from iqstat.estimate import LinkEstimate
 from iqstat.facts import CaptureFacts
@@ -37,7 +38,7 @@ class BurstResult:
     fit_da: NoncoherentFit | None
     fit_dd: NoncoherentFit | None
     bit_check: BitCheck | None
-    available_ebn0_db: float | None
+    available: AvailableEbN0 | None
     predicted_ber: float | None
     power_dbfs: float
     flags: tuple[str, ...]
@@ -54,10 +55,25 @@ class BurstResult:
         return None if v is None else 10.0 ** (v / 10.0)
 
     @property
+    def available_ebn0_db(self) -> float | None:
+        """Eb/N0 from power alone (burst power − gap noise), dB."""
+        return None if self.available is None else self.available.ebn0_db
+
+    @property
+    def available_ebn0_db_ci95(self) -> tuple[float, float] | None:
+        return None if self.available is None else self.available.ebn0_db_ci95
+
+    @property
     def detection_loss_db(self) -> float | None:
         if self.available_ebn0_db is None or self.ebn0_db is None:
             return None
         return self.available_ebn0_db - self.ebn0_db
+
+    @property
+    def detection_loss_db_ci95(self) -> tuple[float, float] | None:
+        fit = self.fit
+        ci = None if fit is None or not fit.converged else fit.ebn0_db_ci95
+        return detection_loss_ci95(self.available, self.ebn0_db, ci)
 
     @property
     def cfo_hz(self) -> float | None:
@@ -85,7 +101,9 @@ class BurstResult:
             "ebn0_db_da": _fit_ebn0(self.fit_da),
             "ebn0_db_dd": _fit_ebn0(self.fit_dd),
             "available_ebn0_db": self.available_ebn0_db,
+            "available_ebn0_db_ci95": self.available_ebn0_db_ci95,
             "detection_loss_db": self.detection_loss_db,
+            "detection_loss_db_ci95": self.detection_loss_db_ci95,
             "predicted_ber": self.predicted_ber,
             "bit_errors": bc.bit_errors if counted else None,
             "bits_checked": bc.bits_checked if counted else None,
@@ -144,7 +162,9 @@ class Summary:
     ebn0_db_da: float | None
     ebn0_db_dd: float | None
     available_ebn0_db: float | None
+    available_ebn0_db_ci95: tuple[float, float] | None
     detection_loss_db: float | None
+    detection_loss_db_ci95: tuple[float, float] | None
     predicted_ber: float | None
     measured_ber: float | None
     measured_ber_ci95: tuple[float, float] | None

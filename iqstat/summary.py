@@ -8,6 +8,7 @@ import numpy as np
 from scipy import special
 
 from iqstat import theory
+from iqstat.available import detection_loss_ci95, pool_available
 from iqstat.errors import IqstatError
 from iqstat.patterns import clopper_pearson
 from iqstat.profile import FrameLayout
@@ -94,8 +95,9 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
     esn0_db = None if mean_db is None else mean_db + float(db(profile.bits_per_symbol))
     da = [r.fit_da.ebn0_db for r in ok if r.fit_da is not None and r.fit_da.converged]
     dd = [r.fit_dd.ebn0_db for r in ok if r.fit_dd is not None and r.fit_dd.converged]
-    av = [r.available_ebn0_db for r in ok if r.available_ebn0_db is not None]
-    avail = _power_mean_db(av, [r.symbols for r in ok if r.available_ebn0_db is not None])
+    with_av = [r for r in ok if r.available is not None]
+    pooled = pool_available([r.available for r in with_av], [r.symbols for r in with_av])
+    avail = None if pooled is None else pooled.ebn0_db
     loss = None if (avail is None or mean_db is None) else avail - mean_db
     if not results:
         flags.append("no-bursts")
@@ -137,7 +139,9 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
         ebn0_db_da=_power_mean_db(da, None),
         ebn0_db_dd=_power_mean_db(dd, None),
         available_ebn0_db=avail,
+        available_ebn0_db_ci95=None if pooled is None else pooled.ebn0_db_ci95,
         detection_loss_db=loss,
+        detection_loss_db_ci95=detection_loss_ci95(pooled, mean_db, ci),
         predicted_ber=pred,
         measured_ber=meas,
         measured_ber_ci95=ci_meas,

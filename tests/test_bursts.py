@@ -172,6 +172,44 @@ def test_frame_powers_equal_direct_fft(band_hz):
     np.testing.assert_allclose(fp.full, np.mean(np.abs(frames) ** 2, axis=1), rtol=2e-5)
 
 
+@pytest.mark.parametrize("band_hz", [(5e3, 19e3), (-5e3, 9e3), (-100e3, 100e3), None])
+def test_frame_sums_are_bin_zero(band_hz):
+    # Bin 0 of each frame's DFT (its sum) comes from the matrix product (band without or with
+    # bin 0), the FFT (wide band) or a plain sum (full band). Reference: numpy sums per frame.
+    rng = np.random.default_rng(9)
+    x = (_noise(rng, 256 * 300 + 77) + (0.03 - 0.02j)).astype(np.complex64)
+    fp = measure_frame_powers(
+        Capture.from_array(x, FS_HZ), frame_samples=256, band_hz=band_hz, chunk_samples=10_000
+    )
+    ref = x[: 256 * 300].astype(np.complex128).reshape(300, 256).sum(axis=1)
+    # float32 products of 256 terms: relative to the frame's noise sum, ~1e-6
+    np.testing.assert_allclose(fp.sums, ref, atol=2e-5 * math.sqrt(256 * NOISE_VAR))
+    assert fp.dc_in_band == (band_hz is None or band_hz[0] < 0 < band_hz[1])
+
+
+def test_dc_offset_above_the_in_band_noise_does_not_hide_the_gaps():
+    # A receiver DC offset is a stationary line at 0 Hz: in the signal band it lifts every
+    # frame alike. 4.4 dB above the in-band noise, it once read as a single capture-long
+    # burst; now the gaps give it (a mean, standard error sqrt(σ²/2/n) per component) and
+    # the noise figures and edges are those without it.
+    rng = np.random.default_rng(12)
+    starts = [5_000 + k * 40_000 for k in range(6)]
+    cap, truth = _capture_with_bursts(rng, 250_000, [(a, 14.0) for a in starts])
+    dc = 0.04 + 0.03j  # |dc|² = 2.5e-3 ≈ 2.5x the noise in a 25-bin band (σ²·22/256)
+    x = cap.read(0, cap.n_samples) + np.complex64(dc)
+    det = detect_bursts(
+        Capture.from_array(x, FS_HZ), band_hz=(CFO_HZ - 15e3, CFO_HZ + 9e3), min_burst_s=0.01
+    )
+    assert len(det.bursts) == len(truth)
+    se = math.sqrt(NOISE_VAR / 2 / det.gap_samples)
+    assert abs(det.dc_offset - dc) < 5 * math.sqrt(2) * se
+    assert det.noise_var == pytest.approx(NOISE_VAR, rel=5 / math.sqrt(det.gap_samples))
+    n0 = 10 ** (det.noise_psd_db_per_hz / 10)
+    assert n0 == pytest.approx(NOISE_VAR / FS_HZ, rel=5 / math.sqrt(det.noise_psd_dof))
+    for b, (t0, t1) in zip(det.bursts, truth, strict=True):
+        assert abs(b.start_sample - t0) < 30 and abs(b.stop_sample - t1) < 30
+
+
 # ------------------------------------------------------------------------------------------
 # Detection
 # ------------------------------------------------------------------------------------------

@@ -64,6 +64,18 @@ def test_measure_sample_capture_cli_and_api(tmp_path, name):
     assert s["bursts"] == len(sent)
     assert lo - 0.3 <= truth_db <= hi + 0.3, (s["ebn0_db"], truth_db)
     assert s["bits_checked"] >= 0.9 * len(sent) * 400
+    # Eb/N0 from power: the capture's interval holds the truth (the band keeps all but a
+    # sliver of the CPFSK spectrum), and so do the bursts' intervals but for a few: with 10
+    # bursts, binomial(10, 0.05) gives P(at most two misses) = 0.988.
+    a_lo, a_hi = s["available_ebn0_db_ci95"]
+    assert a_lo <= truth_db <= a_hi, (s["available_ebn0_db"], truth_db)
+    missed = sum(
+        not (b["available_ebn0_db_ci95"][0] <= x <= b["available_ebn0_db_ci95"][1])
+        for b, x in zip(d["bursts"], sent, strict=True)
+    )
+    assert missed <= 2
+    l_lo, l_hi = s["detection_loss_db_ci95"]
+    assert l_lo <= s["detection_loss_db"] <= l_hi
     # Burst times from the recording's core:datetime (UTC) plus start_sample/fs.
     meta = json.loads((SAMPLES / f"{name}.sigmf-meta").read_text())
     t0 = meta["captures"][0]["core:datetime"]

@@ -21,6 +21,10 @@ from iqstat.results import BurstResult, MeasurementReport
 
 FORMAT = "iqstat-report"
 FORMAT_VERSION = 1
+#: The removed DC offset is shown on the terminal when it is within this many dB of the noise
+#: floor (further below, what it leaks into a correlator is a few per cent of the noise there
+#: at ~50 samples per symbol).
+DC_SHOWN_BELOW_NOISE_DB = 30.0
 
 CAUTION = (
     "Figures are estimates from a model of a noncoherent receiver; a predicted error rate is a "
@@ -100,6 +104,9 @@ def _document(report: MeasurementReport) -> dict:
             "dc_offset_dbfs": f.dc_offset_dbfs,
             "noise_floor_dbfs": report.detection.noise_floor_dbfs,
             "noise_psd_dbfs_per_hz": report.detection.noise_psd_db_per_hz,
+            "dc_offset_removed_dbfs": report.detection.dc_offset_dbfs,
+            "iq_image_rejection_db": report.detection.iq.image_rejection_db,
+            "iq_corrected": report.detection.iq.applied,
             "detection_band_hz": report.detection.band_hz,
         },
         "profile": report.profile.to_dict(),
@@ -138,10 +145,16 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
     """Print the capture facts, link, per-burst table and headline."""
     f, link = report.facts, report.link
     console.print(Text(f"iqstat {__version__} · {f.name}", style="bold"))
+    det = report.detection
+    dc = ""
+    if det.dc_offset_dbfs > det.noise_floor_dbfs - DC_SHOWN_BELOW_NOISE_DB:
+        dc = f", DC offset {det.dc_offset_dbfs:.1f} dBFS (removed)"
+    if det.iq.applied:
+        dc += f", I/Q image {det.iq.image_rejection_db:.1f} dB down (corrected)"
     console.print(
         f"  {f.samples:,} samples of {f.datatype} at {f.sample_rate_hz / 1e3:g} kS/s "
-        f"({f.duration_s:.3f} s); noise floor {_db(report.detection.noise_floor_dbfs, 1, ' dBFS')}"
-        f", peak {_db(f.peak_power_dbfs, 1, ' dBFS')}",
+        f"({f.duration_s:.3f} s); noise floor {_db(det.noise_floor_dbfs, 1, ' dBFS')}"
+        f", peak {_db(f.peak_power_dbfs, 1, ' dBFS')}{dc}",
         markup=False,
         highlight=False,
     )
@@ -237,7 +250,10 @@ def _headline(report: MeasurementReport, console: Console) -> None:
     if s.available_ebn0_db is not None:
         t.add_row(
             "Eb/N0 from power",
-            _db(s.available_ebn0_db, 2) + f"   (detection loss {_db(s.detection_loss_db, 2)})",
+            _db(s.available_ebn0_db, 2)
+            + _ci(s.available_ebn0_db_ci95, lambda v: f"{v:.2f}")
+            + f"   detection loss {_db(s.detection_loss_db, 2)}"
+            + _ci(s.detection_loss_db_ci95, lambda v: f"{v:+.2f}"),
         )
     if s.ebn0_db_dd is not None:
         t.add_row(
