@@ -385,7 +385,7 @@ def test_receiver_dc_offset_is_measured_in_the_gaps_and_removed(modulation, ebn0
 @pytest.mark.parametrize("modulation", ["2fsk", "4fsk"])
 def test_quadrature_imbalance_is_measured_in_the_gaps_and_undone(modulation):
     # 3 dB / 10° of I/Q imbalance (an image 14.3 dB down) puts the sent tone's image on
-    # another tone's correlator; uncorrected, the fit read it as noise (-1.1 dB at 10 dB).
+    # another tone's correlator; uncorrected, the fit read it as noise (-1.2 dB at 10 dB).
     # With a DC offset on top: both come off, DC first.
     doc = _doc(modulation, 10.0, count=6, iq_gain_db=3.0, iq_phase_deg=10.0, dc_offset=[0.01, 0])
     doc["bursts"]["gap_s"] = 0.03
