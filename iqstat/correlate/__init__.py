@@ -1,0 +1,27 @@
+"""Quadrature correlator bank of a noncoherent receiver (package; the module now lives in bank)."""
+
+from iqstat.correlate.bank import (  # noqa: F401  (private names: imported by iqstat.sync)
+    _SLICE_BYTES,
+    MIN_BLOCKS_PER_SYMBOL,
+    BlockSums,
+    Scratch,
+    _bank_blocks,
+    _check_rate,
+    _check_tone_list,
+    _mix_blocks,
+    batch_buffer,
+    block_samples_for,
+    branch_energies,
+    check_samples,
+    check_tone_freqs,
+    correlate_symbols,
+    correlate_symbols_many,
+    interval_energies,
+    mix_blocks_many,
+    mix_cumulative,
+    mix_cumulative_many,
+    symbol_boundaries,
+    template_gram,
+    tone_phasors,
+    unit_phasors,
+)
