@@ -416,7 +416,7 @@ def test_interval_bisection_equals_the_scan():
     # The grouping finds the detections overlapping [a, b) by bisection; it must return what
     # the plain scan (y > a and x < b) returns, in order, for runs that overlap each other
     # (extended by m − 1 frames) and, through the fallback, for ends that do not increase.
-    from iqstat.bursts.detect import _Intervals
+    from iqstat.bursts.frame_detection import _Intervals
 
     rng = np.random.default_rng(31)
     starts = np.sort(rng.choice(5000, 300, replace=False))
@@ -486,7 +486,8 @@ def test_batched_refinement_equals_one_group_at_a_time():
     # time: bursts of different lengths and SNRs, one at the very start of the capture, one
     # running into its end, and a degenerate group on noise alone (no step: its coarse
     # frame extent is kept) in the middle, which must not disturb the others.
-    from iqstat.bursts.detect import _Group, _refine_many
+    from iqstat.bursts.edges import _refine_many
+    from iqstat.bursts.frame_detection import _Group
 
     rng = np.random.default_rng(59)
     n = 600_000
@@ -557,7 +558,7 @@ def test_vectorised_grouping_equals_the_general_code(seed, monkeypatch):
     # pass; it must give the general recursion's groups exactly (same edges and windows), on
     # frame powers with strong, weak and split bursts, near the ends, and in a mix with
     # clusters the general code handles (several intervals of one length).
-    import iqstat.bursts.detect as bursts_mod
+    import iqstat.bursts.frame_detection as bursts_mod
 
     rng = np.random.default_rng(seed)
     n_frames, dof = 40_000, 12.0
