@@ -220,9 +220,12 @@ def detect_bursts(
        noise reference); the cluster with most excess power, widened by one bin.
     2. One pass: per-frame full-band and in-band powers (:func:`measure_frame_powers`); the
        in-band frame power is Gamma(|B|) under white noise.
-    3. Noise floor N: :func:`noise_floor_from_frames` on 4-frame means (robust to bursts
-       filling most of the capture), then re-estimated twice as the mean in-band power of the
-       frames outside every detection (the noise-only gaps).
+    3. Noise floor N: :func:`iqstat.noise.noise_floor_lowest_cluster` on the in-band frame
+       powers (robust to bursts filling most of the capture), or the survey's spectrum beside
+       the signal when that lies clearly lower; then re-estimated, up to four times until it
+       settles, as the mean in-band power of the frames outside every detection (the
+       noise-only gaps), at most 1.1 times the starting estimate; once more after step 5
+       from the frames at least one frame away from every refined burst.
     4. Moving means over 1, 4, 16 and 64 frames, each tested with hysteresis: start at
        :func:`threshold_from_floor` (pfa), continue down to the threshold for √pfa.
        Detections of all lengths are joined; the finest one is kept where it exists, and two
@@ -231,8 +234,11 @@ def detect_bursts(
        split and strong close bursts not merged.
     5. Each edge is refined to one sample by a change-point estimate on band-limited samples
        read back inside the window the detection allows.
-    6. noise_var is the mean full-band power of the gap frames; the noise PSD the median over
-       the band's bins (DC excluded) of a Hann-window periodogram of up to 1024 gap frames.
+    6. On the gap frames: the DC offset is the mean of their samples (from the frames'
+       sums); noise_var is their mean full-band power less |dc|²; the noise PSD their mean
+       in-band power with the DC removed, ·L/(|B|·fs) (2|B| for a real capture); the I/Q
+       imbalance of a complex capture is measured on up to 1024 of them read back
+       (:func:`iqstat.frontend.measure_iq_correction`).
     """
     return _detect_bursts(
         capture,

@@ -89,7 +89,8 @@ def _mean_power(
     """Mean |x − dc|² over samples [s0, s1): whole frames from the frame powers and sums,
     ends read back.
 
-    ``end_energy`` may hold the partial ends' Σ|x − dc|² already (from :func:`_refine`).
+    ``end_energy`` may hold the partial ends' Σ|x − dc|² already (from
+    :func:`iqstat.bursts.edges._refine_many`).
     Per frame, Σ|x − dc|² = Σ|x|² − 2·Re(dc*·Σx) + L·|dc|².
     """
     L = fp.frame_samples

@@ -63,7 +63,8 @@ class BurstDetection:
     noise_var : float
         σ², full-band noise variance per complex sample (linear, full-scale units).
     noise_psd_db_per_hz : float
-        Noise PSD in the signal band away from DC, dBFS/Hz (white noise: σ²/fs).
+        Noise PSD in the detection band with the DC offset removed, dBFS/Hz (white noise:
+        σ²/fs).
     noise_psd_dof : float
         Gamma shape of that PSD estimate under white Gaussian noise (in-band DFT bins per
         frame × gap frames); its relative variance is 1/dof. 0 when there are no gaps.
