@@ -115,17 +115,35 @@ def _gap_iq_correction(capture: Capture, gap_frames: np.ndarray, L: int, dc: com
 _DC_QUIET_SHARE = 0.1
 
 
+#: A DC offset is taken as present when |mean|² exceeds this many times its noise-only
+#: expectation σ²/n (|mean|²·n/σ² is Exp(1) for n circular samples: a false alarm 1.4e-11).
+#: Below it, subtracting the estimate would add as much error as it removes (an OOK carrier
+#: within a few hundred Hz of DC is coherent with a DC error over the whole burst).
+DC_SIGNIFICANCE = 25.0
+
+
+def _significant_dc(sums: np.ndarray, power: np.ndarray, L: int) -> complex:
+    """Mean of the samples of some frames (their ``sums`` and mean ``power``), or 0 when it is
+    not significantly above what noise alone gives (see DC_SIGNIFICANCE)."""
+    if sums.size == 0:
+        return 0j
+    n = sums.size * L
+    dc = complex(sums.sum() / n)
+    noise = max(float(np.mean(power, dtype=np.float64)) - abs(dc) ** 2, 0.0)
+    return dc if abs(dc) ** 2 * n > DC_SIGNIFICANCE * noise else 0j
+
+
 def _quiet_dc(fp: FramePowers) -> complex:
     """Mean of x over the quietest frames: a first estimate of the receiver's DC offset.
 
     Frames with the lowest full-band power are noise-only wherever bursts fill less than
     ~90 % of the capture; their bin 0 holds L·dc plus noise, with no signal to bias it (a
-    carrier near 0 Hz would, in burst frames).
+    carrier near 0 Hz would, in burst frames). 0 when not significant.
     """
     n = fp.full.size
     k = max(1, int(_DC_QUIET_SHARE * n))
     quiet = np.argpartition(fp.full, k - 1)[:k] if k < n else np.arange(n)
-    return complex(fp.sums[quiet].mean() / fp.frame_samples)
+    return _significant_dc(fp.sums[quiet], fp.full[quiet], fp.frame_samples)
 
 
 def _without_dc(p_band: np.ndarray, sums: np.ndarray, L: int, dc: complex) -> np.ndarray:
@@ -462,8 +480,8 @@ def _detect_bursts(
     # The receiver's DC offset, measured where there is no signal (a mean over the gaps, so a
     # carrier near 0 Hz does not bias it): mean |x|² there is σ² + |dc|², and the in-band
     # power holds |dc|² too when bin 0 is in the band. Measurement subtracts it from the
-    # samples, so the noise figures are those of the noise alone.
-    dc = complex(fp.sums[gap_frames].sum() / (gap_frames.size * L)) if gap_frames.size else 0j
+    # samples, so the noise figures are those of the noise alone. 0 when not significant.
+    dc = _significant_dc(fp.sums[gap_frames], fp.full[gap_frames], L)
     if not capture.is_complex:
         dc = complex(dc.real, 0.0)
     dc_power = abs(dc) ** 2

@@ -81,7 +81,8 @@ class BurstDetection:
         One line on the outcome.
     dc_offset : complex
         Mean of the samples in the gaps (full-scale units): the receiver's DC offset, which
-        the noise figures above exclude and measurement subtracts. 0 without gaps.
+        the noise figures above exclude and measurement subtracts. 0 without gaps, or when it
+        is not significantly above what the gap noise alone gives (bursts.detect.DC_SIGNIFICANCE).
     iq : IqCorrection
         The receiver's quadrature imbalance measured on the gap noise (after the DC), and the
         correction measurement applies when it is significant.

@@ -42,7 +42,7 @@ from iqstat.synth.impairments import (
     iq_imbalance_coefficients,
     rician_gain,
 )
-from iqstat.synth.modulator import modulate, symbol_period_samples
+from iqstat.waveform import modulate, symbol_period_samples
 from iqstat.synth.scenario import Scenario, ValueSpec, load_scenario
 
 CHUNK_SAMPLES = 1 << 20
