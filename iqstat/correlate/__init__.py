@@ -16,8 +16,6 @@ Submodules, upstream first:
   block sums), branch energies.
 """
 
-# The private names (not in __all__) are re-exported only because iqstat.sync (block_rate,
-# full_rate) imports them from this package today; their owners are the submodules named.
 from iqstat.correlate.bank import (
     branch_energies,
     correlate_symbols,
@@ -25,18 +23,13 @@ from iqstat.correlate.bank import (
     symbol_boundaries,
 )
 from iqstat.correlate.block_sums import (
-    _SLICE_BYTES,  # noqa: F401
     MIN_BLOCKS_PER_SYMBOL,
     BlockSums,
     Scratch,
-    _bank_blocks,  # noqa: F401
-    _mix_blocks,  # noqa: F401
     block_samples_for,
     mix_blocks_many,
 )
 from iqstat.correlate.inputs import (
-    _check_rate,  # noqa: F401
-    _check_tone_list,  # noqa: F401
     check_samples,
     check_tone_freqs,
 )

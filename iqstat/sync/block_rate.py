@@ -24,18 +24,16 @@ from collections.abc import Sequence
 import numpy as np
 import scipy.fft
 
-from iqstat.correlate import (
+from iqstat.correlate.block_sums import (
     _SLICE_BYTES,
     BlockSums,
     Scratch,
     _bank_blocks,
-    _check_rate,
-    _check_tone_list,
     _mix_blocks,
     block_samples_for,
-    check_samples,
-    unit_phasors,
 )
+from iqstat.correlate.inputs import _check_rate, _check_tone_list, check_samples
+from iqstat.correlate.templates import unit_phasors
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.sync.grid import (
     CLOCK_BLOCK_SYMBOLS,

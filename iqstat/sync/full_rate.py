@@ -30,14 +30,9 @@ from typing import Literal
 import numpy as np
 import scipy.fft
 
-from iqstat.correlate import (
-    _check_rate,
-    _check_tone_list,
-    batch_buffer,
-    check_samples,
-    mix_cumulative_many,
-    unit_phasors,
-)
+from iqstat.correlate.inputs import _check_rate, _check_tone_list, check_samples
+from iqstat.correlate.running_sums import batch_buffer, mix_cumulative_many
+from iqstat.correlate.templates import unit_phasors
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.sync.grid import (
     CLOCK_BLOCK_SYMBOLS,

@@ -42,8 +42,8 @@ from iqstat.synth.impairments import (
     iq_imbalance_coefficients,
     rician_gain,
 )
-from iqstat.waveform import modulate, symbol_period_samples
 from iqstat.synth.scenario import Scenario, ValueSpec, load_scenario
+from iqstat.waveform import modulate, symbol_period_samples
 
 CHUNK_SAMPLES = 1 << 20
 BURST_CACHE_SAMPLES = 1 << 22
