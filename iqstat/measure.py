@@ -1100,7 +1100,22 @@ def measure_capture(
     reason = profile_mismatch(results, mismatch, layout)
     if reason is not None and summary.ebn0_db is not None:
         # The model the figures rest on does not describe this capture: report what was seen
-        # per burst, but no headline figure.
+        # per burst, but no headline figure. A continuous signal in the band explains that
+        # as well as a wrong profile does, and is what to look at first.
+        lines = detection.interfering_lines(link_sum.symbol_rate_hz)
+        if lines:
+            flag = "interference"
+            where = ", ".join(f"{0.5e-3 * (ln.f_lo_hz + ln.f_hi_hz):+.1f} kHz" for ln in lines[:3])
+            message = (
+                f"a continuous signal reaches the correlators ({where}, see capture.lines) "
+                f"and the bursts do not follow the noise model ({reason}): no headline figure"
+            )
+        else:
+            flag = "profile-mismatch"
+            message = (
+                f"the capture does not match the profile ({reason}): no headline figure; "
+                "check the modulation, rates and frame"
+            )
         summary = dataclasses.replace(
             summary,
             ebn0_db=None,
@@ -1109,9 +1124,8 @@ def measure_capture(
             predicted_ber=None,
             margin_db=None,
             worst_burst_margin_db=None,
-            flags=tuple(dict.fromkeys((*summary.flags, "profile-mismatch"))),
-            message=f"the capture does not match the profile ({reason}): no headline figure; "
-            "check the modulation, rates and frame",
+            flags=tuple(dict.fromkeys((*summary.flags, flag))),
+            message=message,
         )
     return MeasurementReport(
         facts=facts,

@@ -105,6 +105,8 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
         flags.append("nothing-measured")
     if facts.clipped_fraction is not None and facts.clipped_fraction > CLIPPING_FLAG_FRACTION:
         flags.append("clipping")
+    if detection.interfering_lines(link_sum.symbol_rate_hz):
+        flags.append("interference")
     if not facts.is_complex:
         flags.append("real-valued-capture")
     for fl in BURST_FLAGS_RAISED:

@@ -581,3 +581,42 @@ def test_vectorised_grouping_equals_the_general_code(seed, monkeypatch):
     general = bursts_mod._detect_groups(p, dof, floor, 1e-4, fast=False)
     assert fast == general
     assert 0 < chained[0] < len(fast)  # both paths ran
+
+
+def test_a_continuous_carrier_does_not_take_the_band_and_is_reported():
+    # A spur or an adjacent carrier is present all the time, the bursts come and go: the
+    # survey picks the band of what comes and goes even when the carrier is far stronger
+    # (here 10x the full-band noise power), and lists the carrier as a continuous line.
+    # Its rectangular-window leakage into the band's frame bins (Dirichlet kernel) is in
+    # every frame, gaps included: the noise floor must account for it, or every frame
+    # would pass the threshold.
+    rng = np.random.default_rng(13)
+    starts = [5_000 + k * 40_000 for k in range(6)]
+    cap, truth = _capture_with_bursts(rng, 250_000, [(a, 12.0) for a in starts])
+    n = np.arange(cap.n_samples)
+    f_cw, p_cw = -40_300.0, 10 * NOISE_VAR
+    x = cap.read(0, cap.n_samples) + np.sqrt(p_cw) * np.exp(2j * np.pi * f_cw / FS_HZ * n)
+    det = detect_bursts(Capture.from_array(x.astype(np.complex64), FS_HZ), min_burst_s=0.01)
+    lo, hi = det.band_hz
+    assert lo < CFO_HZ < hi and hi - lo < 40e3
+    assert len(det.bursts) == len(truth)
+    assert len(det.lines) == 1
+    line = det.lines[0]
+    # its bins: the Hann main lobe and the sidelobes still above the noise (34 dB per bin)
+    assert line.f_lo_hz < f_cw < line.f_hi_hz and line.f_hi_hz - line.f_lo_hz < 10e3
+    # power from the survey's Hann bins: within 0.5 dB (common practice, no source)
+    assert line.power_dbfs == pytest.approx(10 * math.log10(p_cw), abs=0.5)
+    # C/N0 of the line: P/N0 with N0 = σ²/fs
+    assert line.cn0_dbhz == pytest.approx(10 * math.log10(p_cw * FS_HZ / NOISE_VAR), abs=0.5)
+    # 52 kHz from the band at 4.8 kBd it leaks (C/N0)·T/(π·Δf·T)² ≈ 1.2x the noise into a
+    # symbol correlator: reported as interference
+    assert det.interfering_lines(RS_HZ) == det.lines
+    # at 300 Bd the correlator's sinc envelope 1/(π·Δf·T)² ≈ 5e-6 outweighs the longer T:
+    # (C/N0)·T·envelope ≈ 0.04 < 0.1
+    assert det.interfering_lines(RS_HZ / 16) == ()
+
+
+def test_no_continuous_lines_in_plain_noise_and_bursts():
+    rng = np.random.default_rng(14)
+    cap, _ = _capture_with_bursts(rng, 250_000, [(5_000 + k * 40_000, 12.0) for k in range(6)])
+    assert detect_bursts(cap, min_burst_s=0.01).lines == ()

@@ -25,11 +25,12 @@ Submodules, in data-flow order:
 
 from iqstat.bursts.detect import detect_bursts, survey_capture
 from iqstat.bursts.frame_powers import measure_frame_powers
-from iqstat.bursts.results import Burst, BurstDetection, FramePowers
+from iqstat.bursts.results import Burst, BurstDetection, ContinuousLine, FramePowers
 
 __all__ = [
     "Burst",
     "BurstDetection",
+    "ContinuousLine",
     "FramePowers",
     "detect_bursts",
     "measure_frame_powers",

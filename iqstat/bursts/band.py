@@ -22,6 +22,7 @@ from scipy import special
 from scipy.ndimage import median_filter
 
 from iqstat.bursts.readback import _read_windows
+from iqstat.bursts.results import ContinuousLine
 from iqstat.capture import Capture
 
 # Band survey: blocks of contiguous frames spread over the capture.
@@ -69,11 +70,13 @@ class _Survey:
     bins: np.ndarray | None  # occupied DFT bins (numpy order), None if nothing stands out
     noise_per_bin: np.ndarray  # noise power per rectangular-window bin, E|X_k|²/L², (L,)
     rel_std: float  # relative standard deviation of noise_per_bin summed over a band
+    lines: tuple[ContinuousLine, ...] = ()  # continuous narrowband signals (not bursts)
 
 
 def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     """Choose the occupied DFT bins from a Hann spectrum of spread blocks of frames."""
     L = frame_samples
+    fs = capture.sample_rate_hz
     n_frames = capture.n_samples // L
     bf = min(_SURVEY_BLOCK_FRAMES, n_frames)
     n_blk = min(_SURVEY_MAX_BLOCKS, n_frames // bf)
@@ -109,6 +112,7 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     thr_own = max(_OCCUPIED_Z * math.hypot(s_mean, s_own), _OCCUPIED_MIN_EXCESS)
     thr_ref = max(_OCCUPIED_Z * math.hypot(s_mean, s_own / math.sqrt(width)), _OCCUPIED_MIN_EXCESS)
     g_max = float(special.gammainccinv(bf, 1e-3 / (n_blk * L))) / bf * (1 + _OCCUPIED_Z * s_own)
+    thr_cont = max(_OCCUPIED_Z * math.hypot(s_own, s_own / math.sqrt(width)), _OCCUPIED_MIN_EXCESS)
     with np.errstate(divide="ignore", invalid="ignore"):
         intermittent = (mean / own - 1 > thr_own) | (blk_max / own > g_max)
         stationary = mean / ref - 1 > thr_ref
@@ -120,15 +124,29 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     # holds a minority of each median window, so this is the noise level under the signal
     # too (white or slowly varying noise), whatever the bursts' duty cycle. Hann bins of
     # white noise have E|X|² = σ²·Σw², rectangular ones L·σ²: rescale to the latter / L².
-    noise_per_bin = np.fft.ifftshift(ref) / (float(np.sum(w.astype(np.float64) ** 2)) * L)
+    sw2 = float(np.sum(w.astype(np.float64) ** 2))
+    noise_per_bin = np.fft.ifftshift(ref) / (sw2 * L)
     rel_std = s_own / math.sqrt(width)
+    excess = np.maximum(mean - ref, 0.0)
+    # Present in the gaps too: the bin's own low quantile (the quietest blocks) stands out of
+    # its neighbours' reference, and holds most of the bin's mean excess. The bursts' own bins
+    # do not: their low quantile is noise, or a little of a burst where gaps are short.
+    with np.errstate(divide="ignore", invalid="ignore"):
+        continuous = (own / ref - 1 > thr_cont) & (own - ref > 0.5 * (mean - ref)) & ~dc
+    # The line's power from the raw quantile (own·g_q): a steady line is not Gamma spread,
+    # so the noise's quantile correction 1/g_q would overstate it (by 1.6 dB at 16 frames).
+    lines = _continuous_lines(continuous, np.maximum(own - ref, 0.0) * g_q, ref, sw2, L, fs)
     if idx.size == 0:
-        return _Survey(None, noise_per_bin, rel_std)
-    # Clusters of occupied bins (gaps up to L/16 bins); keep the one with most excess power.
+        return _Survey(None, noise_per_bin, rel_std, lines)
+    # Clusters of occupied bins (gaps up to L/16 bins). The bursts are what comes and goes:
+    # keep the cluster with most excess power in bins that do (a spur or a carrier present
+    # all the time can be far stronger), or, when no bin comes and goes (bursts filling the
+    # whole capture), the one with most excess power.
     breaks = np.flatnonzero(np.diff(idx) > max(1, L // 16)) + 1
     groups = np.split(idx, breaks)
-    excess = np.maximum(mean - ref, 0.0)
-    best = max(groups, key=lambda g: excess[g[0] : g[-1] + 1].sum())
+    burst_excess = np.where(intermittent, excess, 0.0)
+    score = burst_excess if any(burst_excess[g].sum() > 0 for g in groups) else excess
+    best = max(groups, key=lambda g: score[g[0] : g[-1] + 1].sum())
     lo, hi = max(best[0] - 1, 0), min(best[-1] + 1, L - 1)
     # Grow the band over neighbouring bins that still hold signal at a looser level, seen on
     # the excess smoothed over a few bins: bursts with different carrier offsets smear the
@@ -140,4 +158,35 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
         lo -= 1
     while hi < L - 1 and smooth[hi + 1] > grow_thr and not dc[hi + 1]:
         hi += 1
-    return _Survey(np.sort(np.fft.fftshift(np.arange(L))[lo : hi + 1]), noise_per_bin, rel_std)
+    bins = np.sort(np.fft.fftshift(np.arange(L))[lo : hi + 1])
+    return _Survey(bins, noise_per_bin, rel_std, lines)
+
+
+def _continuous_lines(mask, excess, ref, sw2: float, L: int, fs: float):
+    """Runs of bins (shifted order) with a line present all the time, as ContinuousLine.
+
+    A Hann-windowed tone of power a² puts Σ_k |X_k|² = L·Σw²·a² into its bins (Parseval), so
+    its power is the excess summed over the run / (L·Σw²); the noise PSD under it is the
+    reference per bin / (Σw²·fs).
+    """
+    idx = np.flatnonzero(mask)
+    if idx.size == 0:
+        return ()
+    runs = np.split(idx, np.flatnonzero(np.diff(idx) > 2) + 1)
+    out = []
+    for r in runs:
+        lo, hi = max(int(r[0]) - 1, 0), min(int(r[-1]) + 1, L - 1)
+        power = float(excess[lo : hi + 1].sum()) / (L * sw2)
+        n0 = float(np.median(ref[lo : hi + 1])) / (sw2 * fs)
+        if power <= 0 or n0 <= 0:
+            continue
+        f_bin = fs / L
+        out.append(
+            ContinuousLine(
+                f_lo_hz=(lo - L // 2 - 0.5) * f_bin,
+                f_hi_hz=(hi - L // 2 + 0.5) * f_bin,
+                power_dbfs=10.0 * math.log10(power),
+                cn0_dbhz=10.0 * math.log10(power / n0),
+            )
+        )
+    return tuple(out)

@@ -17,6 +17,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import scipy.fft
 
 from iqstat.bursts.band import _band_edges, _bins_for_band, _default_frame_samples, _survey_band
 from iqstat.bursts.edges import _refine_many
@@ -29,7 +30,7 @@ from iqstat.bursts.frame_detection import (
 )
 from iqstat.bursts.frame_powers import _FramePowerPass
 from iqstat.bursts.readback import _mean_power, _read_windows
-from iqstat.bursts.results import Burst, BurstDetection, FramePowers, _db
+from iqstat.bursts.results import Burst, BurstDetection, ContinuousLine, FramePowers, _db
 from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.facts import (
@@ -99,16 +100,82 @@ def _noise_psd(p_gap: np.ndarray, dof: float, L: int, fs: float):
 _IQ_GAP_FRAMES = 1024
 
 
-def _gap_iq_correction(capture: Capture, gap_frames: np.ndarray, L: int, dc: complex):
-    """Quadrature imbalance from up to _IQ_GAP_FRAMES gap frames spread over the capture."""
-    if not capture.is_complex or gap_frames.size == 0:
-        return NO_CORRECTION
+def _gap_frames_read(capture: Capture, gap_frames: np.ndarray, L: int, dc: complex):
+    """Up to _IQ_GAP_FRAMES gap frames spread over the capture, DC removed, shape (k, L)."""
     k = min(_IQ_GAP_FRAMES, gap_frames.size)
     pick = gap_frames[np.linspace(0, gap_frames.size - 1, k).round().astype(np.int64)]
     x = _read_windows(capture, np.unique(pick) * L, L)
     if dc:
         x -= np.complex64(dc)
-    return measure_iq_correction(x)
+    return x
+
+
+def _lines_in_gaps(candidates, x: np.ndarray, noise_per_bin: np.ndarray, fs: float):
+    """The survey's candidate lines that the gap frames ``x`` hold too, their power from
+    there.
+
+    Where bursts leave no block of the survey without signal (gaps shorter than its blocks),
+    a burst's own band looks steady to it; in the gaps a burst's band holds noise only. A
+    line stays when its Hann-bin excess over the noise reference exceeds 6 standard errors
+    of the gap frames' mean, n_frames^(−1/2) per bin.
+    """
+    if not candidates or x.shape[0] == 0:
+        return ()
+    n_fr, L = x.shape
+    w = np.hanning(L + 2)[1:-1].astype(np.float32)
+    sw2 = float(np.sum(w.astype(np.float64) ** 2))
+    X = scipy.fft.fft(x * w, axis=1)
+    spec = np.fft.fftshift(np.mean(X.real**2 + X.imag**2, axis=0, dtype=np.float64))
+    ref = np.fft.fftshift(noise_per_bin) * sw2 * L  # Hann-bin noise, shifted order
+    f_bin = fs / L
+    out = []
+    for ln in candidates:
+        lo = int(round(ln.f_lo_hz / f_bin + 0.5)) + L // 2
+        hi = int(round(ln.f_hi_hz / f_bin - 0.5)) + L // 2
+        lo, hi = max(lo, 0), min(hi, L - 1)
+        if hi < lo:
+            continue
+        excess = float(np.sum(spec[lo : hi + 1] - ref[lo : hi + 1]))
+        noise = float(np.sum(ref[lo : hi + 1]))
+        if excess <= 6.0 * noise / math.sqrt(n_fr):
+            continue
+        power = excess / (L * sw2)
+        n0 = float(np.median(ref[lo : hi + 1])) / (sw2 * fs)
+        out.append(
+            ContinuousLine(
+                f_lo_hz=ln.f_lo_hz,
+                f_hi_hz=ln.f_hi_hz,
+                power_dbfs=10.0 * math.log10(power),
+                cn0_dbhz=10.0 * math.log10(power / n0),
+            )
+        )
+    return tuple(out)
+
+
+def _line_leakage(lines, band_bins: np.ndarray, L: int, fs: float, band_hz) -> float:
+    """Mean power continuous lines outside the band put into its rectangular-window frame
+    bins.
+
+    A tone of power P at f leaks P·|sin(πLδ)/(L·sin(πδ))|² into bin k, δ = f/fs − k/L (the
+    Dirichlet kernel); a line is taken as spread evenly over its survey bins (16 points).
+    Candidates overlapping the band are left out: where gaps are shorter than the survey's
+    blocks, the bursts' own band looks steady to the survey.
+    """
+    if not lines or band_hz is None:
+        return 0.0
+    k = np.asarray(band_bins, dtype=np.float64)
+    k = np.where(k >= L / 2, k - L, k)  # signed bin numbers
+    total = 0.0
+    for ln in lines:
+        if ln.f_hi_hz > band_hz[0] and ln.f_lo_hz < band_hz[1]:
+            continue
+        f = np.linspace(ln.f_lo_hz, ln.f_hi_hz, 16) / fs
+        d = f[:, None] - k[None, :] / L
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ker = np.sin(np.pi * L * d) / (L * np.sin(np.pi * d))
+        ker = np.where(np.abs(np.sin(np.pi * d)) < 1e-12, 1.0, ker)
+        total += 10.0 ** (ln.power_dbfs / 10.0) * float(np.mean(np.sum(ker**2, axis=1)))
+    return total
 
 
 #: Share of the quietest frames (by full-band power) whose bin 0 gives the first DC estimate.
@@ -404,6 +471,9 @@ def _detect_bursts(
         # estimate lies clearly above it.
         band_bins = np.arange(L) if bins is None else bins
         spectral = float(np.sum(survey.noise_per_bin[band_bins]))
+        # A continuous line outside the band still leaks into its bins through the frames'
+        # rectangular window: that is in every frame's power, gaps included.
+        spectral += _line_leakage(survey.lines, band_bins, L, fs, band_edges)
         if floor > spectral * (1.0 + 4.0 * survey.rel_std + 0.05):
             floor = spectral
     start_floor = floor
@@ -485,7 +555,17 @@ def _detect_bursts(
     if not capture.is_complex:
         dc = complex(dc.real, 0.0)
     dc_power = abs(dc) ** 2
-    iq = _gap_iq_correction(capture, gap_frames, L, dc)
+    if capture.is_complex and gap_frames.size:
+        x_gap = _gap_frames_read(capture, gap_frames, L, dc)
+        iq = measure_iq_correction(x_gap)
+        lines = (
+            () if survey is None else _lines_in_gaps(survey.lines, x_gap, survey.noise_per_bin, fs)
+        )
+    else:
+        # Without gaps nothing can be confirmed: the survey's candidates are what is known
+        # (a carrier strong enough to hide the gaps is one).
+        iq = NO_CORRECTION
+        lines = () if survey is None else survey.lines
     p_gap = fp.band[gap_frames].astype(np.float64)
     if fp.dc_in_band and dc:
         p_gap = _without_dc(p_gap, fp.sums[gap_frames], L, dc)
@@ -537,4 +617,5 @@ def _detect_bursts(
         message=message,
         dc_offset=dc,
         iq=iq,
+        lines=lines,
     )

@@ -51,6 +51,35 @@ class Burst:
         return d
 
 
+#: A continuous line is reported as interference when what it leaks into a symbol correlator
+#: exceeds this fraction of the correlator's noise (common practice, no source).
+INTERFERENCE_LEAK_RATIO = 0.1
+
+
+@dataclass(frozen=True)
+class ContinuousLine:
+    """A narrowband signal present all through the capture (in the gaps too): a spur, a
+    carrier, an interferer; not one of the bursts.
+
+    Attributes
+    ----------
+    f_lo_hz, f_hi_hz : float
+        Edges of its survey bins, Hz relative to the centre frequency.
+    power_dbfs : float
+        Its power above the noise, dBFS.
+    cn0_dbhz : float
+        That power over the noise PSD under it, dB-Hz (a line C/N0).
+    """
+
+    f_lo_hz: float
+    f_hi_hz: float
+    power_dbfs: float
+    cn0_dbhz: float
+
+    def to_dict(self) -> dict:
+        return dict(self.__dict__)
+
+
 @dataclass(frozen=True)
 class BurstDetection:
     """Bursts of a capture and the noise measured in the gaps between them.
@@ -86,6 +115,9 @@ class BurstDetection:
     iq : IqCorrection
         The receiver's quadrature imbalance measured on the gap noise (after the DC), and the
         correction measurement applies when it is significant.
+    lines : tuple of ContinuousLine
+        Narrowband signals present all through the capture, gaps included (spurs, carriers,
+        interferers), from the band survey; the band is chosen among what comes and goes.
     """
 
     bursts: tuple[Burst, ...]
@@ -100,6 +132,29 @@ class BurstDetection:
     message: str
     dc_offset: complex
     iq: IqCorrection
+    lines: tuple[ContinuousLine, ...]
+
+    def interfering_lines(self, symbol_rate_hz: float | None) -> tuple[ContinuousLine, ...]:
+        """The continuous lines a symbol correlator of the band would see above 1/10 of its
+        noise.
+
+        A line of power C at Δf from the band (0 inside it) leaks C·T·sinc²(Δf·T) into a
+        rectangular correlator of a symbol T = 1/Rs, whose noise is N0: the ratio is
+        (C/N0)·T·min(1, 1/(π·Δf·T)²), the sinc taken at its envelope (its zeros depend on
+        frequencies known only to a bin). All lines count when the full band was used or Rs
+        is unknown.
+        """
+        if self.band_hz is None or not symbol_rate_hz:
+            return self.lines
+        t = 1.0 / symbol_rate_hz
+        lo, hi = self.band_hz
+        out = []
+        for ln in self.lines:
+            df = max(lo - ln.f_hi_hz, ln.f_lo_hz - hi, 0.0)
+            envelope = 1.0 if df * t <= 1.0 / math.pi else 1.0 / (math.pi * df * t) ** 2
+            if 10.0 ** (ln.cn0_dbhz / 10.0) * t * envelope > INTERFERENCE_LEAK_RATIO:
+                out.append(ln)
+        return tuple(out)
 
     @property
     def dc_offset_dbfs(self) -> float:
@@ -122,6 +177,7 @@ class BurstDetection:
             "iq_improperness": self.iq.improperness,
             "iq_image_rejection_db": self.iq.image_rejection_db,
             "iq_corrected": self.iq.applied,
+            "lines": [ln.to_dict() for ln in self.lines],
         }
 
 

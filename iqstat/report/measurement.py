@@ -54,6 +54,8 @@ FLAG_TEXT = {
     "link-not-estimated": "carrier or rates could not be estimated on some bursts",
     "symbol-rate-mismatch": "the symbol rate in the capture differs from the profile's",
     "tone-spacing-mismatch": "the tone spacing in the capture differs from the profile's",
+    "interference": "a continuous narrowband signal (in the gaps too) reaches the correlators: "
+    "the figures count it as noise",
 }
 
 
@@ -107,6 +109,7 @@ def _document(report: MeasurementReport) -> dict:
             "dc_offset_removed_dbfs": report.detection.dc_offset_dbfs,
             "iq_image_rejection_db": report.detection.iq.image_rejection_db,
             "iq_corrected": report.detection.iq.applied,
+            "lines": [ln.to_dict() for ln in report.detection.lines],
             "detection_band_hz": report.detection.band_hz,
         },
         "profile": report.profile.to_dict(),
@@ -151,6 +154,11 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
         dc = f", DC offset {det.dc_offset_dbfs:.1f} dBFS (removed)"
     if det.iq.applied:
         dc += f", I/Q image {det.iq.image_rejection_db:.1f} dB down (corrected)"
+    for ln in det.lines[:3]:
+        dc += (
+            f"; continuous signal at {0.5e-3 * (ln.f_lo_hz + ln.f_hi_hz):+.1f} kHz "
+            f"({ln.power_dbfs:.1f} dBFS)"
+        )
     console.print(
         f"  {f.samples:,} samples of {f.datatype} at {f.sample_rate_hz / 1e3:g} kS/s "
         f"({f.duration_s:.3f} s); noise floor {_db(det.noise_floor_dbfs, 1, ' dBFS')}"
