@@ -34,6 +34,7 @@ from iqstat.estimate import (
     link_with,
     refine_link_across_bursts,
 )
+from iqstat.excise import cut_bands, notch_bands
 from iqstat.facts import CaptureFacts, compute_facts
 from iqstat.fit import NoncoherentFit, decide_symbols, fit_bursts_many, fit_nda_many
 from iqstat.formats.open import open_capture
@@ -147,11 +148,16 @@ def _window(capture: Capture, burst: Burst, margin: int) -> tuple[int, int]:
 
 def _read(capture: Capture, start: int, count: int, det: BurstDetection) -> np.ndarray:
     """Samples [start, start + count) with the receiver's DC offset and quadrature imbalance
-    (measured in the gaps by the burst detection) taken off; a new array."""
+    (measured in the gaps by the burst detection) taken off, and the continuous lines beside
+    the band cut out (iqstat.excise); a new array."""
     x = capture.read(start, count)
     if det.dc_offset:
         x -= np.complex64(det.dc_offset)
-    return det.iq.apply(x)
+    x = det.iq.apply(x)
+    if det.lines:
+        fs = capture.sample_rate_hz
+        x = cut_bands(x, notch_bands(det.lines, det.band_hz, fs / det.frame_samples), fs)
+    return x
 
 
 def _read_burst(
@@ -1107,8 +1113,8 @@ def measure_capture(
             flag = "interference"
             where = ", ".join(f"{0.5e-3 * (ln.f_lo_hz + ln.f_hi_hz):+.1f} kHz" for ln in lines[:3])
             message = (
-                f"a continuous signal reaches the correlators ({where}, see capture.lines) "
-                f"and the bursts do not follow the noise model ({reason}): no headline figure"
+                f"a continuous signal lies in the band ({where}, see capture.lines) and the "
+                f"bursts do not follow the noise model ({reason}): no headline figure"
             )
         else:
             flag = "profile-mismatch"

@@ -608,12 +608,31 @@ def test_a_continuous_carrier_does_not_take_the_band_and_is_reported():
     assert line.power_dbfs == pytest.approx(10 * math.log10(p_cw), abs=0.5)
     # C/N0 of the line: P/N0 with N0 = σ²/fs
     assert line.cn0_dbhz == pytest.approx(10 * math.log10(p_cw * FS_HZ / NOISE_VAR), abs=0.5)
-    # 52 kHz from the band at 4.8 kBd it leaks (C/N0)·T/(π·Δf·T)² ≈ 1.2x the noise into a
-    # symbol correlator: reported as interference
+    # beside the band it is cut out of the samples measured (iqstat.excise): not interference
+    assert det.interfering_lines(RS_HZ) == ()
+    # the leakage through the frames' rectangular window is taken off the gap powers: the
+    # in-band noise PSD and the full-band noise are those of the noise (5 standard errors)
+    n0 = 10 ** (det.noise_psd_db_per_hz / 10)
+    assert n0 == pytest.approx(NOISE_VAR / FS_HZ, rel=5 / math.sqrt(det.noise_psd_dof))
+    assert det.noise_var == pytest.approx(NOISE_VAR, rel=0.05)
+    # edges: the carrier × noise term widens the frame powers' spread (an effective Gamma
+    # shape of a third here), so within 3 symbols rather than the clean case's few samples
+    for b, (t0, t1) in zip(det.bursts, truth, strict=True):
+        assert abs(b.start_sample - t0) < 160 and abs(b.stop_sample - t1) < 160
+
+
+def test_a_continuous_carrier_inside_the_band_is_interference():
+    rng = np.random.default_rng(15)
+    starts = [5_000 + k * 40_000 for k in range(6)]
+    cap, _ = _capture_with_bursts(rng, 250_000, [(a, 14.0) for a in starts])
+    n = np.arange(cap.n_samples)
+    f_cw, p_cw = CFO_HZ + 600.0, 0.05 * NOISE_VAR  # C/N0 ~ 51 dB-Hz, (C/N0)·T ~ 26
+    x = cap.read(0, cap.n_samples) + np.sqrt(p_cw) * np.exp(2j * np.pi * f_cw / FS_HZ * n)
+    det = detect_bursts(Capture.from_array(x.astype(np.complex64), FS_HZ), min_burst_s=0.01)
+    assert len(det.lines) == 1 and det.lines[0].f_lo_hz < f_cw < det.lines[0].f_hi_hz
     assert det.interfering_lines(RS_HZ) == det.lines
-    # at 300 Bd the correlator's sinc envelope 1/(π·Δf·T)² ≈ 5e-6 outweighs the longer T:
-    # (C/N0)·T·envelope ≈ 0.04 < 0.1
-    assert det.interfering_lines(RS_HZ / 16) == ()
+    # (C/N0)·T·... at a thousand times the symbol rate: below a tenth of the noise
+    assert det.interfering_lines(RS_HZ * 1000) == ()
 
 
 def test_no_continuous_lines_in_plain_noise_and_bursts():

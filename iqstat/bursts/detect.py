@@ -120,7 +120,7 @@ def _lines_in_gaps(candidates, x: np.ndarray, noise_per_bin: np.ndarray, fs: flo
     of the gap frames' mean, n_frames^(−1/2) per bin.
     """
     if not candidates or x.shape[0] == 0:
-        return ()
+        return (), None
     n_fr, L = x.shape
     w = np.hanning(L + 2)[1:-1].astype(np.float32)
     sw2 = float(np.sum(w.astype(np.float64) ** 2))
@@ -129,6 +129,7 @@ def _lines_in_gaps(candidates, x: np.ndarray, noise_per_bin: np.ndarray, fs: flo
     ref = np.fft.fftshift(noise_per_bin) * sw2 * L  # Hann-bin noise, shifted order
     f_bin = fs / L
     out = []
+    outside = np.ones(L, dtype=bool)  # bins free of every confirmed line
     for ln in candidates:
         lo = int(round(ln.f_lo_hz / f_bin + 0.5)) + L // 2
         hi = int(round(ln.f_hi_hz / f_bin - 0.5)) + L // 2
@@ -141,6 +142,7 @@ def _lines_in_gaps(candidates, x: np.ndarray, noise_per_bin: np.ndarray, fs: flo
             continue
         power = excess / (L * sw2)
         n0 = float(np.median(ref[lo : hi + 1])) / (sw2 * fs)
+        outside[lo : hi + 1] = False
         out.append(
             ContinuousLine(
                 f_lo_hz=ln.f_lo_hz,
@@ -149,7 +151,25 @@ def _lines_in_gaps(candidates, x: np.ndarray, noise_per_bin: np.ndarray, fs: flo
                 cn0_dbhz=10.0 * math.log10(power / n0),
             )
         )
-    return tuple(out)
+    if not out:
+        return (), None
+    # The noise without the lines: a Hann bin of white noise holds σ²·Σw², so the mean over
+    # the bins free of lines, over Σw², is σ² (a subtraction of the lines' power from the
+    # full band would carry their estimation error, large beside a strong carrier).
+    return tuple(out), float(np.mean(spec[outside])) / sw2
+
+
+#: Modelled leakage of lines beside the band, as a fraction of the band's noise, above which
+#: the floor's excess over the spectral reference is taken as leakage (common practice, no
+#: source).
+LEAK_MATTERS = 0.1
+
+
+def _lines_beside(survey, band_hz) -> bool:
+    """Whether the survey saw a continuous line outside the band."""
+    if survey is None or band_hz is None:
+        return False
+    return any(ln.f_hi_hz <= band_hz[0] or ln.f_lo_hz >= band_hz[1] for ln in survey.lines)
 
 
 def _line_leakage(lines, band_bins: np.ndarray, L: int, fs: float, band_hz) -> float:
@@ -465,15 +485,29 @@ def _detect_bursts(
         p = _without_dc(p, fp.sums, L, dc_quiet)
 
     floor = noise_floor_lowest_cluster(p, dof)
+    leak = 0.0
+    if survey is not None and bins is not None:
+        # A continuous line outside the band still leaks into its bins through the frames'
+        # rectangular window, the same power in every frame, gaps included. Where the model
+        # of that leakage says it matters, the measured excess of the time-domain floor over
+        # the spectral noise reference (Hann bins, which do not leak so) is taken as the
+        # leakage and taken off: the frame powers are again noise (Gamma) plus bursts, and
+        # the thresholds scale with the noise alone.
+        spectral = float(np.sum(survey.noise_per_bin[bins]))
+        if _line_leakage(survey.lines, bins, L, fs, band_edges) > LEAK_MATTERS * spectral:
+            leak = max(floor - spectral, 0.0)
+            if leak > 0:
+                # The line × noise cross term stays: per frame it adds 2·leak·N/dof to the
+                # variance of a Gamma(dof) power of mean N, as a Gamma of dof·N/(N + 2·leak).
+                p = np.maximum(p - leak, 0.0)
+                dof = dof * spectral / (spectral + 2.0 * leak)
+                floor = noise_floor_lowest_cluster(p, dof)
     if survey is not None:
         # Weak bursts filling most of the capture blur into the noise in time; the spectrum
         # beside the signal still shows the noise level. Prefer it when the time-domain
         # estimate lies clearly above it.
         band_bins = np.arange(L) if bins is None else bins
         spectral = float(np.sum(survey.noise_per_bin[band_bins]))
-        # A continuous line outside the band still leaks into its bins through the frames'
-        # rectangular window: that is in every frame's power, gaps included.
-        spectral += _line_leakage(survey.lines, band_bins, L, fs, band_edges)
         if floor > spectral * (1.0 + 4.0 * survey.rel_std + 0.05):
             floor = spectral
     start_floor = floor
@@ -503,7 +537,10 @@ def _detect_bursts(
         cut_before = {i for i, g in enumerate(split) if g.start not in originals}
         groups = split
     end_energy: dict = {}
-    refined = _refine_many(capture, groups, L, band_edges, p, floor, dof, end_energy, dc_quiet)
+    taper = _lines_beside(survey, band_edges)
+    refined = _refine_many(
+        capture, groups, L, band_edges, p, floor, dof, end_energy, dc_quiet, taper
+    )
     spans = [(s0, s1, i in cut_before) for i, (s0, s1) in enumerate(refined)]
     spans.sort()
     joined: list[list[int]] = []
@@ -525,7 +562,9 @@ def _detect_bursts(
             whole = _Group(f0, f1, max(f0 - 1, 0), f0 + 2, max(f1 - 2, f0 + 1), f1)
             pieces.append(_split_long_groups([whole], p, e_frames))
         flat = [g for pc in pieces for g in pc]
-        ends = iter(_refine_many(capture, flat, L, band_edges, p, floor, dof, end_energy, dc_quiet))
+        ends = iter(
+            _refine_many(capture, flat, L, band_edges, p, floor, dof, end_energy, dc_quiet, taper)
+        )
         again = []
         for (s0, s1), pc in zip(joined, pieces, strict=True):
             if not pc:
@@ -558,22 +597,28 @@ def _detect_bursts(
     if capture.is_complex and gap_frames.size:
         x_gap = _gap_frames_read(capture, gap_frames, L, dc)
         iq = measure_iq_correction(x_gap)
-        lines = (
-            () if survey is None else _lines_in_gaps(survey.lines, x_gap, survey.noise_per_bin, fs)
+        lines, noise_without_lines = (
+            ((), None)
+            if survey is None
+            else _lines_in_gaps(survey.lines, x_gap, survey.noise_per_bin, fs)
         )
     else:
         # Without gaps nothing can be confirmed: the survey's candidates are what is known
         # (a carrier strong enough to hide the gaps is one).
         iq = NO_CORRECTION
         lines = () if survey is None else survey.lines
+        noise_without_lines = None
     p_gap = fp.band[gap_frames].astype(np.float64)
     if fp.dc_in_band and dc:
         p_gap = _without_dc(p_gap, fp.sums[gap_frames], L, dc)
-    noise_var = (
-        max(float(np.mean(fp.full[gap_frames], dtype=np.float64)) - dc_power, 0.0)
-        if gap_frames.size
-        else (noise_floor_lowest_cluster(fp.full, L if capture.is_complex else L / 2))
-    )
+    if leak > 0:  # the lines beside the band are cut out of the samples measured
+        p_gap = np.maximum(p_gap - leak, 0.0)
+    if noise_without_lines is not None:  # the full band's gap power holds the lines too
+        noise_var = noise_without_lines
+    elif gap_frames.size:
+        noise_var = max(float(np.mean(fp.full[gap_frames], dtype=np.float64)) - dc_power, 0.0)
+    else:
+        noise_var = noise_floor_lowest_cluster(fp.full, L if capture.is_complex else L / 2)
     bursts = []
     band_means, peaks = _burst_frame_figures(joined, p, fp.full, L)
     for i, (s0, s1) in enumerate(joined):
@@ -591,7 +636,8 @@ def _detect_bursts(
                 peak_dbfs=_db(peak),
             )
         )
-    psd = _noise_psd(p_gap, dof if capture.is_complex else 2 * dof, L, fs)
+    n_bins = fp.band_dof  # the band's bins (dof may be the smaller effective Gamma shape)
+    psd = _noise_psd(p_gap, n_bins if capture.is_complex else 2 * n_bins, L, fs)
     floor_dbfs = _db(noise_var)
     if bursts:
         message = (

@@ -80,8 +80,12 @@ def _refine_many(
     dof: float,
     end_energy: dict | None = None,
     dc: complex = 0j,
+    taper: bool = False,
 ) -> list[tuple[int, int]]:
     """Edges of every group to one sample: frame-level CUSUM, then sample level around it.
+
+    ``taper`` ramps the ends of each window read (the pads beside the searched samples), for
+    captures with a strong continuous line beside the band.
 
     Groups are refined in batches of ``_REFINE_BATCH_GROUPS`` with a fixed number of numpy
     calls per batch (plus one read per span of nearby edges, and one FFT per distinct length
@@ -93,11 +97,11 @@ def _refine_many(
     out: list[tuple[int, int]] = []
     for i in range(0, len(groups), _REFINE_BATCH_GROUPS):
         batch = groups[i : i + _REFINE_BATCH_GROUPS]
-        out.extend(_refine_batch(capture, batch, L, band_hz, p, floor, dof, end_energy, dc))
+        out.extend(_refine_batch(capture, batch, L, band_hz, p, floor, dof, end_energy, dc, taper))
     return out
 
 
-def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy, dc):
+def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy, dc, taper):
     n = capture.n_samples
     n_frames = p.size
     fs = capture.sample_rate_hz
@@ -143,6 +147,19 @@ def _refine_batch(capture, groups, L, band_hz, p, floor, dof, end_energy, dc):
     x = _read_windows(capture, ra, int(size.max()))
     if dc:
         x -= np.complex64(dc)
+    if taper and band_hz is not None and pad > 0:
+        # A strong line beside the band leaks through the window's abrupt ends into the
+        # band's bins (a sinc of the window length, far wider than a frame's); a raised-cosine
+        # ramp over the pads (the samples before a and after b) cuts that leakage to its
+        # 1/Δf³ tail and leaves the searched samples [a, b) as they are.
+        j = np.arange(x.shape[1]) + 0.5
+        lead = (a - ra)[:, None].astype(np.float64)
+        tail = (rb - b)[:, None].astype(np.float64)
+        up = np.where(lead > 0, np.clip(j / np.maximum(lead, 1.0), 0.0, 1.0), 1.0)
+        down = np.where(
+            tail > 0, np.clip((size[:, None] - j) / np.maximum(tail, 1.0), 0.0, 1.0), 1.0
+        )
+        x *= (np.sin(0.5 * np.pi * np.minimum(up, down)) ** 2).astype(np.float32)
     k = np.arange(int(m.max()))
     if band_hz is None:
         power = x.real.astype(np.float64) ** 2 + x.imag.astype(np.float64) ** 2

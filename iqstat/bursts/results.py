@@ -51,8 +51,9 @@ class Burst:
         return d
 
 
-#: A continuous line is reported as interference when what it leaks into a symbol correlator
-#: exceeds this fraction of the correlator's noise (common practice, no source).
+#: A continuous line left in the band is reported as interference when what it leaks into a
+#: symbol correlator exceeds this fraction of the correlator's noise (common practice, no
+#: source).
 INTERFERENCE_LEAK_RATIO = 0.1
 
 
@@ -135,26 +136,25 @@ class BurstDetection:
     lines: tuple[ContinuousLine, ...]
 
     def interfering_lines(self, symbol_rate_hz: float | None) -> tuple[ContinuousLine, ...]:
-        """The continuous lines a symbol correlator of the band would see above 1/10 of its
-        noise.
+        """The continuous lines left in the measured samples that a symbol correlator sees
+        above 1/10 of its noise.
 
-        A line of power C at Δf from the band (0 inside it) leaks C·T·sinc²(Δf·T) into a
-        rectangular correlator of a symbol T = 1/Rs, whose noise is N0: the ratio is
-        (C/N0)·T·min(1, 1/(π·Δf·T)²), the sinc taken at its envelope (its zeros depend on
-        frequencies known only to a bin). All lines count when the full band was used or Rs
-        is unknown.
+        Lines beside the band are cut out of the samples (:mod:`iqstat.excise`); those
+        overlapping it stay. A line of power C inside the band leaks C·T into a
+        rectangular correlator of a symbol T = 1/Rs, whose noise is N0: flagged when
+        (C/N0)·T exceeds INTERFERENCE_LEAK_RATIO. All lines count when the full band was used;
+        with Rs unknown, every line left in the band.
         """
-        if self.band_hz is None or not symbol_rate_hz:
+        if self.band_hz is None:
             return self.lines
-        t = 1.0 / symbol_rate_hz
         lo, hi = self.band_hz
-        out = []
-        for ln in self.lines:
-            df = max(lo - ln.f_hi_hz, ln.f_lo_hz - hi, 0.0)
-            envelope = 1.0 if df * t <= 1.0 / math.pi else 1.0 / (math.pi * df * t) ** 2
-            if 10.0 ** (ln.cn0_dbhz / 10.0) * t * envelope > INTERFERENCE_LEAK_RATIO:
-                out.append(ln)
-        return tuple(out)
+        left = [ln for ln in self.lines if ln.f_hi_hz > lo and ln.f_lo_hz < hi]
+        if not symbol_rate_hz:
+            return tuple(left)
+        t = 1.0 / symbol_rate_hz
+        return tuple(
+            ln for ln in left if 10.0 ** (ln.cn0_dbhz / 10.0) * t > INTERFERENCE_LEAK_RATIO
+        )
 
     @property
     def dc_offset_dbfs(self) -> float:

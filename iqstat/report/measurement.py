@@ -54,7 +54,7 @@ FLAG_TEXT = {
     "link-not-estimated": "carrier or rates could not be estimated on some bursts",
     "symbol-rate-mismatch": "the symbol rate in the capture differs from the profile's",
     "tone-spacing-mismatch": "the tone spacing in the capture differs from the profile's",
-    "interference": "a continuous narrowband signal (in the gaps too) reaches the correlators: "
+    "interference": "a continuous narrowband signal (in the gaps too) lies in the signal band: "
     "the figures count it as noise",
 }
 
@@ -155,9 +155,12 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
     if det.iq.applied:
         dc += f", I/Q image {det.iq.image_rejection_db:.1f} dB down (corrected)"
     for ln in det.lines[:3]:
+        inside = det.band_hz is None or (
+            ln.f_hi_hz > det.band_hz[0] and ln.f_lo_hz < det.band_hz[1]
+        )
         dc += (
             f"; continuous signal at {0.5e-3 * (ln.f_lo_hz + ln.f_hi_hz):+.1f} kHz "
-            f"({ln.power_dbfs:.1f} dBFS)"
+            f"({ln.power_dbfs:.1f} dBFS, {'in the band' if inside else 'cut out'})"
         )
     console.print(
         f"  {f.samples:,} samples of {f.datatype} at {f.sample_rate_hz / 1e3:g} kS/s "
