@@ -538,7 +538,7 @@ def test_fft_size_is_a_fast_length_with_little_padding(n):
 def test_row_median_equals_numpy(n):
     # The one-partition median of the line windows is numpy's median (mean of the two middle
     # order statistics for an even count) [numpy.median documentation].
-    from iqstat.estimate.batch import _median_rows
+    from iqstat.rowstats import median_rows as _median_rows
 
     v = np.random.default_rng(n).exponential(size=(5, n)).astype(np.float32)
     assert np.array_equal(_median_rows(v), np.median(v, axis=1))

@@ -31,6 +31,7 @@ from iqstat.estimate.link_estimate import (
     tone_offsets_hz,
 )
 from iqstat.estimate.spectrum import _Burst
+from iqstat.rowstats import median_rows
 
 #: Mantissas m of the FFT sizes m·2^k used for bursts: at most 12.5 % zero padding, 5-smooth.
 _FFT_MANTISSAS = (32, 36, 40, 45, 48, 50, 54, 60)
@@ -135,16 +136,6 @@ def _runs_view(a: np.ndarray, n: int) -> np.ndarray:
         return sliding_window_view(a, n, axis=1)
     st = a.strides
     return np.ndarray((a.shape[0], a.shape[1] - n + 1, n), a.dtype, a, 0, (st[0], st[1], st[1]))
-
-
-def _median_rows(v: np.ndarray) -> np.ndarray:
-    """np.median(v, axis=1) of finite rows, with one partition (two kth values cost ~7×)."""
-    n = v.shape[1]
-    k = n // 2
-    part = np.partition(v, k, axis=1)
-    if n % 2:
-        return part[:, k]
-    return (part[:, :k].max(axis=1) + part[:, k]) / 2
 
 
 class _Windows:
@@ -284,7 +275,7 @@ def _joint_lines_rows(
         w = _runs_view(pw, 2 * half + 1)[rows[:, None], c_local - half]
     inner = w[:, :, half - reach : half + reach + 1] if half > reach else w
     total = inner.sum(axis=1)  # (B, S)
-    mean_noise = _median_rows(w.reshape(nb, -1)) / math.log(2.0)
+    mean_noise = median_rows(w.reshape(nb, -1)) / math.log(2.0)
     best = np.argmax(total, axis=1)
     top = total[rows, best]
     threshold = float(special.gammainccinv(m, 1e-3 / (2 * reach + 1)))  # Gamma(M, 1) tail

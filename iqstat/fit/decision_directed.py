@@ -29,16 +29,6 @@ from iqstat.fit.inputs import (
 from iqstat.fit.result import Modulation, NoncoherentFit, _build, _db_array, _plausibility
 
 
-def _dd_fsk(z: np.ndarray, q: np.ndarray) -> tuple[float, float, np.ndarray]:
-    """DD moments: (A², N0, decisions). E|z_î|² = A² + N0, E[q] = M·N0 + A² (correct decisions)."""
-    m = z.shape[1]
-    energy = z.real**2 + z.imag**2
-    sym = np.argmax(energy, axis=1)
-    m1 = float(np.mean(energy[np.arange(len(sym)), sym]))
-    n0 = (float(np.mean(q)) - m1) / (m - 1)
-    return m1 - n0, n0, sym
-
-
 def _dd_ook(z: np.ndarray, max_rounds: int = 50) -> tuple[float, float, float, np.ndarray, int]:
     """Hard-decision rounds: split energies at the model's optimum threshold, re-estimate.
 

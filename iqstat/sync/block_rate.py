@@ -35,6 +35,7 @@ from iqstat.correlate.block_sums import (
 from iqstat.correlate.inputs import _check_rate, _check_tone_list, check_samples
 from iqstat.correlate.templates import unit_phasors
 from iqstat.errors import MeasurementError, ParameterError
+from iqstat.rowstats import median_rows
 from iqstat.sync.grid import (
     CLOCK_BLOCK_SYMBOLS,
     MIN_CLOCK_BLOCKS,
@@ -58,16 +59,6 @@ _FLOOR_ROWS = 8
 #: Fewest feature points (blocks) per symbol worth decimating to; the block length itself is
 #: :func:`~iqstat.correlate.block_samples_for` the period (at least 12 blocks per symbol).
 FEATURE_MIN_BLOCKS = 4
-
-
-def _median_rows(a: np.ndarray) -> np.ndarray:
-    """Median of each row of a 2-D array (np.median along axis 1, by one partition)."""
-    n = a.shape[1]
-    h = n // 2
-    if n % 2:
-        return np.partition(a, h, axis=1)[:, h]
-    p = np.partition(a, (h - 1, h), axis=1)
-    return 0.5 * (p[:, h - 1] + p[:, h])
 
 
 #: Bursts worked together by :func:`time_and_correlate_many`: their block sums and feature
@@ -340,7 +331,7 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
             else:
                 sk[...] = e[rk, :cols]
             spec = scipy.fft.rfft(sk, int(nf), axis=1)[:, bins]
-            floor[rk] = _median_rows(spec.real.astype(np.float64) ** 2 + spec.imag**2)
+            floor[rk] = median_rows(spec.real.astype(np.float64) ** 2 + spec.imag**2)
     with np.errstate(divide="ignore"):
         line_snr = np.where(
             floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf

@@ -72,18 +72,6 @@ def _int_symbols(name: str, a: np.ndarray) -> np.ndarray:
     return s.astype(np.int64, copy=False)
 
 
-#: Below this many multiply-adds the sliding dot product is summed directly by numpy, above
-#: it by FFT (the choice scipy.signal.correlate makes, without its method selection).
-_DIRECT_DOT_WORK = 1_000_000
-
-
-def _sliding_dot(a: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """Σ_j a[s + j]·v[j] for every s with the pattern inside a (FFT or direct, as faster)."""
-    if a.size * v.size <= _DIRECT_DOT_WORK:
-        return np.correlate(a, v, mode="valid")
-    return _fft_valid_correlation(a[None], v)[0]
-
-
 def _fft_valid_correlation(a: np.ndarray, v: np.ndarray) -> np.ndarray:
     """r[b, s, ...] = Σ_j a[b, s + j, ...]·v[j, ...] for s = 0..n − m (real inputs), by one
     zero-padded real FFT along axis 1: the 'valid' part of the convolution with v reversed."""
