@@ -182,11 +182,6 @@ def _continuous_lines(mask, excess, ref, sw2: float, L: int, fs: float):
             continue
         f_bin = fs / L
         out.append(
-            ContinuousLine(
-                f_lo_hz=(lo - L // 2 - 0.5) * f_bin,
-                f_hi_hz=(hi - L // 2 + 0.5) * f_bin,
-                power_dbfs=10.0 * math.log10(power),
-                cn0_dbhz=10.0 * math.log10(power / n0),
-            )
+            ContinuousLine.of((lo - L // 2 - 0.5) * f_bin, (hi - L // 2 + 0.5) * f_bin, power, n0)
         )
     return tuple(out)

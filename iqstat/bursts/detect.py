@@ -143,14 +143,7 @@ def _lines_in_gaps(candidates, x: np.ndarray, noise_per_bin: np.ndarray, fs: flo
         power = excess / (L * sw2)
         n0 = float(np.median(ref[lo : hi + 1])) / (sw2 * fs)
         outside[lo : hi + 1] = False
-        out.append(
-            ContinuousLine(
-                f_lo_hz=ln.f_lo_hz,
-                f_hi_hz=ln.f_hi_hz,
-                power_dbfs=10.0 * math.log10(power),
-                cn0_dbhz=10.0 * math.log10(power / n0),
-            )
-        )
+        out.append(ContinuousLine.of(ln.f_lo_hz, ln.f_hi_hz, power, n0))
     if not out:
         return (), None
     # The noise without the lines: a Hann bin of white noise holds σ²·Σw², so the mean over

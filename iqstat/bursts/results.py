@@ -77,6 +77,16 @@ class ContinuousLine:
     power_dbfs: float
     cn0_dbhz: float
 
+    @classmethod
+    def of(cls, f_lo_hz: float, f_hi_hz: float, power: float, n0: float) -> ContinuousLine:
+        """From its edges, its power (linear, full-scale²) and the noise PSD under it."""
+        return cls(
+            f_lo_hz=f_lo_hz,
+            f_hi_hz=f_hi_hz,
+            power_dbfs=10.0 * math.log10(power),
+            cn0_dbhz=10.0 * math.log10(power / n0),
+        )
+
     def to_dict(self) -> dict:
         return dict(self.__dict__)
 
