@@ -639,3 +639,24 @@ def test_no_continuous_lines_in_plain_noise_and_bursts():
     rng = np.random.default_rng(14)
     cap, _ = _capture_with_bursts(rng, 250_000, [(5_000 + k * 40_000, 12.0) for k in range(6)])
     assert detect_bursts(cap, min_burst_s=0.01).lines == ()
+
+
+def test_a_burst_faded_in_its_middle_is_one_burst_when_its_length_is_known():
+    # A fade (here: 60 symbols of the burst at zero amplitude) splits the detection; with
+    # the frame length known, the pieces span one expected burst and are joined. Two real
+    # bursts of that length, even close, span two lengths and stay apart.
+    rng = np.random.default_rng(16)
+    cap, truth = _capture_with_bursts(rng, 200_000, [(5_000, 14.0), (35_000, 14.0)])
+    x = cap.read(0, cap.n_samples)
+    t0, t1 = truth[0]
+    mid = (t0 + t1) // 2
+    x[mid - 1500 : mid + 1500] = _noise(rng, 3000).astype(np.complex64)  # signal faded out
+    faded = Capture.from_array(x, FS_HZ)
+    expected = N_SYM / RS_HZ
+    split = detect_bursts(faded, min_burst_s=0.005)
+    assert len(split.bursts) == 3  # the fade cuts the first burst in two
+    det = detect_bursts(faded, min_burst_s=0.005, expected_burst_s=expected)
+    assert len(det.bursts) == 2
+    first, second = det.bursts
+    assert abs(first.start_sample - t0) < 30 and abs(first.stop_sample - t1) < 30
+    assert abs(second.start_sample - truth[1][0]) < 30

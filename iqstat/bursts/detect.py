@@ -158,6 +158,47 @@ def _lines_in_gaps(candidates, x: np.ndarray, noise_per_bin: np.ndarray, fs: flo
 LEAK_MATTERS = 0.1
 
 
+#: Consecutive detections spanning at most this many expected burst lengths are one burst.
+FADE_JOIN_FACTOR = 1.15
+#: ... when both stand this far (in-band SNR, dB) above the noise: pieces of a burst that
+#: faded, not fragments of a burst at the edge of detection or noise that passed the test.
+FADE_JOIN_MIN_SNR_DB = 0.0
+
+
+def _join_faded(
+    spans: list[list[int]], expected_samples: float, p: np.ndarray, floor: float, L: int
+) -> list[list[int]]:
+    """Join consecutive detections that together span no more than one expected burst.
+
+    A burst that fades within itself (multipath, a moving transmitter) drops below the
+    threshold for a while and reads as two pieces, each too short for its frame; two real
+    bursts of the profile's length span at least two lengths. (Pieces of a split detection
+    span two lengths too, so they stay apart.) Only pieces clearly above the noise are
+    joined: near the detection limit the pieces are as likely noise that passed the test,
+    and joining them would take noise into the burst.
+    """
+    if not spans or floor <= 0:
+        return spans
+    min_level = floor * (1.0 + 10.0 ** (FADE_JOIN_MIN_SNR_DB / 10.0))
+    n = p.size
+
+    def strong(s0: int, s1: int) -> bool:
+        f0, f1 = s0 // L, min(-(-s1 // L), n)
+        return f1 > f0 and float(np.mean(p[f0:f1])) >= min_level
+
+    out: list[list[int]] = []
+    last_strong = False
+    for s0, s1 in spans:
+        now_strong = strong(s0, s1)
+        if out and last_strong and now_strong:
+            if s1 - out[-1][0] <= FADE_JOIN_FACTOR * expected_samples:
+                out[-1][1] = max(out[-1][1], s1)
+                continue
+        out.append([s0, s1])
+        last_strong = now_strong
+    return out
+
+
 def _lines_beside(survey, band_hz) -> bool:
     """Whether the survey saw a continuous line outside the band."""
     if survey is None or band_hz is None:
@@ -567,6 +608,8 @@ def _detect_bursts(
                 a, b = next(ends)
                 again.append([s0 if k == 0 else a, s1 if k == len(pc) - 1 else b])
         joined = again
+    if expected_burst_s is not None and expected_burst_s > 0:
+        joined = _join_faded(joined, expected_burst_s * fs, p, floor, L)
     joined = [sp for sp in joined if sp[1] - sp[0] >= max(min_burst, 1)]
 
     thr = threshold_from_floor(floor, dof, pfa)
