@@ -462,6 +462,12 @@ def _detect_bursts(
         raise ParameterError(f"pfa {pfa!r} must be in (0, 0.01]; e.g. 1e-6")
     if frame_samples is None:
         L = _default_frame_samples(fs)
+        if expected_burst_s is not None and expected_burst_s > 0:
+            # Short bursts (fast links) have short gaps too: frames of at most 1/32 of a burst,
+            # so that a gap of a third of a burst still holds whole noise frames beside its
+            # one-frame guards (a power of two, at least 32 samples).
+            cap = 2 ** max(5, math.floor(math.log2(max(expected_burst_s * fs / 32.0, 1.0))))
+            L = min(L, cap)
     else:
         if int(frame_samples) != frame_samples or int(frame_samples) < 16:
             raise ParameterError(
