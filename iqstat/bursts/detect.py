@@ -249,7 +249,7 @@ def _significant_dc(sums: np.ndarray, power: np.ndarray, L: int) -> complex:
     if sums.size == 0:
         return 0j
     n = sums.size * L
-    dc = complex(sums.sum() / n)
+    dc = complex(sums.sum(dtype=np.complex128) / n)
     noise = max(float(np.mean(power, dtype=np.float64)) - abs(dc) ** 2, 0.0)
     return dc if abs(dc) ** 2 * n > DC_SIGNIFICANCE * noise else 0j
 
@@ -263,7 +263,8 @@ def _quiet_dc(fp: FramePowers) -> complex:
     """
     n = fp.full.size
     k = max(1, int(_DC_QUIET_SHARE * n))
-    quiet = np.argpartition(fp.full, k - 1)[:k] if k < n else np.arange(n)
+    # A threshold and a mask rather than argpartition's int64 indices (8 bytes per frame).
+    quiet = fp.full <= np.partition(fp.full, k - 1)[k - 1] if k < n else slice(None)
     return _significant_dc(fp.sums[quiet], fp.full[quiet], fp.frame_samples)
 
 

@@ -93,7 +93,7 @@ class _FramePowerPass:
             self.edges = _band_edges(self.bins, L, fs)
             self.dof = float(self.bins.size)
         bins = self.bins
-        self.sums = np.empty(self.n_frames, dtype=np.complex128)
+        self.sums = np.empty(self.n_frames, dtype=np.complex64)  # 8 bytes per frame
         self.dc_in_band = bins is None or bool(np.any(bins == 0))
         self.use_mm = bins is not None and bins.size <= _MATMUL_MAX_BIN_FRACTION * L
         if self.use_mm:

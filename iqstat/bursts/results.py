@@ -208,7 +208,7 @@ class FramePowers:
     band_hz : tuple of float or None
         Band edges used (bin edges), Hz; None for the full band.
     frame_samples : int
-    sums : ndarray of complex128, shape (n_frames,)
+    sums : ndarray of complex64, shape (n_frames,)
         Σx per frame (DFT bin 0): the gap frames' mean of it is the receiver's DC offset.
     dc_in_band : bool
         Whether bin 0 is one of the band's bins (so that ``band`` holds the DC's power).
