@@ -660,3 +660,32 @@ def test_a_burst_faded_in_its_middle_is_one_burst_when_its_length_is_known():
     first, second = det.bursts
     assert abs(first.start_sample - t0) < 30 and abs(first.stop_sample - t1) < 30
     assert abs(second.start_sample - truth[1][0]) < 30
+
+
+def test_fast_links_with_short_gaps_keep_noise_frames():
+    # 38.4 kBd bursts of 448 symbols last 11.7 ms and their gaps 4 ms: with the default 1 ms
+    # frames (256 samples) no frame of a gap survived the one-frame guards, and the noise PSD
+    # was lost. With the burst length known, frames are at most 1/32 of a burst.
+    rng = np.random.default_rng(17)
+    fs, rs, n_sym = 250e3, 38_400.0, 448
+    amp = math.sqrt(10**1.2 * NOISE_VAR * rs / fs)  # 12 dB Eb/N0 (P = Eb/N0·σ²·Rb/fs)
+    x = _noise(rng, 40_000)
+    starts = [500 + k * 4_000 for k in range(8)]
+    for a in starts:
+        s = modulate(
+            rng.integers(0, 2, n_sym),
+            modulation="2fsk",
+            sample_rate_hz=fs,
+            symbol_rate_hz=rs,
+            tone_spacing_hz=rs,
+            cfo_hz=2e3,
+            amplitude=amp,
+        )[:3_000]
+        x[a : a + s.size] += s
+    cap = Capture.from_array(x.astype(np.complex64), fs)
+    det = detect_bursts(cap, expected_burst_s=n_sym / rs)
+    assert det.frame_samples == 64  # 2 917 samples / 32 = 91 -> 64
+    assert len(det.bursts) == len(starts)
+    n0 = 10 ** (det.noise_psd_db_per_hz / 10)
+    assert det.noise_psd_dof > 0
+    assert n0 == pytest.approx(NOISE_VAR / fs, rel=5 / math.sqrt(det.noise_psd_dof))
