@@ -49,6 +49,24 @@ def _json_safe_other(obj):
     return obj
 
 
+def dumps_line(obj) -> str:
+    """One-line JSON of ``obj`` as ``json.dumps(json_safe(obj), allow_nan=False)`` gives it,
+    without walking ``obj`` when it needs no conversion.
+
+    json's C encoder writes plain dicts, lists, tuples, str, int, float (numpy's float64 is
+    one) and None as :func:`json_safe` would have them; a non-finite float comes out as a bare
+    NaN/Infinity token, and numpy integers, bools and float32 raise TypeError. Either way the
+    object takes the safe path. (A string holding the text NaN or Infinity only costs that.)
+    """
+    try:
+        text = json.dumps(obj)
+    except TypeError:
+        return json.dumps(json_safe(obj), allow_nan=False)
+    if "NaN" in text or "Infinity" in text:
+        return json.dumps(json_safe(obj), allow_nan=False)
+    return text
+
+
 def dumps(obj) -> str:
     return json.dumps(json_safe(obj), indent=2, allow_nan=False) + "\n"
 

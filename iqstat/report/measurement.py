@@ -6,7 +6,6 @@ Unknown values are ``null``: never omitted, never NaN.
 
 from __future__ import annotations
 
-import json
 import math
 from collections.abc import Iterator
 
@@ -16,7 +15,7 @@ from rich.table import Table
 from rich.text import Text
 
 from iqstat import __version__
-from iqstat.report.jsonio import dumps, json_safe
+from iqstat.report.jsonio import dumps, dumps_line, json_safe
 from iqstat.results import BurstResult, MeasurementReport
 
 FORMAT = "iqstat-report"
@@ -76,9 +75,7 @@ def report_json_pieces(report: MeasurementReport) -> Iterator[str]:
     head, tail = dumps({**_document(report), "bursts": "__bursts__"}).split(marker)
     yield head + "["
     for i, b in enumerate(report.bursts):
-        yield ("\n    " if i == 0 else ",\n    ") + json.dumps(
-            json_safe(b.to_dict()), allow_nan=False
-        )
+        yield ("\n    " if i == 0 else ",\n    ") + dumps_line(b.to_dict())
     yield ("\n  ]" if report.bursts else "]") + tail
 
 
