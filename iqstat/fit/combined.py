@@ -110,6 +110,9 @@ def fit_bursts_many(
                 g.identity[callers],
                 n_sub,
                 int(aided.size),
+                g.table,
+                g.table_identity,
+                None if g.row_gram is None else g.row_gram[rows],
             )
             prep_da = _scaled(sub, modulation, "da-ml", pi)
             sym = kk[rows]

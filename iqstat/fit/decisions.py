@@ -16,7 +16,12 @@ from scipy import optimize, special
 
 from iqstat.errors import ParameterError
 from iqstat.fit.bessel import _log_i0
-from iqstat.fit.inputs import _check_gram, _check_modulation, _check_outputs, _check_priors
+from iqstat.fit.inputs import (
+    _check_modulation,
+    _check_outputs,
+    _check_priors,
+    _check_symbol_grams,
+)
 from iqstat.fit.result import Modulation, NoncoherentFit
 
 
@@ -93,8 +98,9 @@ def symbol_posteriors(
     z : ndarray, shape (n_symbols, n_branches)
     fit : NoncoherentFit
         Supplies A, N0 and the priors.
-    gram : ndarray, optional
-        Unused by the posterior itself (R⁻¹r_i = e_i removes it), accepted for symmetry.
+    gram : ndarray, shape (n_branches, n_branches) or (n_symbols, n_branches, n_branches)
+        One Gram matrix or one per symbol; checked, but unused by the posterior itself
+        (R_k⁻¹r_k,i = e_i removes it from every symbol's likelihood), accepted for symmetry.
     modulation : {"2fsk", "4fsk", "ook"}
 
     Returns
@@ -109,7 +115,7 @@ def symbol_posteriors(
     _check_modulation(modulation)
     zz = _check_outputs(z, modulation)
     if modulation != "ook":
-        _check_gram(gram, zz.shape[1])
+        _check_symbol_grams(gram, zz.shape[1], len(zz))
     a, n0 = _fit_parameters(fit)
     pi = _check_priors(fit.priors, modulation)
     log_lam = _log_i0((2.0 * a / n0) * np.abs(zz)) - (a / n0) * a  # log Λ, eq. 3
@@ -132,8 +138,9 @@ def decide_symbols(
     z : ndarray, shape (n_symbols, n_branches)
     fit : NoncoherentFit
         Needed for OOK (threshold) and for non-uniform FSK priors.
-    gram : ndarray, optional
-        Accepted for symmetry; the noncoherent ML decision does not depend on it.
+    gram : ndarray, shape (n_branches, n_branches) or (n_symbols, n_branches, n_branches)
+        One Gram matrix or one per symbol; checked and accepted for symmetry, the
+        noncoherent ML decision does not depend on it.
     modulation : {"2fsk", "4fsk", "ook"}
 
     Returns
@@ -149,7 +156,7 @@ def decide_symbols(
         p_on = fit.priors[1] if len(fit.priors) == 2 else 0.5
         thr = ook_decision_threshold(a, n0, p_on)
         return (np.abs(zz[:, 0]) > thr).astype(np.intp)
-    _check_gram(gram, zz.shape[1])
+    _check_symbol_grams(gram, zz.shape[1], len(zz))
     pri = np.asarray(fit.priors, dtype=float)
     if pri.shape == (zz.shape[1],) and np.ptp(pri) > 1e-12:
         return np.argmax(symbol_posteriors(zz, fit, gram, modulation=modulation), axis=1)

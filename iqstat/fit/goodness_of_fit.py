@@ -19,10 +19,11 @@ from scipy import special
 
 from iqstat.errors import ParameterError
 from iqstat.fit.inputs import (
-    _check_gram,
     _check_modulation,
     _check_outputs,
     _check_priors,
+    _check_symbol_grams,
+    _class_counts,
     _Prepared,
 )
 from iqstat.fit.ncx2_cdf import (
@@ -71,8 +72,8 @@ def branch_energy_cdf(
         Branch energies |z|² (same units as N0).
     amplitude, noise_var : float
         A and N0 of the fit (A = 0 allowed: noise only).
-    gram : ndarray, shape (n_branches, n_branches), optional
-        Template Gram matrix; identity if omitted.
+    gram : ndarray, shape (n_branches, n_branches) or (n_symbols, n_branches, n_branches)
+        Template Gram matrix, or one per symbol (row k: symbol k's R_k); identity if omitted.
     modulation : {"2fsk", "4fsk", "ook"}
     priors : sequence of float, optional
         Hypothesis priors (FSK: per tone; OOK: (p_off, p_on)); uniform if omitted.
@@ -88,7 +89,8 @@ def branch_energy_cdf(
     -----
     Given hypothesis h, |z_j|² / (N0/2) is noncentral chi-square with 2 degrees of freedom and
     λ = 2A²|ρ_jh|²/N0, ρ_jh = R[j, h] (central, i.e. exponential of mean N0, when ρ = 0) [1].
-    The marginal is F_j(x) = Σ_h π_h F(x; λ_hj) (docs/estimator.md eq. 6).
+    The marginal is F_j(x) = Σ_h π_h F(x; λ_hj) (docs/estimator.md eq. 6). With per-symbol
+    Gram matrices each energy goes through the law of its own symbol's R_k.
 
     References
     ----------
@@ -105,12 +107,25 @@ def branch_energy_cdf(
         raise ParameterError(f"noise_var {noise_var!r} must be a positive finite number")
     if not (math.isfinite(amplitude) and amplitude >= 0):
         raise ParameterError(f"amplitude {amplitude!r} must be a finite number >= 0")
-    r, _ = _check_gram(gram if modulation != "ook" else None, m)
+    table, row_gram = _check_symbol_grams(gram if modulation != "ook" else None, m, len(x))
     pi = _check_priors(priors, modulation)
-    lam = _noncentrality(amplitude, noise_var, r, modulation)
     y = x / (0.5 * noise_var)
+    if row_gram is None:
+        lam = _noncentrality(amplitude, noise_var, table[0], modulation)
+        return _energy_cdf(y, lam, pi, symbols)
+    out = np.empty_like(y)
+    sym = None if symbols is None else np.asarray(symbols)
+    for c in range(len(table)):  # the distinct per-symbol matrices (a few)
+        sel = row_gram == c
+        lam = _noncentrality(amplitude, noise_var, table[c], modulation)
+        out[sel] = _energy_cdf(y[sel], lam, pi, None if sym is None else sym[sel])
+    return out
+
+
+def _energy_cdf(y: np.ndarray, lam: np.ndarray, pi: np.ndarray, symbols) -> np.ndarray:
+    """F_j(y_kj) with noncentralities lam[h, j] (eq. 6): marginal, or given ``symbols``."""
     out = np.zeros_like(y)
-    for j in range(m):  # loop over branches and hypotheses (≤ 4 × 4), vectorised over symbols
+    for j in range(y.shape[1]):  # branches and hypotheses (≤ 4 × 4), vectorised over symbols
         if symbols is None:
             for h in range(len(pi)):
                 out[:, j] += pi[h] * _chi2_2_cdf(y[:, j], lam[h, j])
@@ -281,7 +296,7 @@ def check_energy_laws(
     z : ndarray, shape (n_symbols, n_branches)
         Correlator outputs.
     amplitude, noise_var, gram, modulation, priors, symbols
-        As :func:`branch_energy_cdf`.
+        As :func:`branch_energy_cdf` (``gram`` one matrix or one per symbol).
     max_values : int
         At most this many energies are tested (a fixed-seed subsample of symbols).
 
@@ -305,6 +320,13 @@ def check_energy_laws(
     large): a small p-value is a reliable sign of non-AWGN impairments (impulsive noise,
     interferers, leakage from a frequency offset); a large one is no proof of AWGN. Above
     ``max_values`` energies a fixed-seed subsample of symbols is tested.
+
+    With per-symbol Gram matrices the marginal test compares each branch's energies with the
+    mixture of their laws over the symbols, F̄_j = Σ_c f_c Σ_h π_h F(y; λ_hj(R_c)), f_c the
+    share of the tested symbols whose matrix is R_c (docs/estimator.md eq. 6b): the mean of
+    the symbols' own CDFs, which the empirical CDF of independent, not identically
+    distributed values estimates without bias; its variance, Σ_k F_k(1 − F_k)/n², is at most
+    F̄(1 − F̄)/n, so the Kolmogorov law keeps the test's level (conservative).
     """
     zz = _check_outputs(z, modulation)
     n, m = zz.shape
@@ -326,9 +348,16 @@ def check_energy_laws(
             raise ParameterError(f"noise_var {noise_var!r} must be a positive finite number")
         if not (math.isfinite(amplitude) and amplitude >= 0):
             raise ParameterError(f"amplitude {amplitude!r} must be a finite number >= 0")
-        r, _ = _check_gram(gram if modulation != "ook" else None, m)
+        table, row_gram = _check_symbol_grams(gram if modulation != "ook" else None, m, n)
         pi = _check_priors(priors, modulation)
-        lam = _noncentrality(amplitude, noise_var, r, modulation)
+        if row_gram is None:
+            lam = _noncentrality(amplitude, noise_var, table[0], modulation)
+        else:  # the mixture over the symbols' matrices, weighted by their shares (eq. 6b)
+            share = np.bincount(row_gram[idx], minlength=len(table)) / len(idx)
+            lam = np.concatenate(
+                [_noncentrality(amplitude, noise_var, r, modulation) for r in table]
+            )
+            pi = (share[:, None] * pi[None, :]).ravel()
         y = energy / (0.5 * noise_var)
         d, p = _ks_marginal_many(
             y, np.zeros(1, dtype=np.intp), np.array([len(y)]), lam[None], pi[None]
@@ -386,20 +415,29 @@ def _energy_laws_many(
         if modulation == "ook":
             lam = np.zeros((len(n), 2, 1))
             lam[:, 1, 0] = 2.0 * g
-        else:
+        elif prep.row_gram is None:
             lam = 2.0 * g[:, None, None] * np.abs(prep.grams.transpose(0, 2, 1)) ** 2  # eq. 6
+        else:
+            row_gram = prep.row_gram if rows is None else prep.row_gram[rows]
+            lam, priors = _mixture_laws(row_gram, n, prep.table, g, priors)
         y = (z.real**2 + z.imag**2) / np.repeat(0.5 * noise_var, n)[:, None]
         d, p = _ks_marginal_many(y, starts, n, lam, priors)
         stat = d.max(axis=1)
         pval = np.minimum(1.0, m * p.min(axis=1))  # Bonferroni over branches
         return [(float(a), float(b), int(k) * m) for a, b, k in zip(stat, pval, n, strict=True)]
     ends = prep.starts + prep.n
+
+    def gram_of(i: int, s: int, e: int):
+        if modulation == "ook":
+            return None
+        return prep.grams[i] if prep.row_gram is None else prep.table[prep.row_gram[s:e]]
+
     return [
         check_energy_laws(
             prep.z[s:e],
             amplitude=float(amplitude[i]),
             noise_var=float(noise_var[i]),
-            gram=None if modulation == "ook" else prep.grams[i],
+            gram=gram_of(i, s, e),
             modulation=modulation,
             priors=priors[i],
             symbols=None if symbols is None else symbols[s:e],
@@ -407,3 +445,25 @@ def _energy_laws_many(
         )
         for i, (s, e) in enumerate(zip(prep.starts, ends, strict=True))
     ]
+
+
+def _mixture_laws(
+    row_gram: np.ndarray, n: np.ndarray, table: np.ndarray, g: np.ndarray, priors: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Noncentralities (B, C·H, M) and weights (B, C·H) of the per-burst mixtures (eq. 6b).
+
+    Burst b's symbols use the matrices ``table[row_gram]``; its C_b distinct ones, with
+    shares f_bc, give the components (c, h) of weight f_bc·π_bh and noncentralities
+    λ_hj = 2γ_b|R_c[j, h]|²; bursts with fewer than C = max C_b matrices get components of
+    weight zero (which add exact zeros to the CDF).
+    """
+    counts = _class_counts(row_gram, n, len(table))  # (B, G)
+    present = counts > 0
+    c_max = int(present.sum(axis=1).max())
+    order = np.argsort(~present, axis=1, kind="stable")[:, :c_max]  # present entries first
+    share = np.take_along_axis(counts, order, axis=1) / n[:, None]  # 0 for the padding
+    rt = np.abs(table.transpose(0, 2, 1)) ** 2  # (G, h, j)
+    lam = 2.0 * g[:, None, None, None] * rt[order]  # (B, C, H, M)
+    b, _, h, m = lam.shape
+    weights = share[:, :, None] * priors[:, None, :]
+    return lam.reshape(b, c_max * h, m), weights.reshape(b, c_max * h)

@@ -121,78 +121,223 @@ def _check_output_arrays(zs: Sequence[np.ndarray], modulation: str) -> list[np.n
     return out
 
 
-def _check_grams(grams, m: int, count: int) -> tuple[np.ndarray, np.ndarray]:
-    """Gram matrices as complex (B, m, m) and whether each is the identity.
+def _stack_label(i: int, count: int, k: int) -> str:
+    return f"{_burst_label(i, count)}symbol {k}: "
 
-    ``grams`` is None, one (m, m) array for all bursts, or a sequence with one array (or None)
-    per burst. The checks run on the stack (eigenvalues with one ``eigvalsh`` call).
+
+def _dedupe_rows(stack: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct matrices of a finite (N, m, m) stack and the index of each row among them.
+
+    Exact equality (the stacks are built from a few matrices): a pass per distinct matrix,
+    comparing part by part (columns, not a reduction along the short axis), while there are
+    few, then ``np.unique`` on what is left.
+    """
+    m = stack.shape[1]
+    flat = stack.reshape(len(stack), m * m)
+    parts = np.ascontiguousarray(flat).view(np.float64)  # (N, 2m²): real and imaginary parts
+    inverse = np.full(len(flat), -1, dtype=np.intp)
+    uniques: list[np.ndarray] = []
+    open_rows = np.ones(len(flat), dtype=bool)
+    first = 0
+    while len(uniques) < _DEDUPE_PASSES:
+        ref = flat[first]
+        same = open_rows.copy()
+        for c, v in enumerate(parts[first]):
+            same &= parts[:, c] == v
+        inverse[same] = len(uniques)
+        uniques.append(ref.copy())
+        open_rows &= ~same
+        left = np.flatnonzero(open_rows[first:])
+        if not left.size:
+            break
+        first += int(left[0])
+    left = np.flatnonzero(open_rows)
+    if left.size:
+        rest, inv = np.unique(flat[left], axis=0, return_inverse=True)
+        inverse[left] = len(uniques) + inv.ravel()
+        uniques.extend(rest)
+    return np.array(uniques).reshape(-1, m, m), inverse
+
+
+#: Distinct matrices found by repeated comparison before :func:`_dedupe_rows` sorts instead.
+_DEDUPE_PASSES = 8
+
+
+@dataclass(frozen=True)
+class _GramSet:
+    """Checked Gram matrices of a batch.
+
+    ``grams`` (count, m, m) and ``identity`` (count,) hold one matrix per burst. Where some
+    burst has a per-symbol stack of more than one distinct matrix, ``table`` (G, m, m) holds
+    the per-burst matrices followed by the distinct matrices of the stacks, ``table_identity``
+    (G,) their identity flags and ``rows[b]`` (n_b,) the table entry of each symbol of burst
+    b; otherwise these are None (a stack of equal matrices is that matrix).
+    """
+
+    grams: np.ndarray
+    identity: np.ndarray
+    table: np.ndarray | None = None
+    table_identity: np.ndarray | None = None
+    rows: list | None = None
+
+
+def _check_grams(grams, m: int, count: int, n_symbols: Sequence[int] | None = None) -> _GramSet:
+    """Gram matrices as complex arrays with their identity flags (see :class:`_GramSet`).
+
+    ``grams`` is None, one (m, m) array for all bursts, or a sequence with one entry per
+    burst: None (identity), an (m, m) array, or an (n_b, m, m) stack with one matrix per
+    symbol (``n_symbols[b]`` = n_b). The checks run on the per-burst matrices and on the
+    distinct matrices of the stacks together (eigenvalues with one ``eigvalsh`` call).
     """
     if grams is None:
-        return np.broadcast_to(np.eye(m, dtype=complex), (count, m, m)), np.ones(count, bool)
+        eye = np.broadcast_to(np.eye(m, dtype=complex), (count, m, m))
+        return _GramSet(eye, np.ones(count, bool))
     if isinstance(grams, np.ndarray) and grams.ndim == 2:
-        r, identity = _check_grams([grams], m, 1)
-        return np.broadcast_to(r[0], (count, m, m)), np.full(count, identity[0])
+        one = _check_grams([grams], m, 1)
+        shared = np.broadcast_to(one.grams[0], (count, m, m))
+        return _GramSet(shared, np.full(count, one.identity[0]))
     if len(grams) != count:
         raise ParameterError(
             f"grams has {len(grams)} entries for {count} bursts; pass one per burst, one shared "
             f"matrix, or None"
         )
     stack = np.empty((count, m, m), dtype=complex)
+    per_symbol: dict[int, np.ndarray] = {}
     for i, g in enumerate(grams):
         if g is None:
             stack[i] = np.eye(m)
             continue
         r = np.asarray(g)
+        n_b = None if n_symbols is None else int(n_symbols[i])
+        if r.dtype.kind in "biufc" and r.ndim == 3 and r.shape[1:] == (m, m) and n_b is not None:
+            if r.shape[0] != n_b:
+                raise ParameterError(
+                    f"{_burst_label(i, count)}gram stack has {r.shape[0]} matrices for {n_b} "
+                    f"symbols; pass one ({m}, {m}) matrix per row of z, or one for the burst"
+                )
+            per_symbol[i] = np.asarray(r, dtype=complex)
+            stack[i] = np.eye(m) if n_b == 0 else per_symbol[i][0]
+            continue
         if r.dtype.kind not in "biufc" or r.shape != (m, m):
+            what = f" or an (n_symbols, {m}, {m}) stack, one per symbol" if n_b is not None else ""
             raise ParameterError(
                 f"{_burst_label(i, count)}gram has shape {r.shape} and dtype {r.dtype}; pass a "
-                f"({m}, {m}) complex Hermitian matrix of template correlations (identity for "
-                f"orthogonal tones)"
+                f"({m}, {m}) complex Hermitian matrix of template correlations{what} (identity "
+                f"for orthogonal tones)"
             )
         stack[i] = r
-    where = _burst_label
-    finite = np.isfinite(stack).all(axis=(1, 2))
+    where = [_burst_label(i, count) for i in range(count)]
+    uniques = np.zeros((0, m, m), dtype=complex)
+    inverse = np.zeros(0, dtype=np.intp)
+    if per_symbol:
+        keys = list(per_symbol)
+        sizes = np.array([len(per_symbol[i]) for i in keys])
+        rows = np.concatenate([per_symbol[i] for i in keys])
+        owners = np.repeat(np.array(keys, dtype=np.intp), sizes)  # burst of each row
+        finite = np.isfinite(rows).all(axis=(1, 2))
+        if not finite.all():
+            j = int(np.argmin(finite))
+            b = int(owners[j])
+            k = j - int(np.sum(sizes[: keys.index(b)]))
+            raise ParameterError(
+                f"{_stack_label(b, count, k)}gram contains NaN or inf; pass finite template "
+                f"correlations"
+            )
+        uniques, inverse = _dedupe_rows(rows)
+        _, first = np.unique(inverse, return_index=True)  # first row using each matrix
+        offset = dict(zip(keys, (np.cumsum(sizes) - sizes).tolist(), strict=True))
+        for j in first:
+            b = int(owners[j])
+            where.append(_stack_label(b, count, int(j) - offset[b]))
+    checked = np.concatenate([stack, uniques])
+    finite = np.isfinite(checked).all(axis=(1, 2))
     if not finite.all():
         i = int(np.argmin(finite))
         raise ParameterError(
-            f"{where(i, count)}gram contains NaN or inf; pass finite template correlations"
+            f"{where[i]}gram contains NaN or inf; pass finite template correlations"
         )
-    herm = np.max(np.abs(stack - stack.conj().transpose(0, 2, 1)), axis=(1, 2)) > 1e-8
+    herm = np.max(np.abs(checked - checked.conj().transpose(0, 2, 1)), axis=(1, 2)) > 1e-8
     if herm.any():
         i = int(np.argmax(herm))
         raise ParameterError(
-            f"{where(i, count)}gram is not Hermitian (R[i, j] must equal conj(R[j, i])); "
+            f"{where[i]}gram is not Hermitian (R[i, j] must equal conj(R[j, i])); "
             "rebuild it from the templates"
         )
-    diag = np.real(np.diagonal(stack, axis1=1, axis2=2))
+    diag = np.real(np.diagonal(checked, axis1=1, axis2=2))
     off = np.max(np.abs(diag - 1.0), axis=1) > 1e-6
     if off.any():
         i = int(np.argmax(off))
         raise ParameterError(
-            f"{where(i, count)}gram diagonal is {np.round(diag[i], 6).tolist()} but unit-energy "
+            f"{where[i]}gram diagonal is {np.round(diag[i], 6).tolist()} but unit-energy "
             f"templates give 1; normalise the templates"
         )
-    eig = np.linalg.eigvalsh(stack)
+    eig = np.linalg.eigvalsh(checked)
     with np.errstate(divide="ignore", invalid="ignore"):
         cond = np.where(eig[:, 0] > 0, eig[:, -1] / eig[:, 0], math.inf)
     bad = cond > MAX_GRAM_CONDITION
     if bad.any():
         i = int(np.argmax(bad))
         raise ParameterError(
-            f"{where(i, count)}gram has condition number {cond[i]:.3g} (> "
+            f"{where[i]}gram has condition number {cond[i]:.3g} (> "
             f"{MAX_GRAM_CONDITION:.0e}): the tones are too close to separate; check the tone "
             f"spacing or the symbol length"
         )
-    identity = np.max(np.abs(stack - np.eye(m)), axis=(1, 2)) < 1e-12
-    return stack, identity
+    identity_all = np.max(np.abs(checked - np.eye(m)), axis=(1, 2)) < 1e-12
+    identity = identity_all[:count].copy()
+    if not per_symbol:
+        return _GramSet(stack, identity)
+    classes = {}  # burst -> table entries (count + distinct matrix) of its symbols
+    mixed = False
+    start = 0
+    for i in per_symbol:
+        n_b = len(per_symbol[i])
+        inv = inverse[start : start + n_b]
+        start += n_b
+        if n_b and (inv == inv[0]).all():  # one matrix: the burst's own, as if passed alone
+            stack[i] = uniques[inv[0]]
+            identity[i] = identity_all[count + inv[0]]
+        elif n_b:
+            classes[i] = count + inv
+            mixed = True
+    if not mixed:
+        return _GramSet(stack, identity)
+    table = np.concatenate([stack, uniques])
+    table_identity = np.concatenate([identity, identity_all[count:]])
+    rows = [
+        classes[i] if i in classes else np.full(int(n_symbols[i]), i, dtype=np.intp)
+        for i in range(count)
+    ]
+    return _GramSet(stack, identity, table, table_identity, rows)
 
 
 def _check_gram(gram: np.ndarray | None, m: int) -> tuple[np.ndarray, bool]:
     """The Gram matrix as complex (m, m) and whether it is the identity."""
     if gram is None:
         return np.eye(m, dtype=complex), True
-    r, identity = _check_grams([gram], m, 1)
-    return r[0], bool(identity[0])
+    r = _check_grams([gram], m, 1)
+    return r.grams[0], bool(r.identity[0])
+
+
+def _check_symbol_grams(
+    gram: np.ndarray | None, m: int, n: int
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """A burst's gram argument as distinct matrices (G, m, m) and each symbol's index (n,).
+
+    ``gram`` is None, one (m, m) matrix (G = 1, index None) or an (n, m, m) per-symbol stack.
+    """
+    if gram is None:
+        return np.eye(m, dtype=complex)[None], None
+    r = _check_grams([gram], m, 1, [n])
+    if r.table is None:
+        return r.grams[:1], None
+    return r.table[1:], r.rows[0] - 1
+
+
+def _class_counts(row_gram: np.ndarray, n: np.ndarray, n_table: int) -> np.ndarray:
+    """Symbols of each burst (rows concatenated, n[b] each) per table entry: (B, n_table)."""
+    burst = np.repeat(np.arange(len(n)), n)
+    counts = np.bincount(burst * n_table + row_gram, minlength=len(n) * n_table)
+    return counts.reshape(len(n), n_table)
 
 
 def _ook_grams(grams, count: int) -> None:
@@ -223,6 +368,11 @@ class _Prepared:
     identity: np.ndarray  # (B,)
     index: np.ndarray  # (B,) position in the caller's list
     early: dict
+    # per-symbol Gram matrices (None: one per burst, ``grams``): distinct matrices (G, M, M),
+    # their identity flags (G,) and the entry of every row (N,)
+    table: np.ndarray | None = None
+    table_identity: np.ndarray | None = None
+    row_gram: np.ndarray | None = None
 
     def segment_sums(self, v: np.ndarray) -> np.ndarray:
         return np.add.reduceat(v, self.starts, axis=0)
@@ -240,6 +390,9 @@ class _Gathered:
     identity: np.ndarray  # (count,)
     n_all: np.ndarray  # (count,)
     count: int
+    table: np.ndarray | None = None  # as _Prepared
+    table_identity: np.ndarray | None = None
+    row_gram: np.ndarray | None = None  # (N,) table entry of each row of z
 
 
 def _gather(zs, grams, modulation: str) -> _Gathered:
@@ -250,13 +403,18 @@ def _gather(zs, grams, modulation: str) -> _Gathered:
     if modulation == "ook":
         _ook_grams(grams, count)
         grams = None
-    r_all, id_all = _check_grams(grams, m, count)
     n_all = np.array([len(a) for a in arrs], dtype=np.intp)
+    gs = _check_grams(grams, m, count, n_all)
     keep = np.flatnonzero(n_all >= MIN_SYMBOLS)
     n = n_all[keep]
     z = np.concatenate([arrs[i] for i in keep]) if keep.size else np.zeros((0, m), complex)
     _check_finite(z, np.cumsum(n) - n, keep, count)
-    return _Gathered(z, n, keep, r_all, id_all, n_all, count)
+    row_gram = None
+    if gs.rows is not None:
+        row_gram = np.concatenate([gs.rows[i] for i in keep] + [np.zeros(0, np.intp)])
+    return _Gathered(
+        z, n, keep, gs.grams, gs.identity, n_all, count, gs.table, gs.table_identity, row_gram
+    )
 
 
 def _prepare(zs, grams, modulation: str, method: str, priors: np.ndarray) -> _Prepared:
@@ -271,7 +429,7 @@ def _scaled(g: _Gathered, modulation: str, method: str, priors: np.ndarray) -> _
     early = {}
     for i in np.flatnonzero(g.n_all < MIN_SYMBOLS):
         early[int(i)] = _too_few(method, modulation, int(g.n_all[i]), priors)
-    keep, n, z = g.keep, g.n, g.z
+    keep, n, z, row_gram = g.keep, g.n, g.z, g.row_gram
     starts = np.cumsum(n) - n
     flat = z.view(np.float64).reshape(len(z), 2 * m)  # (re, im) columns
     if keep.size:
@@ -285,6 +443,8 @@ def _scaled(g: _Gathered, modulation: str, method: str, priors: np.ndarray) -> _
         rows = np.repeat(~zero, n)
         flat, keep, n, scale = flat[rows], keep[~zero], n[~zero], scale[~zero]
         starts = np.cumsum(n) - n
+        if row_gram is not None:
+            row_gram = row_gram[rows]
     flat = flat / np.repeat(scale, n)[:, None]
     z = flat.view(np.complex128)
     grams_k, identity = g.grams[keep], g.identity[keep]
@@ -293,7 +453,23 @@ def _scaled(g: _Gathered, modulation: str, method: str, priors: np.ndarray) -> _
     q = energy[:, 0].copy()
     for j in range(1, m):  # columns, not a reduction along the short axis (10x slower)
         q += energy[:, j]
-    if not identity.all():
+    if row_gram is not None:
+        # each symbol's own Gram matrix R_k (eq. 4 per symbol): the same expansion with the
+        # entries of R_k⁻¹ taken per row from the distinct matrices
+        rinv = np.linalg.inv(g.table)
+        rinv[g.table_identity] = np.eye(m)
+        rinv_rows = rinv[:, np.triu_indices(m)[0], np.triu_indices(m)[1]][row_gram]
+        qw = np.zeros(len(z))
+        t = 0
+        for i in range(m):
+            for j in range(i, m):
+                if i == j:
+                    qw += rinv_rows[:, t].real * energy[:, i]
+                else:
+                    qw += 2.0 * (rinv_rows[:, t] * (z[:, i].conj() * z[:, j])).real
+                t += 1
+        q = np.where(g.table_identity[row_gram], q, np.maximum(qw, 0.0))
+    elif not identity.all():
         # q_k = z_kᴴ R⁻¹ z_k with the Gram matrix of each symbol's burst (eq. 4), expanded
         # over the entries of the Hermitian R⁻¹: Σ_i c_ii|z_i|² + 2·Σ_{i<j} Re(c_ij·z̄_i·z_j)
         rinv = np.linalg.inv(grams_k)
@@ -304,7 +480,9 @@ def _scaled(g: _Gathered, modulation: str, method: str, priors: np.ndarray) -> _
             for j in range(i + 1, m):
                 qw += 2.0 * (np.repeat(rinv[:, i, j], n) * (z[:, i].conj() * z[:, j])).real
         q = np.where(np.repeat(identity, n), q, np.maximum(qw, 0.0))
-    return _Prepared(z, q, starts, n, scale, grams_k, identity, keep, early)
+    return _Prepared(
+        z, q, starts, n, scale, grams_k, identity, keep, early, g.table, g.table_identity, row_gram
+    )
 
 
 def _check_finite(z, starts, keep, count) -> None:
@@ -321,10 +499,14 @@ def _check_finite(z, starts, keep, count) -> None:
         )
 
 
-def _log_normalisers(n: np.ndarray, m: int, grams: np.ndarray) -> np.ndarray:
-    """−N·M·log π − N·log det R per burst: the constants left out of ℓ."""
-    logdet = np.linalg.slogdet(grams)[1]
-    return -n * m * math.log(math.pi) - n * logdet
+def _log_normalisers(n: np.ndarray, m: int, prep: _Prepared) -> np.ndarray:
+    """−N·M·log π − Σ_k log det R_k per burst: the constants left out of ℓ."""
+    if prep.row_gram is None:
+        logdet = np.linalg.slogdet(prep.grams)[1]
+        return -n * m * math.log(math.pi) - n * logdet
+    logdet = np.linalg.slogdet(prep.table)[1]
+    counts = _class_counts(prep.row_gram, n, len(prep.table))
+    return -n * m * math.log(math.pi) - counts @ logdet
 
 
 def _assemble(count: int, prep: _Prepared, fits: list[NoncoherentFit]) -> list[NoncoherentFit]:
@@ -352,7 +534,11 @@ def _take_prepared(prep: _Prepared, idx: np.ndarray) -> _Prepared:
         grams=prep.grams[idx],
         identity=prep.identity[idx],
         index=prep.index[idx],
+        row_gram=None if prep.row_gram is None else prep.row_gram[rows],
     )
 
 
+#: The ``grams`` argument of the batch fits: None (orthogonal tones), one (M, M) matrix for all
+#: bursts, or one entry per burst: None, an (M, M) matrix, or an (n_b, M, M) stack holding
+#: symbol k's own Gram matrix R_k in row k.
 Grams = np.ndarray | Sequence[np.ndarray | None] | None

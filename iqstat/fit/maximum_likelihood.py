@@ -155,7 +155,7 @@ def _ml_results(
         )
     # undo the scaling of z: A·s, N0·s², log-density − 2·N·M·log s (Jacobian of z/s)
     s = prep.scale
-    log_norm = _log_normalisers(n, m, prep.grams) - 2.0 * n * m * np.log(s)
+    log_norm = _log_normalisers(n, m, prep) - 2.0 * n * m * np.log(s)
     return [
         _build(
             method=method,
@@ -477,6 +477,7 @@ def _da_prepared(
                 grams=prep.grams[keep],
                 identity=prep.identity[keep],
                 index=prep.index[keep],
+                row_gram=None if prep.row_gram is None else prep.row_gram[rows],
             )
             if not keep.size:
                 return _assemble(count_all, prep, [])
