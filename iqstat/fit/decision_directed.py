@@ -202,7 +202,8 @@ def fit_dd(
     ----------
     z : ndarray, complex, shape (n_symbols, n_branches)
     gram : ndarray, optional
-        Template Gram matrix (see :func:`fit_nda`).
+        Template Gram matrix, or one per symbol (see :func:`fit_nda`); enters through
+        q_k = z_kᴴR_k⁻¹z_k only (E[q_k] = M·N0 + A² for every R_k with unit diagonal).
     modulation : {"2fsk", "4fsk", "ook"}
     gof : bool
         Run the goodness-of-fit test with the DD parameters.

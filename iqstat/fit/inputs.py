@@ -2,9 +2,11 @@
 
 Checks the correlator outputs (dtype, shape, finite values), the priors and the template Gram
 matrices (Hermitian, unit diagonal, condition number at most ``MAX_GRAM_CONDITION``), each
-failure a one-line ``ParameterError``. Then concatenates the bursts, scales each by its
-largest component and computes the whitened energies q_k = z_kᴴR⁻¹z_k (docs/estimator.md
-eq. 4) in a few numpy calls: the ``_Prepared`` batch every estimator works on.
+failure a one-line ``ParameterError``; a burst's matrix may be one per symbol (an
+(n_b, M, M) stack, reduced to its distinct matrices and an index per symbol). Then
+concatenates the bursts, scales each by its largest component and computes the whitened
+energies q_k = z_kᴴR_k⁻¹z_k (docs/estimator.md eq. 4) in a few numpy calls: the ``_Prepared``
+batch every estimator works on.
 ``_assemble`` puts the per-burst results back in the caller's order, together with the early
 (failed) results of the bursts too short or all zero.
 """

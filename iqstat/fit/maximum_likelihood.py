@@ -215,8 +215,11 @@ def fit_nda_many(
     ----------
     zs : sequence of ndarray, complex, shape (n_b, n_branches)
         Correlator outputs of each burst (any number of symbols each).
-    grams : ndarray of shape (n_branches, n_branches), or a sequence of them, optional
-        One Gram matrix for all bursts, one per burst (None entries: identity), or None.
+    grams : ndarray of shape (n_branches, n_branches), or a sequence, optional
+        One Gram matrix for all bursts, or one entry per burst: None (identity), an
+        (n_branches, n_branches) matrix, or an (n_b, n_branches, n_branches) stack whose row
+        k is symbol k's own Gram matrix R_k (symbols of different lengths,
+        docs/estimator.md eq. 1b); or None (orthogonal tones).
     modulation, priors, estimate_p_on, gof
         As :func:`fit_nda`, shared by all bursts.
 
@@ -334,9 +337,10 @@ def fit_nda(
     ----------
     z : ndarray, complex, shape (n_symbols, n_branches)
         Correlator outputs, one column per tone (lowest first); OOK: one column (or 1-D).
-    gram : ndarray, complex, shape (n_branches, n_branches), optional
-        Gram matrix of the unit-energy templates, R[i, j] = <t_i, t_j> (R[i, i] = 1). Omit for
-        orthogonal tones (identity). Condition number above 1e6 raises ParameterError.
+    gram : ndarray, complex, shape (n_branches, n_branches) or (n_symbols, n_branches, n_branches)
+        Gram matrix of the unit-energy templates, R[i, j] = <t_i, t_j> (R[i, i] = 1), or one
+        per symbol (row k: R_k of symbol k, docs/estimator.md eq. 1b). Omit for orthogonal
+        tones (identity). Condition number above 1e6 raises ParameterError.
     modulation : {"2fsk", "4fsk", "ook"}
     priors : sequence of float, optional
         FSK: probability of each tone (uniform if omitted). OOK: (p_off, p_on), default
@@ -357,7 +361,8 @@ def fit_nda(
 
         ℓ_k = −M·log(πN0) − log det R − q_k/N0 + log Σ_h π_h·[e^{−A²/N0}·I0(2A·r_kh/N0)]^{s_h}
 
-    with q_k = z_kᴴR⁻¹z_k, r_kh = |z_k,h| (FSK) or |z_k| (OOK "on"; s = 0 for "off"). It is
+    with q_k = z_kᴴR⁻¹z_k (R_k⁻¹ and log det R_k with per-symbol matrices), r_kh = |z_k,h|
+    (FSK) or |z_k| (OOK "on"; s = 0 for "off"). It is
     maximised over (log A, log N0[, logit p_on]) by damped Newton iterations with the analytic
     gradient and Hessian, in the log domain (log I0 = log i0e + x), started from the
     decision-directed moments — above the optimum, so the iteration never creeps to the
@@ -556,7 +561,7 @@ def fit_da(
     symbols : ndarray of int, shape (n_symbols,)
         Tone index sent (FSK, lowest tone = 0) or 0/1 off/on (OOK).
     gram : ndarray, optional
-        Template Gram matrix (see :func:`fit_nda`).
+        Template Gram matrix, or one per symbol (see :func:`fit_nda`).
     modulation : {"2fsk", "4fsk", "ook"}
     gof : bool
         Run the goodness-of-fit test (conditional on the known symbols).
