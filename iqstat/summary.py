@@ -172,18 +172,24 @@ def profile_mismatch(
 ) -> str | None:
     """Why the profile evidently does not describe the capture, or None.
 
-    Evidence: the capture's blind symbol rate or tone spacing contradicts the profile's; or,
-    among the measured bursts, most fail the energy-law test while the frame is found in
-    fewer than half; or most frames match their header far worse than their payload.
+    Evidence: the capture's blind symbol rate or tone spacing contradicts the profile's
+    (unless the profile's header is found in at least half the measured bursts at the
+    profile's rates); or, among the measured bursts, most fail the energy-law test while the
+    frame is found in fewer than half; or most frames match their header far worse than their
+    payload.
     """
-    if rate_flags:
-        return ", ".join(f.replace("-", " ") for f in rate_flags)
     measured = [r for r in results if r.fit is not None]
+    n = len(measured)
+    framed = sum(r.frame is not None and r.frame.found for r in measured)
+    if rate_flags:
+        # The profile's header found in most bursts at the profile's rates outweighs a blind
+        # estimate (which can fail where the profile's rates work: far oversampled bursts).
+        if layout.n_header_bits and n and framed >= 0.5 * n:
+            return None
+        return ", ".join(f.replace("-", " ") for f in rate_flags)
     if not measured:
         return None
-    n = len(measured)
     not_awgn = sum("not-awgn" in r.flags for r in measured)
-    framed = sum(r.frame is not None and r.frame.found for r in measured)
     header_bad = sum("header-mismatch" in r.flags for r in measured)
     if layout.n_header_bits and not_awgn >= 0.5 * n and framed < 0.5 * n:
         return "branch energies do not follow the model and the frame is rarely found"
