@@ -396,6 +396,10 @@ def _search_timing(
 #: mixed matrix misses is that times Es/N0 of the noise, 1 % at 20 dB (at 52.08 samples per
 #: symbol it is 2.7e-5: the mixed matrix stays; at 6.51, 6.4e-3).
 GRAM_CLASS_TOL = 1e-4
+#: Outputs are scaled to equal amplitudes, √(P/N_k), when the symbols' energy spread,
+#: share·(1 − share)/P², exceeds this (times Es/N0 it is the noise the spread fakes: 1 % at
+#: 20 dB; 2.7e-5 at 52.08 samples per symbol, where outputs stay as they are).
+LENGTH_SPREAD_TOL = 1e-4
 
 
 def _gram_classes(tones, timing: SymbolTiming, fs: float):
@@ -432,16 +436,19 @@ def _fit_gram(w: _Work, lo: int, hi: int):
 def _fit_z(w: _Work, lo: int, hi: int) -> np.ndarray:
     """Correlator outputs of symbols [lo, hi) as the fit takes them.
 
-    Where the symbols' lengths matter (per-symbol Gram matrices, few samples per symbol),
-    each output is scaled by √(P/N_k): a unit-energy template over N_k samples gives the sent
+    Where the symbols' lengths matter (per-symbol Gram matrices, or an energy spread above
+    LENGTH_SPREAD_TOL: few samples per symbol), each output is scaled by √(P/N_k): a
+    unit-energy template over N_k samples gives the sent
     tone an amplitude A·√N_k, which the fit's one amplitude would read as noise (−0.4 dB at
     20 dB, 6.51 samples per symbol); scaled, the amplitude is A·√P for every symbol and only
     the noise level varies, by N_k/P (a relative error of its mean of var(N_k)/P², 0.6 %).
     """
     z = w.z_all[lo:hi]
-    if w.sym_grams is None:
-        return z
     t = w.timing
+    p = t.period_samples
+    share = p - math.floor(p)
+    if w.sym_grams is None and share * (1.0 - share) / p**2 <= LENGTH_SPREAD_TOL:
+        return z
     n_k = np.diff(symbol_boundaries(t.t0_samples, t.period_samples, t.n_symbols))[lo:hi]
     return z * np.sqrt(t.period_samples / n_k)[:, None]
 

@@ -664,8 +664,8 @@ def test_a_burst_faded_in_its_middle_is_one_burst_when_its_length_is_known():
 
 def test_fast_links_with_short_gaps_keep_noise_frames():
     # 38.4 kBd bursts of 448 symbols last 11.7 ms and their gaps 4 ms: with the default 1 ms
-    # frames (256 samples) no frame of a gap survived the one-frame guards, and the noise PSD
-    # was lost. With the burst length known, frames are at most 1/32 of a burst.
+    # frames (256 samples) few frames of a gap survived the one-frame guards, and the noise
+    # PSD could be lost. With the burst length known, frames are at most 1/16 of a burst.
     rng = np.random.default_rng(17)
     fs, rs, n_sym = 250e3, 38_400.0, 448
     amp = math.sqrt(10**1.2 * NOISE_VAR * rs / fs)  # 12 dB Eb/N0 (P = Eb/N0·σ²·Rb/fs)
@@ -684,7 +684,7 @@ def test_fast_links_with_short_gaps_keep_noise_frames():
         x[a : a + s.size] += s
     cap = Capture.from_array(x.astype(np.complex64), fs)
     det = detect_bursts(cap, expected_burst_s=n_sym / rs)
-    assert det.frame_samples == 64  # 2 917 samples / 32 = 91 -> 64
+    assert det.frame_samples == 128  # 2 917 samples / 16 = 182 -> 128
     assert len(det.bursts) == len(starts)
     n0 = 10 ** (det.noise_psd_db_per_hz / 10)
     assert det.noise_psd_dof > 0

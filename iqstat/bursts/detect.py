@@ -464,10 +464,11 @@ def _detect_bursts(
     if frame_samples is None:
         L = _default_frame_samples(fs)
         if expected_burst_s is not None and expected_burst_s > 0:
-            # Short bursts (fast links) have short gaps too: frames of at most 1/32 of a burst,
-            # so that a gap of a third of a burst still holds whole noise frames beside its
-            # one-frame guards (a power of two, at least 32 samples).
-            cap = 2 ** max(5, math.floor(math.log2(max(expected_burst_s * fs / 32.0, 1.0))))
+            # Short bursts (fast links) have short gaps too: frames of at most 1/16 of a burst,
+            # so that a gap of a fifth of a burst still holds whole noise frames beside its
+            # one-frame guards (a power of two, at least 32 samples). Not shorter: at 1/32 a
+            # 4-FSK burst's frames (64 samples, 25 bins) split and overlapped its detections.
+            cap = 2 ** max(5, math.floor(math.log2(max(expected_burst_s * fs / 16.0, 1.0))))
             L = min(L, cap)
     else:
         if int(frame_samples) != frame_samples or int(frame_samples) < 16:
