@@ -246,6 +246,7 @@ class FactsAccumulator:
         n = self.capture.n_samples
         if (
             n
+            and self.top > 0  # an all-zero recording has no clip level, only silence
             and self.n_top > PILE_FRACTION * 2 * n
             and self.n_top > PILE_RATIO * max(self.n_near, 1)
         ):

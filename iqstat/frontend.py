@@ -106,6 +106,10 @@ def measure_iq_correction(noise: np.ndarray) -> IqCorrection:
     if not applied:
         return IqCorrection(1.0 + 0j, 0j, rho, irr, n, False)
     vals, vecs = np.linalg.eigh(np.array([[a, c], [c, b]]))
+    if vals[0] <= 1e-9 * total:
+        # I or Q (or a combination) carries nothing: a dead branch (or a real-valued stream
+        # stored as complex) cannot be whitened back; leave it and say how improper it is.
+        return IqCorrection(1.0 + 0j, 0j, rho, irr, n, False)
     w = (vecs * (1.0 / np.sqrt(vals))) @ vecs.T * math.sqrt(total / 2.0)
     alpha = complex(w[0, 0] + w[1, 1], w[1, 0] - w[0, 1]) / 2
     beta = complex(w[0, 0] - w[1, 1], w[1, 0] + w[0, 1]) / 2

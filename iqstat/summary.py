@@ -173,23 +173,26 @@ def profile_mismatch(
     """Why the profile evidently does not describe the capture, or None.
 
     Evidence: the capture's blind symbol rate or tone spacing contradicts the profile's
-    (unless the profile's header is found in at least half the measured bursts at the
-    profile's rates); or, among the measured bursts, most fail the energy-law test while the
-    frame is found in fewer than half; or most frames match their header far worse than their
-    payload.
+    (unless at the profile's rates at least half the measured bursts are framed, and fewer
+    than half fail the energy-law test or show a detection loss); or, among the measured
+    bursts, most fail the energy-law test while the frame is found in fewer than half; or
+    most frames match their header far worse than their payload.
     """
     measured = [r for r in results if r.fit is not None]
     n = len(measured)
     framed = sum(r.frame is not None and r.frame.found for r in measured)
+    not_awgn = sum("not-awgn" in r.flags for r in measured)
+    lossy = sum("detection-loss" in r.flags for r in measured)
     if rate_flags:
-        # The profile's header found in most bursts at the profile's rates outweighs a blind
-        # estimate (which can fail where the profile's rates work: far oversampled bursts).
-        if layout.n_header_bits and n and framed >= 0.5 * n:
+        # Most bursts framed at the profile's rates, their energies following the model and
+        # no detection loss, outweigh a blind estimate (which can fail where the profile's
+        # rates work). A wrong tone spacing still finds headers (the decisions survive it)
+        # but loses energy and fails the energy laws: then the blind estimate stands.
+        if layout.n_header_bits and n and framed >= 0.5 * n and max(not_awgn, lossy) < 0.5 * n:
             return None
         return ", ".join(f.replace("-", " ") for f in rate_flags)
     if not measured:
         return None
-    not_awgn = sum("not-awgn" in r.flags for r in measured)
     header_bad = sum("header-mismatch" in r.flags for r in measured)
     if layout.n_header_bits and not_awgn >= 0.5 * n and framed < 0.5 * n:
         return "branch energies do not follow the model and the frame is rarely found"

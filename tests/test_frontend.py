@@ -69,3 +69,12 @@ def test_a_balanced_receiver_gets_no_correction():
 def test_degenerate_inputs():
     assert not measure_iq_correction(np.zeros(10, np.complex64)).applied
     assert not measure_iq_correction(np.ones(1, np.complex64)).applied
+
+
+def test_a_dead_branch_is_left_alone_without_warnings():
+    # Q identically zero (a real-valued stream stored as complex, or a dead ADC): the
+    # covariance is singular and cannot be whitened; the impropriety says so (1.0).
+    x = _noise(3).real.astype(np.complex64)
+    corr = measure_iq_correction(x)
+    assert not corr.applied
+    assert corr.improperness == pytest.approx(1.0)

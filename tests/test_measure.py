@@ -340,6 +340,7 @@ def test_all_zero_and_too_short_captures():
     report = measure_capture(Capture.from_array(np.zeros(100_000, np.complex64), FS), profile)
     assert "no-bursts" in report.summary.flags
     assert "only zeros" in report.summary.message
+    assert "clipping" not in report.summary.flags  # silence has no clip level
     json.dumps(report_to_dict(report), allow_nan=False)
     with pytest.raises(Exception, match="too short to find bursts"):
         measure_capture(Capture.from_array(np.zeros(1000, np.complex64) + 0.01, FS), profile)
@@ -493,3 +494,21 @@ def test_far_oversampled_capture_blind_rates_and_profile_check():
     # these are 3 bursts of ~150 symbols at 14 dB)
     assert blind.link.symbol_rate_hz == pytest.approx(rs, rel=1e-3)
     assert blind.link.tone_spacing_hz == pytest.approx(rs, rel=0.01)
+
+
+def test_a_tone_spacing_twice_the_true_one_withholds_the_headline():
+    # The decisions survive a wrong spacing (the upper tone is still the upper one), so the
+    # header is found in every burst; but the correlators miss most of the energy and the
+    # energies fail the noise laws. The blind spacing (4.8 kHz against the profile's 9.6)
+    # then stands: no made-up figure.
+    doc = _doc("2fsk", 12.0, count=4)
+    report, _ = _run(doc)
+    assert report.summary.ebn0_db is not None
+    wrong = {k: doc[k] for k in ("link", "frame", "requirement")}
+    wrong["link"] = dict(doc["link"], tone_spacing=9600.0)
+    sc = scenario_from_dict(doc)
+    syn = synthesize(sc, seed=1)
+    r = measure_capture(Capture.from_array(syn.samples, FS), profile_from_dict(wrong))
+    s = r.summary
+    assert "tone-spacing-mismatch" in s.flags and "profile-mismatch" in s.flags
+    assert s.ebn0_db is None and s.margin_db is None

@@ -647,11 +647,12 @@ def _detect_bursts(
             else _lines_in_gaps(survey.lines, x_gap, survey.noise_per_bin, fs)
         )
     else:
-        # Without gaps nothing can be confirmed: the survey's candidates are what is known
-        # (a carrier strong enough to hide the gaps is one).
-        iq = NO_CORRECTION
-        lines = () if survey is None else survey.lines
-        noise_without_lines = None
+        # Without gap frames nothing can be confirmed. A single burst filling the capture looks
+        # as steady to the survey as a carrier does: no lines then. Several bursts with no
+        # gap frame left between them (a carrier in the band lifts the floor so that the
+        # detections swallow the gaps) keep the survey's candidates.
+        iq, noise_without_lines = NO_CORRECTION, None
+        lines = survey.lines if survey is not None and len(joined) > 1 else ()
     p_gap = fp.band[gap_frames].astype(np.float64)
     if fp.dc_in_band and dc:
         p_gap = _without_dc(p_gap, fp.sums[gap_frames], L, dc)
