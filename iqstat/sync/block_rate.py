@@ -385,8 +385,8 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
                 "coarse_clock_offset_ppm": float((p0 / period - 1.0) * 1e6),
                 "fine_moves": 0,
                 "fine_shift_samples": 0.0,
-                "residual_gain_db": float("nan"),
-                "matched_fraction": float("nan"),
+                "residual_gain_db": None,  # not computed on the block grid
+                "matched_fraction": None,
             },
             message=message,
             reliable=bool(reliable),
