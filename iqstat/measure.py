@@ -37,6 +37,8 @@ from iqstat.estimate import (
 )
 from iqstat.excise import cut_bands, notch_bands
 from iqstat.facts import CaptureFacts, compute_facts
+from iqstat.fading import MIN_SYMBOLS as FADING_MIN_KNOWN
+from iqstat.fading import FadingEstimate, fading_from_energies
 from iqstat.fit import NoncoherentFit, decide_symbols, fit_bursts_many, fit_nda_many
 from iqstat.formats.open import open_capture
 from iqstat.patterns import BitCheck, check_known_many, check_prbs_many, prbs_bits
@@ -564,6 +566,7 @@ class _Work:
     fit_dd: NoncoherentFit | None = None
     band: tuple[float | None, float | None] = (None, None)  # in-band energy, its width [Hz]
     available: AvailableEbN0 | None = None
+    fading: FadingEstimate | None = None
     predicted_ber: float | None = None
 
 
@@ -892,6 +895,45 @@ def _stage_fit(works: list[_Work], ctx: _Context) -> None:
     _batched(works, fits)
 
 
+#: Without known symbols the fading test uses the decisions only from this Es/N0 [dB] up:
+#: below it wrong decisions pick noise branches and spread the energies by themselves.
+FADING_DECIDED_MIN_ESN0_DB = 8.0
+
+
+def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
+    """Fading within each burst from the spread of its sent tone's energies (iqstat.fading)."""
+    m = ctx.profile.modulation
+    for w in batch:
+        fit = w.fit
+        if fit is None or not fit.converged or fit.noise_var is None:
+            continue
+        z = _fit_z(w, *w.sel)
+        sent = None if w.known is None else np.asarray(w.known[: len(z)])
+        if sent is None or np.count_nonzero(sent >= 0) < FADING_MIN_KNOWN:
+            if fit.esn0_db is None or fit.esn0_db < FADING_DECIDED_MIN_ESN0_DB:
+                continue
+            sent = w.hard[w.sel[0] : w.sel[1]][: len(z)]
+        use = sent >= 0
+        energy = z.real**2 + z.imag**2
+        if m == "ook":
+            on = use & (sent == 1)  # the carrier's energy: "on" symbols only
+            e, rest = energy[on, 0], energy[use & (sent == 0), 0]
+        else:
+            rows = np.flatnonzero(use)
+            e = energy[rows, sent[rows]]
+            others = np.ones(energy.shape, dtype=bool)
+            others[rows, sent[rows]] = False
+            rest = energy[rows][others[rows]]
+        # The noise from the branches without the sent tone (or the "off" symbols): the fit's
+        # N0 takes part of a fading amplitude's spread for noise. Where tones leak into each
+        # other (|ρ| above 0.1), the fit's figure.
+        leaky = m != "ook" and float(np.max(np.abs(w.gram - np.eye(len(w.gram))))) > 0.1
+        n0 = fit.noise_var if leaky or rest.size < FADING_MIN_KNOWN else float(rest.mean())
+        w.fading = fading_from_energies(e, n0)
+        if w.fading is not None and w.fading.fading:
+            w.flags.append("fading")
+
+
 def _stage_available(batch: list[_Work], ctx: _Context) -> None:
     """Eb/N0 from power alone (iqstat.available), in the band of the outer tones ±
     AVAILABLE_BAND_SYMBOLS symbol rates: measured in that band, not the full capture band,
@@ -971,6 +1013,7 @@ def _finish(w: _Work, ctx: _Context) -> None:
         fit_dd=w.fit_dd,
         bit_check=w.check,
         available=w.available,
+        fading=w.fading,
         predicted_ber=w.predicted_ber,
         flags=(),
         message=fit.message,
@@ -1000,6 +1043,7 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     _batched(works, lambda batch: _stage_frame(batch, ctx))
     _each(works, lambda w: _refine_on_known(w, ctx))
     _stage_fit(works, ctx)
+    _batched(works, lambda batch: _stage_fading(batch, ctx))
     _batched(works, lambda batch: _stage_available(batch, ctx))
     _batched(works, lambda batch: _stage_predict(batch, ctx))
     _each(works, lambda w: _finish(w, ctx))
@@ -1096,6 +1140,7 @@ def _unmeasured(
         fit_dd=None,
         bit_check=None,
         available=None,
+        fading=None,
         predicted_ber=None,
         flags=(flag,),
         message=message,

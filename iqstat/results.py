@@ -12,6 +12,7 @@ from iqstat.available import AvailableEbN0, detection_loss_ci95
 from iqstat.bursts import BurstDetection
 from iqstat.estimate import LinkEstimate
 from iqstat.facts import CaptureFacts
+from iqstat.fading import FadingEstimate
 from iqstat.fit import NoncoherentFit
 from iqstat.patterns import BitCheck
 from iqstat.profile import LinkProfile
@@ -39,6 +40,7 @@ class BurstResult:
     fit_dd: NoncoherentFit | None
     bit_check: BitCheck | None
     available: AvailableEbN0 | None
+    fading: FadingEstimate | None
     predicted_ber: float | None
     power_dbfs: float
     flags: tuple[str, ...]
@@ -104,6 +106,8 @@ class BurstResult:
             "available_ebn0_db_ci95": self.available_ebn0_db_ci95,
             "detection_loss_db": self.detection_loss_db,
             "detection_loss_db_ci95": self.detection_loss_db_ci95,
+            "rician_k_db": None if self.fading is None else self.fading.k_db,
+            "fading": None if self.fading is None else self.fading.to_dict(),
             "predicted_ber": self.predicted_ber,
             "bit_errors": bc.bit_errors if counted else None,
             "bits_checked": bc.bits_checked if counted else None,

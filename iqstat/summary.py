@@ -17,6 +17,7 @@ from iqstat.units import db
 
 #: Per-burst flags that also flag the capture when any burst raises them.
 BURST_FLAGS_RAISED = (
+    "fading",
     "sync-not-found",
     "header-mismatch",
     "pattern-not-locked",

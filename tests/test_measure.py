@@ -512,3 +512,18 @@ def test_a_tone_spacing_twice_the_true_one_withholds_the_headline():
     s = r.summary
     assert "tone-spacing-mismatch" in s.flags and "profile-mismatch" in s.flags
     assert s.ebn0_db is None and s.margin_db is None
+
+
+def test_fading_within_bursts_is_flagged_with_its_k_factor():
+    # iqstat synth's Rician fading (K = 3 dB, 20 Hz Doppler: ~2 fade cycles per burst). The
+    # one-amplitude fit cannot follow it; the sent tone's energy spread says so. Within one
+    # burst only part of the fading distribution is seen, so K reads high: a diagnosis, not
+    # a channel measurement. Without fading, never flagged (see test_fading for its rate).
+    doc = _doc("2fsk", 12.0, count=6, rician_k_db=3.0, doppler_hz=20.0)
+    doc["bursts"]["gap_s"] = 0.03
+    report, _ = _run(doc)
+    faded = [b for b in report.bursts if "fading" in b.flags]
+    assert len(faded) >= 3 and "fading" in report.summary.flags
+    assert all(b.fading.k_db < 15.0 for b in faded)
+    steady, _ = _run(_doc("2fsk", 12.0, count=6))
+    assert "fading" not in steady.summary.flags

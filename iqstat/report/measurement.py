@@ -53,6 +53,8 @@ FLAG_TEXT = {
     "link-not-estimated": "carrier or rates could not be estimated on some bursts",
     "symbol-rate-mismatch": "the symbol rate in the capture differs from the profile's",
     "tone-spacing-mismatch": "the tone spacing in the capture differs from the profile's",
+    "fading": "the sent tone's energy varies within bursts beyond what noise allows (fading; "
+    "see rician_k_db): the one-amplitude fit gives an effective Eb/N0",
     "interference": "a continuous narrowband signal (in the gaps too) lies in the signal band: "
     "the figures count it as noise",
 }
