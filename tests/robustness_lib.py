@@ -84,7 +84,7 @@ CASES = {
         10,
         {"rician_k_db": 6.0, "doppler_hz": 20.0},
         {},
-        "not-awgn",
+        "fading",
     ),
     "clipping": ("2fsk", 4800, 4800, 250e3, (-500, 500), 10, {"clip_dbfs": -6.0}, {}, "clipping"),
     "long-50ppm": (
