@@ -1,0 +1,179 @@
+"""The last stages of a batch: the fits, fading, power-based Eb/N0, predicted BER, the result.
+
+:func:`_stage_fit` runs the NDA (headline), decision-directed and data-aided fits
+(:func:`iqstat.fit.fit_bursts_many`). :func:`_stage_fading` tests the sent tone's energies
+against the constant-amplitude law (:mod:`iqstat.fading`; on decisions only from
+FADING_DECIDED_MIN_ESN0_DB up). :func:`_stage_available` gives Eb/N0 from power alone
+(:mod:`iqstat.available`). :func:`_stage_predict` gives the BER theory predicts at the fitted
+Eb/N0 for the burst's tone correlation (the mean over the two symbol lengths' correlations
+where they differ). :func:`_finish` sets the flags (goodness of fit below GOF_FLAG_PVALUE,
+detection loss above DETECTION_LOSS_FLAG_DB) and builds the :class:`~iqstat.results.BurstResult`.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from iqstat import theory
+from iqstat.available import available_ebn0
+from iqstat.fading import MIN_SYMBOLS as FADING_MIN_KNOWN
+from iqstat.fading import fading_from_energies
+from iqstat.fit import fit_bursts_many
+from iqstat.measure.gram_classes import _fit_gram, _fit_z, _theory_rho
+from iqstat.measure.work import MIN_FIT_SYMBOLS, _batched, _Context, _Work
+from iqstat.results import BurstResult
+
+#: Without known symbols the fading test uses the decisions only from this Es/N0 [dB] up:
+#: below it wrong decisions pick noise branches and spread the energies by themselves.
+FADING_DECIDED_MIN_ESN0_DB = 8.0
+
+#: Goodness-of-fit p-value below which the branch energies are flagged as not AWGN-like.
+GOF_FLAG_PVALUE = 1e-3
+
+#: Detection loss (available − detected Eb/N0) above which the burst is flagged, when its
+#: 95 % interval also lies above zero (a loss the noise of the two figures cannot explain).
+DETECTION_LOSS_FLAG_DB = 1.5
+
+
+def _stage_fit(works: list[_Work], ctx: _Context) -> None:
+    """The NDA (headline), decision-directed and data-aided fits of the batch."""
+    m = ctx.profile.modulation
+
+    def fits(batch: list[_Work]) -> None:
+        out = fit_bursts_many(
+            [_fit_z(w, *w.sel) for w in batch],
+            [_fit_gram(w, *w.sel) for w in batch],
+            modulation=m,
+            known_list=[w.known for w in batch],
+            min_known=MIN_FIT_SYMBOLS,
+        )
+        for w, (nda, dd, da) in zip(batch, out, strict=True):
+            w.fit, w.fit_dd, w.fit_da = nda, dd, da
+
+    _batched(works, fits)
+
+
+def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
+    """Fading within each burst from the spread of its sent tone's energies (iqstat.fading)."""
+    m = ctx.profile.modulation
+    for w in batch:
+        fit = w.fit
+        if fit is None or not fit.converged or fit.noise_var is None:
+            continue
+        z = _fit_z(w, *w.sel)
+        sent = None if w.known is None else np.asarray(w.known[: len(z)])
+        if sent is None or np.count_nonzero(sent >= 0) < FADING_MIN_KNOWN:
+            if fit.esn0_db is None or fit.esn0_db < FADING_DECIDED_MIN_ESN0_DB:
+                continue
+            sent = w.hard[w.sel[0] : w.sel[1]][: len(z)]
+        use = sent >= 0
+        energy = z.real**2 + z.imag**2
+        if m == "ook":
+            on = use & (sent == 1)  # the carrier's energy: "on" symbols only
+            e, rest = energy[on, 0], energy[use & (sent == 0), 0]
+        else:
+            rows = np.flatnonzero(use)
+            e = energy[rows, sent[rows]]
+            others = np.ones(energy.shape, dtype=bool)
+            others[rows, sent[rows]] = False
+            rest = energy[rows][others[rows]]
+        # The noise from the branches without the sent tone (or the "off" symbols): the fit's
+        # N0 takes part of a fading amplitude's spread for noise. Where tones leak into each
+        # other (|ρ| above 0.1), the fit's figure.
+        leaky = m != "ook" and float(np.max(np.abs(w.gram - np.eye(len(w.gram))))) > 0.1
+        n0 = fit.noise_var if leaky or rest.size < FADING_MIN_KNOWN else float(rest.mean())
+        w.fading = fading_from_energies(e, n0)
+        if w.fading is not None and w.fading.fading:
+            w.flags.append("fading")
+
+
+def _stage_available(batch: list[_Work], ctx: _Context) -> None:
+    """Eb/N0 from power alone (iqstat.available), in the band of the outer tones ±
+    AVAILABLE_BAND_SYMBOLS symbol rates: measured in that band, not the full capture band,
+    because at 52 samples per bit the full-band SNR is ~17 dB below Eb/N0 and a 1 % error of
+    the gap noise would move the result by half a dB."""
+    bits = ctx.profile.bits_per_symbol
+    det = ctx.detection
+    n0 = 10.0 ** (det.noise_psd_db_per_hz / 10.0) if np.isfinite(det.noise_psd_db_per_hz) else 0.0
+    for w in batch:
+        energy, width_hz = w.band
+        if energy is None:
+            continue
+        w.available = available_ebn0(
+            energy,
+            width_hz,
+            len(w.x),
+            w.burst.stop_sample - w.burst.start_sample,
+            n0,
+            det.noise_psd_dof,
+            w.link.symbol_rate_hz * bits,
+            ctx.fs,
+        )
+
+
+def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
+    """The BER theory predicts at each fitted Eb/N0, for the burst's tone correlation."""
+    m = ctx.profile.modulation
+    use = [w for w in batch if w.fit.converged and w.fit.ebn0_db is not None]
+    if not use:
+        return
+    ebn0 = 10.0 ** (np.array([w.fit.ebn0_db for w in use]) / 10.0)
+    if m == "2fsk":
+        rho = np.array([_theory_rho(np.abs(w.gram), m) for w in use])
+    elif m == "4fsk":
+        # A zero matrix is the orthogonal case (what _theory_rho's 0.0 stands for).
+        rho = np.stack(
+            [
+                r if isinstance(r, np.ndarray) else np.zeros((4, 4))
+                for r in (_theory_rho(np.abs(w.gram), m) for w in use)
+            ]
+        )
+    else:
+        rho = 0.0
+    pred = np.atleast_1d(theory.predicted_ber(ebn0, m, rho_abs=rho))
+    for i, w in enumerate(use):
+        if m != "ook" and w.sym_grams is not None:
+            # Symbols of two lengths, two tone correlations: the mean of their BERs.
+            pred[i] = sum(
+                share * float(theory.predicted_ber(ebn0[i], m, rho_abs=_theory_rho(np.abs(g), m)))
+                for g, share in w.gram_classes
+            )
+    for w, p in zip(use, pred, strict=True):
+        w.predicted_ber = float(p)
+
+
+def _finish(w: _Work, ctx: _Context) -> None:
+    """Flags and the burst's result."""
+    fit, flags = w.fit, w.flags
+    if w.check is not None and not w.check.locked:
+        flags.append("pattern-not-locked")
+    if not fit.converged:
+        flags.append("fit-failed")
+    elif fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
+        flags.append("not-awgn")
+    b = w.burst
+    res = BurstResult(
+        index=b.index,
+        start_sample=b.start_sample,
+        stop_sample=b.stop_sample,
+        power_dbfs=b.power_dbfs,
+        symbols=w.sel[1] - w.sel[0],
+        link=w.link,
+        timing=w.timing,
+        frame=w.frame,
+        fit=fit,
+        fit_da=w.fit_da,
+        fit_dd=w.fit_dd,
+        bit_check=w.check,
+        available=w.available,
+        fading=w.fading,
+        predicted_ber=w.predicted_ber,
+        flags=(),
+        message=fit.message,
+    )
+    loss, loss_ci = res.detection_loss_db, res.detection_loss_db_ci95
+    if loss is not None and loss > DETECTION_LOSS_FLAG_DB and (loss_ci is None or loss_ci[0] > 0):
+        flags.append("detection-loss")
+    w.result = dataclasses.replace(res, flags=tuple(flags))
