@@ -56,8 +56,14 @@ def _stage_fit(works: list[_Work], ctx: _Context) -> None:
 
 
 def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
-    """Fading within each burst from the spread of its sent tone's energies (iqstat.fading)."""
+    """Fading within each burst from the spread of its sent tone's energies (iqstat.fading).
+
+    Not tested where a continuous line is left in the band: its energy in the correlators
+    spreads the sent tone's energies too, and the capture is flagged interference instead.
+    """
     m = ctx.profile.modulation
+    if ctx.detection.interfering_lines(ctx.symbol_rate_hz):
+        return
     for w in batch:
         fit = w.fit
         if fit is None or not fit.converged or fit.noise_var is None:

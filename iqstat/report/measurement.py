@@ -1,4 +1,4 @@
-"""Rendering a :class:`~iqstat.measure.MeasurementReport`: JSON document and terminal view.
+"""Rendering a :class:`~iqstat.results.MeasurementReport`: JSON document and terminal view.
 
 The JSON layout is documented in docs/report-format.md (format "iqstat-report", version 1).
 Unknown values are ``null``: never omitted, never NaN.
