@@ -191,8 +191,14 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
         for b in report.bursts[:max_bursts]:
             if b.flags:
                 why = f" ({b.message})" if b.message and b.ebn0_db is None else ""
+                flags = [
+                    f"fading (K ≈ {b.fading.k_db:.0f} dB)"
+                    if fl == "fading" and b.fading is not None and b.fading.k_db is not None
+                    else fl
+                    for fl in b.flags
+                ]
                 console.print(
-                    f"  burst {b.index}: {', '.join(b.flags)}{why}", markup=False, highlight=False
+                    f"  burst {b.index}: {', '.join(flags)}{why}", markup=False, highlight=False
                 )
     _headline(report, console)
 
