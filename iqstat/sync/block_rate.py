@@ -38,13 +38,13 @@ from iqstat.errors import MeasurementError, ParameterError
 from iqstat.rowstats import median_rows
 from iqstat.sync.grid import (
     CLOCK_BLOCK_SYMBOLS,
-    MIN_CLOCK_BLOCKS,
     MIN_LINE_SNR_DB,
     MIN_SYMBOLS,
     SymbolTiming,
     _clock_decision,
+    _floor_bins,
+    _line_clock_fits,
     _rows_of,
-    _weighted_lines,
     _whole_symbols,
 )
 
@@ -306,17 +306,13 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
     r = e.reshape(bc * q_tot, block_f) @ cs
     xq = (r[:, 0] + 1j * r[:, 1]).reshape(bc, q_tot)
     xq *= unit_phasors(-(u0 + blk * block_f * np.arange(q_tot)) / p0)
-    x_all = xq.sum(axis=1)
     # Spectral floor around the line: the line sits at bin nf·L/P0 of an nf-point transform
     # of the feature (the same Hz per bin as the full-rate one); one transform per length.
     floor = np.full(bc, np.nan)
     n_fft = np.array([scipy.fft.next_fast_len(int(k), real=True) for k in ne])
     for nf in np.unique(n_fft):
         sel = np.nonzero(n_fft == nf)[0]
-        kk = int(round(nf * blk / p0))
-        n_bins = nf // 2 + 1
-        lo, hi = max(1, kk - 200), min(n_bins, kk + 201)
-        bins = np.r_[np.arange(lo, max(lo, kk - 3)), np.arange(min(hi, kk + 4), hi)]
+        bins = _floor_bins(int(nf), int(round(nf * blk / p0)))
         if bins.size == 0:
             continue
         # float32 (the floor is a median level: 1e-7 relative rounding is far below its
@@ -332,27 +328,11 @@ def _time_blocks_chunk(blocks: BlockSums, part, p0, window, block_f, track_clock
                 sk[...] = e[rk, :cols]
             spec = scipy.fft.rfft(sk, int(nf), axis=1)[:, bins]
             floor[rk] = median_rows(spec.real.astype(np.float64) ** 2 + spec.imag**2)
-    with np.errstate(divide="ignore"):
-        line_snr = np.where(
-            floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf
-        )
     n_blocks = ne // block_f if track_clock else np.zeros(bc, dtype=np.int64)
-    fit = n_blocks >= MIN_CLOCK_BLOCKS
-    nq = int(n_blocks[fit].max()) if fit.any() else 1
-    xb = xq[:, :nq]
-    # Positions of the symbol centres modulo P0 per block; they drift as (P − P0)/P per
-    # sample when P != P0 (block-wise line phase, unwrapped and line-fitted: METHODS §4).
-    off = -np.unwrap(np.angle(xb), axis=1) / (2 * np.pi) * p0
-    centre = u0 + blk * (np.arange(nq) * block_f + (block_f - 1) / 2.0)
-    use = np.arange(nq) < np.where(fit, n_blocks, 0)[:, None]
-    w = np.abs(xb) * use
-    sl, cl, rms, se = _weighted_lines(centre, off, w, np.where(fit, n_blocks, 0))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        c_flat = (w * off).sum(axis=1) / w.sum(axis=1)
-    co = dict(
-        peak=peak, line_snr=line_snr, x_all=x_all, n_blocks=n_blocks, fit=fit,
-        s=sl, c=cl, c_flat=c_flat, rms=rms, se=se,
-    )  # fmt: skip
+    # Block centres: the line phase gives the symbol centres, block q's at feature point
+    # q·F + (F − 1)/2, sample u0 + L·(q·F + (F − 1)/2).
+    centre = u0 + blk * (np.arange(q_tot) * block_f + (block_f - 1) / 2.0)
+    co = _line_clock_fits(peak, xq, floor, n_blocks, centre, p0)
     ppb = p0 / blk
     for r_, j in enumerate(part):
         if not peak[r_] > 0:

@@ -36,13 +36,13 @@ from iqstat.correlate.templates import unit_phasors
 from iqstat.errors import MeasurementError, ParameterError
 from iqstat.sync.grid import (
     CLOCK_BLOCK_SYMBOLS,
-    MIN_CLOCK_BLOCKS,
     MIN_LINE_SNR_DB,
     MIN_SYMBOLS,
     SymbolTiming,
     _clock_decision,
+    _floor_bins,
+    _line_clock_fits,
     _rows_of,
-    _weighted_lines,
     _whole_symbols,
 )
 
@@ -106,10 +106,7 @@ def _coarse_many(
     n_fft = np.array([scipy.fft.next_fast_len(int(k), real=True) for k in ne])
     for nf in np.unique(n_fft):
         sel = np.nonzero(n_fft == nf)[0]
-        kk = int(round(nf / period0))
-        n_bins = nf // 2 + 1
-        lo, hi = max(1, kk - 200), min(n_bins, kk + 201)
-        bins = np.r_[np.arange(lo, max(lo, kk - 3)), np.arange(min(hi, kk + 4), hi)]
+        bins = _floor_bins(int(nf), int(round(nf / period0)))
         if bins.size == 0:
             continue
         seg = e[sel, : min(int(nf), e.shape[1])]
@@ -122,28 +119,9 @@ def _coarse_many(
     r = e.reshape(bc * q_tot, block) @ cs
     xq = (r[:, 0] + 1j * r[:, 1]).reshape(bc, q_tot)
     xq *= unit_phasors(-(np.arange(q_tot) * block) / period0)
-    x_all = xq.sum(axis=1)
-    with np.errstate(divide="ignore"):
-        line_snr = np.where(
-            floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf
-        )
     n_blocks = ne // block if track_clock else np.zeros(bc, dtype=np.int64)
-    fit = n_blocks >= MIN_CLOCK_BLOCKS
-    nq = int(n_blocks[fit].max()) if fit.any() else 1
-    xb = xq[:, :nq]
-    # Position of the feature peaks modulo P0 per block; it drifts as (P − P0)/P per sample
-    # when P != P0 (block-wise line phase, unwrapped and line-fitted: METHODS §4).
-    off = -np.unwrap(np.angle(xb), axis=1) / (2 * np.pi) * period0
-    centre = np.arange(nq, dtype=np.float64) * block + block // 2
-    use = np.arange(nq) < np.where(fit, n_blocks, 0)[:, None]
-    w = np.abs(xb) * use
-    s, c, rms, se = _weighted_lines(centre, off, w, np.where(fit, n_blocks, 0))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        c_flat = (w * off).sum(axis=1) / w.sum(axis=1)  # intercept with the slope set to 0
-    return dict(
-        peak=peak, line_snr=line_snr, x_all=x_all, n_blocks=n_blocks, fit=fit,
-        s=s, c=c, c_flat=c_flat, rms=rms, se=se,
-    )  # fmt: skip
+    centre = np.arange(q_tot, dtype=np.float64) * block + block // 2
+    return _line_clock_fits(peak, xq, floor, n_blocks, centre, period0)
 
 
 def _gather_energies(

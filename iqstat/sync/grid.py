@@ -8,9 +8,9 @@ grid with its health; :func:`_whole_symbols` counts the whole symbols a grid fit
 The clock offset is measured the same way on the full-rate feature
 (:mod:`iqstat.sync.full_rate`) and on the decimated one (:mod:`iqstat.sync.block_rate`): the
 phase of the symbol-rate line per block of CLOCK_BLOCK_SYMBOLS symbols, unwrapped, is fitted
-by a weighted least-squares line against the block centres (:func:`_weighted_lines`); the
-slope is (P − P0)/P, kept only where it is CLOCK_SIGNIFICANCE standard errors from zero and
-below MAX_CLOCK_OFFSET_PPM (:func:`_clock_decision`; METHODS §4).
+by a weighted least-squares line against the block centres (:func:`_line_clock_fits`,
+:func:`_weighted_lines`); the slope is (P − P0)/P, kept only where it is CLOCK_SIGNIFICANCE
+standard errors from zero and below MAX_CLOCK_OFFSET_PPM (:func:`_clock_decision`; METHODS §4).
 """
 
 from __future__ import annotations
@@ -158,6 +158,52 @@ def _weighted_line(
         np.array([np.size(x)]),
     )
     return float(s[0]), float(c[0]), float(rms[0]), float(se[0])
+
+
+def _floor_bins(n_fft: int, line_bin: int) -> np.ndarray:
+    """Bins of an n_fft-point real transform of the feature that measure the floor around its
+    symbol-rate line at bin ``line_bin``: up to 200 on each side, the line's ±3 left out."""
+    n_bins = n_fft // 2 + 1
+    lo, hi = max(1, line_bin - 200), min(n_bins, line_bin + 201)
+    return np.r_[np.arange(lo, max(lo, line_bin - 3)), np.arange(min(hi, line_bin + 4), hi)]
+
+
+def _line_clock_fits(
+    peak: np.ndarray,
+    xq: np.ndarray,
+    floor: np.ndarray,
+    n_blocks: np.ndarray,
+    centre: np.ndarray,
+    period0: float,
+) -> dict:
+    """Line SNR and block clock fit per burst, the input of :func:`_clock_decision`.
+
+    ``peak`` (B,) peak feature energy, ``xq`` (B, Q) the symbol-rate coefficient of the
+    feature per block, ``floor`` (B,) the feature's spectral level around the line (NaN or 0
+    if unknown: line SNR ∞), ``n_blocks`` (B,) whole blocks per burst (0 = no clock fit),
+    ``centre`` (Q,) the block centres [samples] the block phases are fitted against,
+    ``period0`` the nominal period P0 [samples].
+    """
+    x_all = xq.sum(axis=1)
+    with np.errstate(divide="ignore"):
+        line_snr = np.where(
+            floor > 0, 10 * np.log10(np.abs(x_all) ** 2 / np.where(floor > 0, floor, 1.0)), np.inf
+        )
+    fit = n_blocks >= MIN_CLOCK_BLOCKS
+    nq = int(n_blocks[fit].max()) if fit.any() else 1
+    xb = xq[:, :nq]
+    # Position of the feature's line phase modulo P0 per block; it drifts as (P − P0)/P per
+    # sample when P != P0 (block-wise line phase, unwrapped and line-fitted: METHODS §4).
+    off = -np.unwrap(np.angle(xb), axis=1) / (2 * np.pi) * period0
+    use = np.arange(nq) < np.where(fit, n_blocks, 0)[:, None]
+    w = np.abs(xb) * use
+    s, c, rms, se = _weighted_lines(centre[:nq], off, w, np.where(fit, n_blocks, 0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c_flat = (w * off).sum(axis=1) / w.sum(axis=1)  # intercept with the slope set to 0
+    return dict(
+        peak=peak, line_snr=line_snr, x_all=x_all, n_blocks=n_blocks, fit=fit,
+        s=s, c=c, c_flat=c_flat, rms=rms, se=se,
+    )  # fmt: skip
 
 
 def _rows_of(buf: np.ndarray, rows: np.ndarray) -> np.ndarray:
