@@ -45,7 +45,7 @@ from iqstat.estimate.link_estimate import (
     tone_frequencies_hz,
     tone_offsets_hz,
 )
-from iqstat.estimate.spectrum import _Burst, _coarse_center
+from iqstat.estimate.spectrum import _Burst, _burst_array, _coarse_center
 from iqstat.units import check_positive
 
 #: Bursts transformed together (rows of one 2-D FFT). Rows are independent (a row's numbers
@@ -315,14 +315,7 @@ def _estimate_link_one(
 
 def _burst_samples(x, fs: float, rate_hz: float | None) -> np.ndarray:
     """The burst as a 1-D finite array, or MeasurementError (same checks as _Burst)."""
-    arr = np.asarray(x)
-    if arr.ndim != 1:
-        raise ParameterError(f"burst samples must be one-dimensional, got shape {arr.shape}")
-    if arr.size < MIN_SAMPLES:
-        raise MeasurementError(
-            f"burst has {arr.size} samples; at least {MIN_SAMPLES} (and {MIN_SYMBOLS} "
-            "symbols) are needed to estimate the link parameters"
-        )
+    arr = _burst_array(x)
     energy = float(np.vdot(arr, arr).real) if np.iscomplexobj(arr) else float(np.dot(arr, arr))
     if not math.isfinite(energy) and not np.all(np.isfinite(arr)):
         raise MeasurementError(

@@ -79,6 +79,19 @@ def interpolate_peak_bin(
     return k + float(np.clip(delta, -0.5, 0.5))
 
 
+def _burst_array(x) -> np.ndarray:
+    """x as a 1-D array of at least MIN_SAMPLES samples (ParameterError, MeasurementError)."""
+    arr = np.asarray(x)
+    if arr.ndim != 1:
+        raise ParameterError(f"burst samples must be one-dimensional, got shape {arr.shape}")
+    if arr.size < MIN_SAMPLES:
+        raise MeasurementError(
+            f"burst has {arr.size} samples; at least {MIN_SAMPLES} (and {MIN_SYMBOLS} "
+            "symbols) are needed to estimate the link parameters"
+        )
+    return arr
+
+
 class _Burst:
     """The burst as complex128 with its DFT, computed once when needed (private helper)."""
 
@@ -86,14 +99,7 @@ class _Burst:
         self.modulation = modulation
         self.m = _n_tones(modulation)
         self.fs = check_positive("sample_rate_hz", sample_rate_hz, "give the sample rate in Hz")
-        arr = np.asarray(x)
-        if arr.ndim != 1:
-            raise ParameterError(f"burst samples must be one-dimensional, got shape {arr.shape}")
-        if arr.size < MIN_SAMPLES:
-            raise MeasurementError(
-                f"burst has {arr.size} samples; at least {MIN_SAMPLES} (and {MIN_SYMBOLS} "
-                "symbols) are needed to estimate the link parameters"
-            )
+        arr = _burst_array(x)
         self.x = arr.astype(np.complex128, copy=False)
         if not np.all(np.isfinite(self.x)):
             raise MeasurementError(
