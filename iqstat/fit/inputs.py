@@ -41,27 +41,34 @@ def _check_modulation(modulation: str) -> str:
     return modulation
 
 
-def _check_outputs(z: np.ndarray, modulation: str) -> np.ndarray:
-    """z as complex128 (n_symbols, n_branches); raises ParameterError on bad shape or values."""
+def _output_array(z, modulation: str, where: str = "") -> np.ndarray:
+    """One burst's z as complex128 (n_symbols, n_branches), dtype and shape checked (values
+    not); ``where`` prefixes the messages (which burst of a batch)."""
     m = N_BRANCHES[modulation]
     try:
         arr = np.asarray(z)
     except Exception as exc:  # pragma: no cover - numpy raises many types here
         raise ParameterError(
-            f"z could not be read as an array ({exc}); pass a numpy array"
+            f"{where}z could not be read as an array ({exc}); pass a numpy array"
         ) from None
     if arr.dtype.kind not in "biufc":
         raise ParameterError(
-            f"z has dtype {arr.dtype}; pass complex correlator outputs of shape (n_symbols, {m})"
+            f"{where}z has dtype {arr.dtype}; pass complex correlator outputs of shape "
+            f"(n_symbols, {m})"
         )
     if modulation == "ook" and arr.ndim == 1:
         arr = arr[:, None]
     if arr.ndim != 2 or arr.shape[1] != m:
         raise ParameterError(
-            f"z has shape {arr.shape} but {modulation} needs (n_symbols, {m}): one column per "
-            f"correlator branch"
+            f"{where}z has shape {arr.shape} but {modulation} needs (n_symbols, {m}): one "
+            f"column per correlator branch"
         )
-    arr = arr.astype(np.complex128, copy=False)
+    return arr.astype(np.complex128, copy=False)
+
+
+def _check_outputs(z: np.ndarray, modulation: str) -> np.ndarray:
+    """z as complex128 (n_symbols, n_branches); raises ParameterError on bad shape or values."""
+    arr = _output_array(z, modulation)
     bad = ~np.isfinite(arr)
     if np.any(bad):
         raise ParameterError(
@@ -98,29 +105,7 @@ def _check_output_arrays(zs: Sequence[np.ndarray], modulation: str) -> list[np.n
         raise ParameterError(
             f"zs is a {type(zs).__name__}; pass a list of (n_symbols, {m}) arrays, one per burst"
         )
-    out = []
-    for i, z in enumerate(zs):
-        where = _burst_label(i, len(zs))
-        try:
-            arr = np.asarray(z)
-        except Exception as exc:  # pragma: no cover - numpy raises many types here
-            raise ParameterError(
-                f"{where}z could not be read as an array ({exc}); pass a numpy array"
-            ) from None
-        if arr.dtype.kind not in "biufc":
-            raise ParameterError(
-                f"{where}z has dtype {arr.dtype}; pass complex correlator outputs of shape "
-                f"(n_symbols, {m})"
-            )
-        if modulation == "ook" and arr.ndim == 1:
-            arr = arr[:, None]
-        if arr.ndim != 2 or arr.shape[1] != m:
-            raise ParameterError(
-                f"{where}z has shape {arr.shape} but {modulation} needs (n_symbols, {m}): one "
-                f"column per correlator branch"
-            )
-        out.append(arr.astype(np.complex128, copy=False))
-    return out
+    return [_output_array(z, modulation, _burst_label(i, len(zs))) for i, z in enumerate(zs)]
 
 
 def _stack_label(i: int, count: int, k: int) -> str:
