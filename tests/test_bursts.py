@@ -41,23 +41,25 @@ def _noise(rng: np.random.Generator, n: int, noise_var: float = NOISE_VAR) -> np
     return (rng.standard_normal(n) + 1j * rng.standard_normal(n)) * math.sqrt(noise_var / 2)
 
 
-def _capture_with_bursts(rng, n_samples, bursts, noise_var=NOISE_VAR):
-    """Noise everywhere plus 2-FSK bursts; bursts = [(start_sample, ebn0_db)].
+def _capture_with_bursts(
+    rng, n_samples, bursts, noise_var=NOISE_VAR, rs_hz=RS_HZ, spacing_hz=SPACING_HZ, cfo_hz=CFO_HZ
+):
+    """Noise everywhere plus 2-FSK bursts of N_SYM symbols; bursts = [(start_sample, ebn0_db)].
 
     Returns the capture and the true (first, stop) sample of each burst's signal.
     """
     x = _noise(rng, n_samples, noise_var)
     truth = []
     for start, ebn0_db in bursts:
-        amp = math.sqrt(10 ** (ebn0_db / 10) * noise_var * RS_HZ / FS_HZ)  # P = amp²
+        amp = math.sqrt(10 ** (ebn0_db / 10) * noise_var * rs_hz / FS_HZ)  # P = amp²
         t0 = float(rng.uniform(0, 10))
         s = modulate(
             rng.integers(0, 2, N_SYM),
             modulation="2fsk",
             sample_rate_hz=FS_HZ,
-            symbol_rate_hz=RS_HZ,
-            tone_spacing_hz=SPACING_HZ,
-            cfo_hz=CFO_HZ,
+            symbol_rate_hz=rs_hz,
+            tone_spacing_hz=spacing_hz,
+            cfo_hz=cfo_hz,
             phase_rad=float(rng.uniform(0, 2 * np.pi)),
             timing_offset_samples=t0,
             amplitude=amp,
@@ -663,29 +665,21 @@ def test_a_burst_faded_in_its_middle_is_one_burst_when_its_length_is_known():
 
 
 def test_fast_links_with_short_gaps_keep_noise_frames():
-    # 38.4 kBd bursts of 448 symbols last 11.7 ms and their gaps 4 ms: with the default 1 ms
-    # frames (256 samples) few frames of a gap survived the one-frame guards, and the noise
-    # PSD could be lost. With the burst length known, frames are at most 1/16 of a burst.
+    # 38.4 kBd bursts of 560 symbols last 14.6 ms, their gaps 3 ms (754 samples, a fifth of a
+    # burst), and the capture ends with its last burst: with the default 1 ms frames (256
+    # samples) no frame of a gap survives the one-frame guards and the noise PSD is lost (as
+    # the first check shows). With the burst length known, frames are at most 1/16 of a burst.
     rng = np.random.default_rng(17)
-    fs, rs, n_sym = 250e3, 38_400.0, 448
-    amp = math.sqrt(10**1.2 * NOISE_VAR * rs / fs)  # 12 dB Eb/N0 (P = Eb/N0·σ²·Rb/fs)
-    x = _noise(rng, 40_000)
-    starts = [500 + k * 4_000 for k in range(8)]
-    for a in starts:
-        s = modulate(
-            rng.integers(0, 2, n_sym),
-            modulation="2fsk",
-            sample_rate_hz=fs,
-            symbol_rate_hz=rs,
-            tone_spacing_hz=rs,
-            cfo_hz=2e3,
-            amplitude=amp,
-        )[:3_000]
-        x[a : a + s.size] += s
-    cap = Capture.from_array(x.astype(np.complex64), fs)
-    det = detect_bursts(cap, expected_burst_s=n_sym / rs)
-    assert det.frame_samples == 128  # 2 917 samples / 16 = 182 -> 128
+    rs = 38_400.0
+    starts = [500 + k * 4_400 for k in range(8)]
+    cap, _ = _capture_with_bursts(
+        rng, 35_400, [(a, 12.0) for a in starts], rs_hz=rs, spacing_hz=rs, cfo_hz=2e3
+    )
+    coarse = detect_bursts(cap, frame_samples=256, expected_burst_s=N_SYM / rs)
+    assert coarse.noise_psd_dof == 0
+    det = detect_bursts(cap, expected_burst_s=N_SYM / rs)
+    assert det.frame_samples == 128  # 3 646 samples / 16 = 228 -> 128
     assert len(det.bursts) == len(starts)
     n0 = 10 ** (det.noise_psd_db_per_hz / 10)
     assert det.noise_psd_dof > 0
-    assert n0 == pytest.approx(NOISE_VAR / fs, rel=5 / math.sqrt(det.noise_psd_dof))
+    assert n0 == pytest.approx(NOISE_VAR / FS_HZ, rel=5 / math.sqrt(det.noise_psd_dof))
