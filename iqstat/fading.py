@@ -46,6 +46,9 @@ class FadingEstimate:
     fading : bool
         Whether the excess is significant (z > FADING_Z).
     symbols : int
+    k_source : str
+        Where ``k_db`` comes from: ``"moments"`` (this test's γ) or ``"fading-fit"`` (the
+        maximum-likelihood fit of :mod:`iqstat.fit.rician`, which then also gives γ).
     """
 
     gamma: float
@@ -53,6 +56,7 @@ class FadingEstimate:
     z: float
     fading: bool
     symbols: int
+    k_source: str = "moments"
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)

@@ -46,6 +46,8 @@ class BurstResult:
     flags: tuple[str, ...]
     message: str
     start_time: str | None = None  # UTC time of start_sample (RFC 3339), if recorded
+    #: Where the burst fades and ``fit`` is the fading fit: the constant-amplitude fit.
+    fit_steady: NoncoherentFit | None = None
 
     @property
     def ebn0_db(self) -> float | None:
@@ -122,6 +124,7 @@ class BurstResult:
             "fit": None if fit is None else fit.to_dict(),
             "fit_da": None if self.fit_da is None else self.fit_da.to_dict(),
             "fit_dd": None if self.fit_dd is None else self.fit_dd.to_dict(),
+            "fit_steady": None if self.fit_steady is None else self.fit_steady.to_dict(),
             "link": None if self.link is None else self.link.to_dict(),
             "timing": None if self.timing is None else self.timing.to_dict(),
             "frame": None if self.frame is None else self.frame.to_dict(),
@@ -179,6 +182,11 @@ class Summary:
     required_ebn0_db: float | None
     margin_db: float | None
     worst_burst_margin_db: float | None
+    #: Where bursts fade (fitted on the fading model): the median K of those bursts [dB], the
+    #: mean Eb/N0 the target BER needs under a Rician law of that K, and the margin to it.
+    fading_k_db: float | None
+    fading_required_ebn0_db: float | None
+    fading_margin_db: float | None
     flags: tuple[str, ...]
     message: str
 

@@ -13,6 +13,7 @@ from iqstat.errors import IqstatError
 from iqstat.patterns import clopper_pearson
 from iqstat.profile import FrameLayout
 from iqstat.results import BurstResult, Summary
+from iqstat.theory.fading import required_ebn0_db_rician
 from iqstat.units import db
 
 #: Per-burst flags that also flag the capture when any burst raises them.
@@ -65,13 +66,16 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
     symbols = sum(r.symbols for r in ok)
     pred = None
     if ok:
+        weights = np.array([r.symbols for r in ok], dtype=float)
+        per_burst = np.atleast_1d(theory.predicted_ber(np.array([r.ebn0 for r in ok]), m, rho))
+        # A burst fitted on the fading model has its BER averaged over its fading law.
+        faded = [i for i, r in enumerate(ok) if r.fit_steady is not None]
+        for i in faded:
+            per_burst[i] = ok[i].predicted_ber
         pred = float(
-            theory.mean_ber_over_bursts(
-                np.array([r.ebn0 for r in ok]),
-                np.array([r.symbols for r in ok], dtype=float),
-                m,
-                rho_abs=rho,
-            )
+            theory.mean_ber_over_bursts(np.array([r.ebn0 for r in ok]), weights, m, rho_abs=rho)
+            if not faded
+            else np.sum(weights * per_burst) / np.sum(weights)
         )
     checked = [r for r in results if r.bit_check is not None and r.bit_check.locked]
     errors = sum(r.bit_check.bit_errors for r in checked) if checked else None
@@ -93,6 +97,18 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
                 flags.append("below-requirement")
             elif worst < 0:
                 flags.append("some-bursts-below-requirement")
+    fading_k_db = fading_req = fading_marg = None
+    k_fits = [r.fading.k_db for r in ok if r.fit_steady is not None]
+    if k_fits:
+        fading_k_db = float(np.median(k_fits))
+        if profile.required_ber is not None:
+            fading_req = required_ebn0_db_rician(
+                profile.required_ber, m, 10.0 ** (fading_k_db / 10.0), 0.0 if m == "ook" else rho
+            )
+        if fading_req is not None and mean_db is not None:
+            fading_marg = mean_db - fading_req
+            if fading_marg < 0 and "below-requirement" not in flags:
+                flags.append("below-requirement-in-fading")
     esn0_db = None if mean_db is None else mean_db + float(db(profile.bits_per_symbol))
     da = [r.fit_da.ebn0_db for r in ok if r.fit_da is not None and r.fit_da.converged]
     dd = [r.fit_dd.ebn0_db for r in ok if r.fit_dd is not None and r.fit_dd.converged]
@@ -155,6 +171,9 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
         required_ebn0_db=req,
         margin_db=marg,
         worst_burst_margin_db=worst,
+        fading_k_db=fading_k_db,
+        fading_required_ebn0_db=fading_req,
+        fading_margin_db=fading_marg,
         flags=tuple(dict.fromkeys(flags)),
         message=message,
     )

@@ -10,6 +10,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import stats
 
 from iqstat.capture import Capture
 from iqstat.measure import measure_capture
@@ -168,7 +169,24 @@ class CaseResult:
                 and s.ebn0_db < self.truth_db
             )
             return ok, "power reads the truth within 0.3 dB, correlators below it"
+        if expect == "fading":
+            # The fading fit reads the mean Eb/N0 and predicts the BER the fades give: the
+            # measured error count must be consistent with it (binomial tails, p > 1e-3).
+            ok = (
+                "fading" in s.flags
+                and s.ebn0_db is not None
+                and abs(s.ebn0_db - self.truth_db) < 0.5
+                and s.bits_checked
+                and _binomial_p(s.bit_errors, s.bits_checked, s.predicted_ber) > 1e-3
+            )
+            return ok, "flagged fading, reads the truth within 0.5 dB, BER as predicted"
         return expect in s.flags, f"flagged {expect}"
+
+
+def _binomial_p(errors: int, n: int, p: float) -> float:
+    """Two-sided binomial tail probability of ``errors`` in ``n`` at rate p (scipy.stats)."""
+    lo, hi = stats.binom.cdf(errors, n, p), stats.binom.sf(errors - 1, n, p)
+    return float(min(1.0, 2.0 * min(lo, hi)))
 
 
 def run_case(name: str, n_bursts: int = 10, seed: int = 7) -> CaseResult:

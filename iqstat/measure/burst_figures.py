@@ -13,17 +13,20 @@ detection loss above DETECTION_LOSS_FLAG_DB) and builds the :class:`~iqstat.resu
 from __future__ import annotations
 
 import dataclasses
+import math
 
 import numpy as np
 
 from iqstat import theory
 from iqstat.available import available_ebn0
 from iqstat.fading import MIN_SYMBOLS as FADING_MIN_KNOWN
-from iqstat.fading import fading_from_energies
+from iqstat.fading import FadingEstimate, fading_from_energies, k_from_gamma
 from iqstat.fit import fit_bursts_many
+from iqstat.fit.rician import FADING_LR_MIN, fit_rician
 from iqstat.measure.gram_classes import _fit_gram, _fit_z, _theory_rho
 from iqstat.measure.work import MIN_FIT_SYMBOLS, _batched, _Context, _Work
 from iqstat.results import BurstResult
+from iqstat.theory.fading import ber_rician
 
 #: Without known symbols the fading test uses the decisions only from this Es/N0 [dB] up:
 #: below it wrong decisions pick noise branches and spread the energies by themselves.
@@ -56,7 +59,14 @@ def _stage_fit(works: list[_Work], ctx: _Context) -> None:
 
 
 def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
-    """Fading within each burst from the spread of its sent tone's energies (iqstat.fading).
+    """Fading within each burst from the spread of its sent tone's energies (iqstat.fading),
+    and the fading fit (iqstat.fit.rician) of the bursts that fade.
+
+    The moment test needs the sent tones: known symbols, or decisions from
+    FADING_DECIDED_MIN_ESN0_DB up. A burst without them whose energies fail the white-noise
+    laws, or that shows a detection loss, may be a burst whose fades the constant-amplitude
+    fit took for noise: the fading fit is tried on it, and kept when the likelihood ratio
+    against a steady amplitude exceeds FADING_LR_MIN.
 
     Not tested where a continuous line is left in the band: its energy in the correlators
     spreads the sent tone's energies too, and the capture is flagged interference instead.
@@ -72,6 +82,8 @@ def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
         sent = None if w.known is None else np.asarray(w.known[: len(z)])
         if sent is None or np.count_nonzero(sent >= 0) < FADING_MIN_KNOWN:
             if fit.esn0_db is None or fit.esn0_db < FADING_DECIDED_MIN_ESN0_DB:
+                if _suspect(w):
+                    _try_fading_fit(w, m, z)
                 continue
             sent = w.hard[w.sel[0] : w.sel[1]][: len(z)]
         use = sent >= 0
@@ -93,6 +105,73 @@ def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
         w.fading = fading_from_energies(e, n0)
         if w.fading is not None and w.fading.fading:
             w.flags.append("fading")
+            start_k = min(max(k_from_gamma(w.fading.gamma), 0.01), 1e3)
+            nda = _fading_fit(w, m, z, start_k, test=False)
+            if nda.fit.converged:
+                _use_fading_fit(w, m, z, nda, w.fading.z)
+
+
+def _suspect(w: _Work) -> bool:
+    """Whether a burst the moment test cannot judge looks as a fading one would: energies
+    off the white-noise laws, or a detection loss beyond the noise of the two figures."""
+    fit = w.fit
+    if fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
+        return True
+    av = w.available
+    if av is None or av.ebn0_db is None or fit.ebn0_db is None:
+        return False
+    lo = None if av.ebn0_db_ci95 is None else av.ebn0_db_ci95[0]
+    return av.ebn0_db - fit.ebn0_db > DETECTION_LOSS_FLAG_DB and (lo is None or lo > fit.ebn0_db)
+
+
+def _fading_fit(w: _Work, m: str, z: np.ndarray, start_k: float, test: bool):
+    fit = w.fit
+    return fit_rician(
+        z, modulation=m, gram=None if m == "ook" else _fit_gram(w, *w.sel), priors=fit.priors,
+        start_esn0=fit.esn0, start_noise_var=fit.noise_var, start_k=start_k, test=test,
+    )  # fmt: skip
+
+
+def _try_fading_fit(w: _Work, m: str, z: np.ndarray) -> None:
+    """The fading fit of a burst the moment test could not judge, kept when the likelihood
+    ratio against a steady amplitude exceeds FADING_LR_MIN."""
+    nda = _fading_fit(w, m, z, 1.0, test=True)
+    lr = nda.likelihood_ratio
+    if not nda.fit.converged or lr is None or lr < FADING_LR_MIN:
+        return
+    k = nda.k_factor
+    w.fading = FadingEstimate(
+        gamma=(1.0 + 2.0 * k) / (1.0 + k) ** 2, k_db=nda.k_db, z=math.sqrt(lr), fading=True,
+        symbols=len(z), k_source="fading-fit",
+    )  # fmt: skip
+    w.flags.append("fading")
+    _use_fading_fit(w, m, z, nda, w.fading.z)
+
+
+def _use_fading_fit(w: _Work, m: str, z: np.ndarray, nda, z_stat: float) -> None:
+    """Make the fading fit the burst's headline (the constant-amplitude fit kept beside it as
+    ``fit_steady``, which reads low by the spread it takes for noise), and redo the
+    data-aided fit the same way."""
+    fit = w.fit
+    k = nda.k_factor
+    w.fit_steady, w.fit = fit, nda.fit
+    w.fading = dataclasses.replace(
+        w.fading, k_db=nda.k_db, gamma=(1.0 + 2.0 * k) / (1.0 + k) ** 2, z=z_stat,
+        k_source="fading-fit",
+    )  # fmt: skip
+    if w.fit_da is None or not w.fit_da.converged or w.known is None:
+        return
+    sent = np.asarray(w.known[: len(z)])
+    rows = np.flatnonzero(sent >= 0)
+    gram = None if m == "ook" else _fit_gram(w, *w.sel)
+    da = fit_rician(
+        z[rows], modulation=m,
+        gram=gram if gram is None or np.ndim(gram) == 2 else np.asarray(gram)[rows],
+        priors=fit.priors, sent=sent[rows], start_esn0=nda.fit.esn0,
+        start_noise_var=nda.fit.noise_var, start_k=k,
+    )  # fmt: skip
+    if da.fit.converged:
+        w.fit_da = da.fit
 
 
 def _stage_available(batch: list[_Work], ctx: _Context) -> None:
@@ -140,7 +219,11 @@ def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
         rho = 0.0
     pred = np.atleast_1d(theory.predicted_ber(ebn0, m, rho_abs=rho))
     for i, w in enumerate(use):
-        if m != "ook" and w.sym_grams is not None:
+        if w.fit_steady is not None:
+            # Fading fit: the white-noise BER averaged over the fitted Rician law.
+            k = 10.0 ** (w.fading.k_db / 10.0)
+            pred[i] = ber_rician(ebn0[i], m, k, rho[i] if m != "ook" else 0.0)
+        elif m != "ook" and w.sym_grams is not None:
             # Symbols of two lengths, two tone correlations: the mean of their BERs.
             pred[i] = sum(
                 share * float(theory.predicted_ber(ebn0[i], m, rho_abs=_theory_rho(np.abs(g), m)))
@@ -175,6 +258,7 @@ def _finish(w: _Work, ctx: _Context) -> None:
         bit_check=w.check,
         available=w.available,
         fading=w.fading,
+        fit_steady=w.fit_steady,
         predicted_ber=w.predicted_ber,
         flags=(),
         message=fit.message,

@@ -94,8 +94,8 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     _batched(works, lambda batch: _stage_frame(batch, ctx))
     _each(works, lambda w: _refine_on_known(w, ctx))
     _stage_fit(works, ctx)
-    _batched(works, lambda batch: _stage_fading(batch, ctx))
     _batched(works, lambda batch: _stage_available(batch, ctx))
+    _batched(works, lambda batch: _stage_fading(batch, ctx))
     _batched(works, lambda batch: _stage_predict(batch, ctx))
     _each(works, lambda w: _finish(w, ctx))
     return [
@@ -242,6 +242,8 @@ def measure_capture(
             predicted_ber=None,
             margin_db=None,
             worst_burst_margin_db=None,
+            fading_required_ebn0_db=None,
+            fading_margin_db=None,
             flags=tuple(dict.fromkeys((*summary.flags, flag))),
             message=message,
         )

@@ -62,6 +62,7 @@ class _Work:
     fit: NoncoherentFit | None = None
     fit_da: NoncoherentFit | None = None
     fit_dd: NoncoherentFit | None = None
+    fit_steady: NoncoherentFit | None = None  # the constant-amplitude fit, where it fades
     band: tuple[float | None, float | None] = (None, None)  # in-band energy, its width [Hz]
     available: AvailableEbN0 | None = None
     fading: FadingEstimate | None = None
