@@ -1,13 +1,14 @@
 """Fading within a burst: is the sent tone's energy steadier or not than noise alone allows?
 
-The fit assumes a constant amplitude over a burst. Where the channel fades (multipath, a
-moving transmitter), the energy of the matched correlator, P_k = |z_k,i_k|², spreads beyond
+The headline fit assumes a constant amplitude over a burst. Where the channel fades (multipath,
+a moving transmitter), the energy of the matched correlator, P_k = |z_k,i_k|², spreads beyond
 what the noise gives. Under a constant amplitude A with noise of variance N0 per branch, P is
 (N0/2)·χ'²(2, 2A²/N0) [1]_: mean A² + N0, variance N0² + 2A²N0. A Rician channel h (E|h|² = 1)
 adds A⁴·Var|h|², and γ = Var|h|²/(E|h|²)² = (1 + 2K)/(1 + K)² gives the K factor back,
 K = √(1 − γ)/(1 − √(1 − γ)) [2]_. The excess variance is tested against its standard error
 under the constant-amplitude law (cumulants of the noncentral χ² [1]_), so that noise does not
-read as fading.
+read as fading. A burst that fades is then refitted on the Rician model
+(:mod:`iqstat.fit.rician`), which gives its mean Eb/N0 and a better K.
 
 References
 ----------

@@ -1,13 +1,15 @@
 """The last stages of a batch: the fits, fading, power-based Eb/N0, predicted BER, the result.
 
 :func:`_stage_fit` runs the NDA (headline), decision-directed and data-aided fits
-(:func:`iqstat.fit.fit_bursts_many`). :func:`_stage_fading` tests the sent tone's energies
-against the constant-amplitude law (:mod:`iqstat.fading`; on decisions only from
-FADING_DECIDED_MIN_ESN0_DB up). :func:`_stage_available` gives Eb/N0 from power alone
-(:mod:`iqstat.available`). :func:`_stage_predict` gives the BER theory predicts at the fitted
+(:func:`iqstat.fit.fit_bursts_many`). :func:`_stage_available` gives Eb/N0 from power alone
+(:mod:`iqstat.available`). :func:`_stage_fading` tests the sent tone's energies against the
+constant-amplitude law (:mod:`iqstat.fading`; on decisions only from
+FADING_DECIDED_MIN_ESN0_DB up) and refits the bursts that fade on the Rician model
+(:mod:`iqstat.fit.rician`). :func:`_stage_predict` gives the BER theory predicts at the fitted
 Eb/N0 for the burst's tone correlation (the mean over the two symbol lengths' correlations
-where they differ). :func:`_finish` sets the flags (goodness of fit below GOF_FLAG_PVALUE,
-detection loss above DETECTION_LOSS_FLAG_DB) and builds the :class:`~iqstat.results.BurstResult`.
+where they differ; on a fading burst, the average over its fitted Rician law). :func:`_finish`
+sets the flags (goodness of fit below GOF_FLAG_PVALUE, detection loss above
+DETECTION_LOSS_FLAG_DB) and builds the :class:`~iqstat.results.BurstResult`.
 """
 
 from __future__ import annotations
