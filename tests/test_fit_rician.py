@@ -106,7 +106,7 @@ def test_mean_esn0_and_k_are_recovered(m, k_db, esn0_db, rho):
 
 def test_ook_mean_energy_and_k():
     rng = np.random.default_rng(5)
-    n, k, avg_db = 4000, 10 ** 0.6, 14.0
+    n, k, avg_db = 4000, 10**0.6, 14.0
     on = rng.integers(0, 2, n)
     g_on = 2 * 10 ** (avg_db / 10)
     h = math.sqrt(k / (k + 1)) * np.exp(2j * np.pi * rng.random(n)) + math.sqrt(1 / (k + 1)) * (
