@@ -53,7 +53,9 @@ FADING_LR_MIN = 20.0
 #: amplitude: the constant-amplitude model to within 1e-10 of γ̄ in ρ).
 _LOGIT_F_BOUNDS = (math.log(0.01), math.log(1e10))
 #: Finite-difference step of the observed information, in the fit's parameters.
-_HESSIAN_STEP = 1e-3
+_HESSIAN_STEP = 1e-4
+#: L-BFGS-B tolerances: the log-likelihood to ~1e-12 relative, its gradient to 1e-8.
+_OPTIMISER_OPTIONS = {"ftol": 1e-12, "gtol": 1e-8}
 _GOF_SEED = 20261203
 #: logit f of the constant-amplitude model (f = 1 − 2e-18: no scattered part).
 _STEADY_LOGIT = 40.0
@@ -98,16 +100,24 @@ def _prepared(z: np.ndarray, gram):
     return e, np.sqrt(e), np.real(np.sum(np.conj(z) * w, axis=1)), log_det
 
 
-def _log_lik(theta, e, r, q, m, log_pi, sent, ook) -> float:
-    """Log-likelihood of the symbols, less −n·M·log π − Σ log det R (free of θ)."""
+def _log_lik(theta, e, r, q, m, log_pi, sent, ook, grad: bool = False):
+    """Log-likelihood of the symbols, less −n·M·log π − Σ log det R (free of θ); with
+    ``grad``, (value, gradient in θ = (ln N0, ln γ̄, logit f)).
+
+    With E = |z_k|²/N0, R = |z_k|/√N0, P = fγ̄ and ρ = (1 − f)γ̄, hypothesis k contributes
+    ℓ_k = −ln(1 + ρ) + ρE/(1 + ρ) − P/(1 + ρ) + ln I0(u), u = 2R√P/(1 + ρ), and the symbol
+    −M·ln N0 − zᴴR⁻¹z/N0; the gradient is the posterior-weighted sum of ∂ℓ_k (I0' = I1).
+    """
     a, g, c = theta
     n0 = math.exp(a)
     gam = math.exp(g)
     f = 1.0 / (1.0 + math.exp(-c))
     rho = (1.0 - f) * gam
-    s = n0 * (1.0 + rho)
-    amp = math.sqrt(f * gam * n0)
-    lk = -math.log1p(rho) + rho * e / s - amp * amp / s + _log_i0(2.0 * amp * r / s)
+    p = f * gam
+    big_e = e / n0
+    u = (2.0 * math.sqrt(p) / (1.0 + rho)) * (r / math.sqrt(n0))
+    i0e_u = special.i0e(u)
+    lk = -math.log1p(rho) + (rho / (1.0 + rho)) * big_e - p / (1.0 + rho) + _log_i0(u, i0e_u)
     if ook:  # hypotheses off (0) and on (1), one branch
         hyp = np.stack([np.zeros_like(lk[:, 0]), lk[:, 0]], axis=1)
     else:
@@ -115,28 +125,35 @@ def _log_lik(theta, e, r, q, m, log_pi, sent, ook) -> float:
     hyp = hyp + log_pi
     known = sent >= 0
     rows = np.arange(len(sent))
-    per = np.where(known, hyp[rows, np.maximum(sent, 0)], special.logsumexp(hyp, axis=1))
-    return float(np.sum(per) - m * a * len(q) - np.sum(q) / n0)
+    top = hyp.max(axis=1)
+    norm = top + np.log(np.sum(np.exp(hyp - top[:, None]), axis=1))  # log Σ_k exp(hyp_k)
+    per = np.where(known, hyp[rows, np.maximum(sent, 0)], norm)
+    value = float(np.sum(per) - m * a * len(q) - np.sum(q) / n0)
+    if not grad:
+        return value
+    post = np.exp(hyp - norm[:, None])
+    post[known] = 0.0
+    post[rows[known], sent[known]] = 1.0
+    w = post[:, 1:2] if ook else post  # the weights of the hypotheses with a signal
+    ratio_u = u * (special.i1e(u) / i0e_u)  # u·I1(u)/I0(u)
+    d_a = -(rho / (1.0 + rho)) * big_e - 0.5 * ratio_u
+    d_rho = (-1.0 / (1.0 + rho)) + (big_e + p) / (1.0 + rho) ** 2 - ratio_u / (1.0 + rho)
+    d_p = -1.0 / (1.0 + rho) + ratio_u / (2.0 * p)
+    s_a, s_rho, s_p = (float(np.sum(w * d)) for d in (d_a, d_rho, d_p))
+    grad_a = s_a - m * len(q) + float(np.sum(q)) / n0
+    fpr = f * (1.0 - f) * gam  # ∂P/∂c = −∂ρ/∂c
+    return value, np.array([grad_a, s_rho * rho + s_p * p, (s_p - s_rho) * fpr])
 
 
-def _hessian(fun, x: np.ndarray, step: float) -> np.ndarray:
-    n = len(x)
-    h = np.zeros((n, n))
-    f0 = fun(x)
-    for i in range(n):
-        for j in range(i, n):
-            ei = np.zeros(n)
-            ej = np.zeros(n)
-            ei[i] = step
-            ej[j] = step
-            if i == j:
-                v = (fun(x + ei) - 2.0 * f0 + fun(x - ei)) / step**2
-            else:
-                v = (fun(x + ei + ej) - fun(x + ei - ej) - fun(x - ei + ej) + fun(x - ei - ej)) / (
-                    4.0 * step**2
-                )
-            h[i, j] = h[j, i] = v
-    return h
+def _hessian(neg_grad, x: np.ndarray, step: float) -> np.ndarray:
+    """Hessian of the negative log-likelihood: central differences of its gradient,
+    symmetrised."""
+    cols = [
+        (neg_grad(x + step * ei)[1] - neg_grad(x - step * ei)[1]) / (2.0 * step)
+        for ei in np.eye(len(x))
+    ]
+    h = np.array(cols)
+    return 0.5 * (h + h.T)
 
 
 def _branch_laws_pvalue(e, n0, amp2, diff, gram, pi, sent, ook) -> tuple[float, float, int]:
@@ -240,11 +257,14 @@ def fit_rician(
         [math.log(start_noise_var), math.log(start_esn0 / on_share), math.log(f0 / (1.0 - f0))]
     )
 
-    def neg(theta) -> float:
-        return -_log_lik(theta, e, r, q, m, log_pi, sent_arr, ook)
+    def neg(theta):
+        value, grad = _log_lik(theta, e, r, q, m, log_pi, sent_arr, ook, grad=True)
+        return -value, -grad
 
     bounds = [(x0[0] - 5.0, x0[0] + 5.0), (x0[1] - 10.0, x0[1] + 10.0), _LOGIT_F_BOUNDS]
-    res = optimize.minimize(neg, x0, method="L-BFGS-B", bounds=bounds)
+    res = optimize.minimize(
+        neg, x0, jac=True, method="L-BFGS-B", bounds=bounds, options=_OPTIMISER_OPTIONS
+    )
     if not res.success or not np.all(np.isfinite(res.x)):
         return failed(f"fading fit did not converge: {res.message}")
     a, g, c = res.x
@@ -268,9 +288,14 @@ def fit_rician(
             var_g = math.nan
     lr = None
     if test:
+
+        def neg_steady(t):
+            value, grad = neg(np.array([t[0], t[1], _STEADY_LOGIT]))
+            return value, grad[:2]
+
         steady = optimize.minimize(
-            lambda t: neg(np.array([t[0], t[1], _STEADY_LOGIT])), x0[:2], method="L-BFGS-B",
-            bounds=bounds[:2],
+            neg_steady, x0[:2], jac=True, method="L-BFGS-B", bounds=bounds[:2],
+            options=_OPTIMISER_OPTIONS,
         )  # fmt: skip
         lr = max(2.0 * (float(steady.fun) - float(res.fun)), 0.0)
     amp2, diff = f * gam * n0, (1.0 - f) * gam * n0
