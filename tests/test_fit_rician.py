@@ -162,3 +162,21 @@ def test_too_few_symbols_say_why():
         np.ones((100, 2), complex), modulation="2fsk", start_esn0=0.0, start_noise_var=1.0
     )
     assert not rf.fit.converged
+
+
+@pytest.mark.parametrize(
+    ("m", "rho", "known"), [(2, 0.0, False), (2, RHO_HALF, True), (4, 0.0, False)]
+)
+def test_gradient_matches_central_differences(m, rho, known):
+    rng = np.random.default_rng(4)
+    z, sent, gram = _outputs(rng, 300, m, 8.0, 2.0, rho)
+    sent = np.where(np.arange(300) < 100, sent, -1) if known else np.full(300, -1)
+    e, r, q, _ = _prepared(z, gram if rho else None)
+    args = (e, r, q, m, np.log(np.full(m, 1 / m)), sent, False)
+    theta = np.array([0.1, 1.7, 0.4])
+    _, grad = _log_lik(theta, *args, grad=True)
+    h = 1e-6
+    num = [
+        (_log_lik(theta + d, *args) - _log_lik(theta - d, *args)) / (2 * h) for d in np.eye(3) * h
+    ]
+    np.testing.assert_allclose(grad, num, rtol=1e-6, atol=1e-5)
