@@ -50,6 +50,9 @@ class FadingEstimate:
     k_source : str
         Where ``k_db`` comes from: ``"moments"`` (this test's γ) or ``"fading-fit"`` (the
         maximum-likelihood fit of :mod:`iqstat.fit.rician`, which then also gives γ).
+    esn0_law : tuple of (float, float)
+        With the fading fit: the burst's own law of the per-symbol Es/N0 (linear; OOK the "on"
+        level) as (level, weight) pairs (:mod:`iqstat.fit.level_mixture`); else empty.
     """
 
     gamma: float
@@ -58,9 +61,12 @@ class FadingEstimate:
     fading: bool
     symbols: int
     k_source: str = "moments"
+    esn0_law: tuple[tuple[float, float], ...] = ()
 
     def to_dict(self) -> dict:
-        return dict(self.__dict__)
+        d = dict(self.__dict__)
+        d["esn0_law"] = [list(p) for p in self.esn0_law]
+        return d
 
 
 def k_from_gamma(gamma: float) -> float:

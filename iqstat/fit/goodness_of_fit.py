@@ -31,6 +31,7 @@ from iqstat.fit.ncx2_cdf import (
     _NCX2_LAM_MIN,
     _SMALL_NONCENTRALITY,
     _chi2_2_cdf,
+    _chi2_2_cdf_rows,
     _ncx2_cdf_direct,
     _ncx2_cdf_from_pairs,
     _ncx2_cdf_pairs,
@@ -467,3 +468,55 @@ def _mixture_laws(
     b, _, h, m = lam.shape
     weights = share[:, :, None] * priors[:, None, :]
     return lam.reshape(b, c_max * h, m), weights.reshape(b, c_max * h)
+
+
+def faded_energy_laws(
+    energy: np.ndarray,
+    noise_var: float,
+    components,
+    gram,
+    priors: np.ndarray,
+    sent: np.ndarray,
+    ook: bool,
+    max_values: int = GOF_MAX_VALUES,
+) -> tuple[float, float, int]:
+    """Branchwise KS test of the energies against laws with a fading signal level.
+
+    ``components`` is a list of (weight, d, a): with probability ``weight`` a symbol's sent
+    tone has a steady part of power a and a scattered part of power d, so branch j under
+    hypothesis h is (v/2)·χ'²(2, 2|R_jh|²a/v), v = N0 + |R_jh|²·d (the Rician fit: one
+    component; the level mixture: d = 0 and one component per level). ``sent`` holds the
+    known hypothesis per symbol or −1 (mixed over ``priors``); OOK has hypotheses off and on of
+    its one branch. Returns (largest statistic, Bonferroni p-value, values tested), as
+    :func:`check_energy_laws`.
+    """
+    e = np.asarray(energy, dtype=float)
+    n, m = e.shape
+    idx = np.arange(n)
+    if n * m > max_values:
+        rng = np.random.default_rng(_GOF_SEED)
+        idx = np.sort(rng.choice(n, size=max_values // m, replace=False))
+    e, sent = e[idx], np.asarray(sent)[idx]
+    if ook:
+        r2 = np.array([[0.0, 1.0]])  # off: noise only; on: the sent tone's law
+    elif gram is None:
+        r2 = np.eye(m)
+    else:
+        g = np.asarray(gram)
+        r2 = np.abs(g if g.ndim == 2 else g.mean(axis=0)) ** 2  # per-symbol: their mean
+    tests = []
+    for j in range(m):
+        cdf = np.zeros(len(e))
+        for h in range(r2.shape[1]):
+            weight = np.where(sent >= 0, (sent == h).astype(float), priors[h])
+            if not weight.any():
+                continue
+            part = np.zeros(len(e))
+            for c_weight, d, a in components:
+                v = noise_var + r2[j, h] * d
+                lam = np.full(len(e), 2.0 * r2[j, h] * a / v)
+                part += c_weight * _chi2_2_cdf_rows(2.0 * e[:, j] / v, lam)
+            cdf += weight * part
+        tests.append(_ks_uniform(np.clip(cdf, 0.0, 1.0)))
+    statistic = max(t[0] for t in tests)
+    return statistic, min(1.0, m * min(t[1] for t in tests)), int(e.size)

@@ -37,10 +37,10 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import optimize, special
 
 from iqstat.fit.bessel import _log_i0
-from iqstat.fit.goodness_of_fit import GOF_MAX_VALUES, _ks_uniform
+from iqstat.fit.goodness_of_fit import faded_energy_laws
 from iqstat.fit.result import MIN_SYMBOLS, NoncoherentFit, _build
 
 __all__ = ["RicianFit", "fit_rician", "FADING_LR_MIN"]
@@ -56,7 +56,6 @@ _LOGIT_F_BOUNDS = (math.log(0.01), math.log(1e10))
 _HESSIAN_STEP = 1e-4
 #: L-BFGS-B tolerances: the log-likelihood to ~1e-12 relative, its gradient to 1e-8.
 _OPTIMISER_OPTIONS = {"ftol": 1e-12, "gtol": 1e-8}
-_GOF_SEED = 20261203
 #: logit f of the constant-amplitude model (f = 1 − 2e-18: no scattered part).
 _STEADY_LOGIT = 40.0
 
@@ -154,40 +153,6 @@ def _hessian(neg_grad, x: np.ndarray, step: float) -> np.ndarray:
     ]
     h = np.array(cols)
     return 0.5 * (h + h.T)
-
-
-def _branch_laws_pvalue(e, n0, amp2, diff, gram, pi, sent, ook) -> tuple[float, float, int]:
-    """Branchwise KS of the energies against their mixture laws (Bonferroni over branches)."""
-    n, m = e.shape
-    idx = np.arange(n)
-    if n * m > GOF_MAX_VALUES:
-        rng = np.random.default_rng(_GOF_SEED)
-        idx = np.sort(rng.choice(n, size=GOF_MAX_VALUES // m, replace=False))
-    e = e[idx]
-    sent = sent[idx]
-    if ook:
-        # Off: central with N0; on: the sent tone's law.
-        r2 = np.array([[0.0, 1.0]])
-    elif gram is None:
-        r2 = np.eye(m)
-    else:
-        g = np.asarray(gram)
-        g = g if g.ndim == 2 else g.mean(axis=0)  # per-symbol matrices: their mean
-        r2 = np.abs(g) ** 2
-    n_hyp = r2.shape[1]
-    tests = []
-    for i in range(m):
-        cdf = np.zeros(len(e))
-        for k in range(n_hyp):
-            v = n0 + r2[i, k] * diff
-            lam = 2.0 * r2[i, k] * amp2 / v
-            y = 2.0 * e[:, i] / v
-            ck = stats.ncx2.cdf(y, 2, lam) if lam > 1e-12 else stats.chi2.cdf(y, 2)
-            weight = np.where(sent >= 0, (sent == k).astype(float), pi[k])
-            cdf += weight * ck
-        tests.append(_ks_uniform(np.clip(cdf, 0.0, 1.0)))
-    stat = max(t[0] for t in tests)
-    return stat, min(1.0, m * min(t[1] for t in tests)), int(e.size)
 
 
 def fit_rician(
@@ -299,7 +264,7 @@ def fit_rician(
         )  # fmt: skip
         lr = max(2.0 * (float(steady.fun) - float(res.fun)), 0.0)
     amp2, diff = f * gam * n0, (1.0 - f) * gam * n0
-    gof = _branch_laws_pvalue(e, n0, amp2, diff, gram, pi, sent_arr, ook)
+    gof = faded_energy_laws(e, n0, [(1.0, diff, amp2)], gram, pi, sent_arr, ook)
     k = f / (1.0 - f)
     fit = _build(
         method=method,

@@ -24,6 +24,8 @@ from iqstat.available import available_ebn0
 from iqstat.fading import MIN_SYMBOLS as FADING_MIN_KNOWN
 from iqstat.fading import FadingEstimate, fading_from_energies, k_from_gamma
 from iqstat.fit import fit_bursts_many
+from iqstat.fit.goodness_of_fit import faded_energy_laws
+from iqstat.fit.level_mixture import fit_level_mixture
 from iqstat.fit.rician import FADING_LR_MIN, fit_rician
 from iqstat.measure.gram_classes import _fit_gram, _fit_z, _theory_rho
 from iqstat.measure.work import MIN_FIT_SYMBOLS, _batched, _Context, _Work
@@ -156,10 +158,30 @@ def _use_fading_fit(w: _Work, m: str, z: np.ndarray, nda, z_stat: float) -> None
     data-aided fit the same way."""
     fit = w.fit
     k = nda.k_factor
+    known = None if w.known is None else np.asarray(w.known[: len(z)])
+    on_share = fit.priors[1] if m == "ook" else 1.0
+    w.levels = fit_level_mixture(
+        z, modulation=m, noise_var=nda.fit.noise_var, mean_esn0=nda.fit.esn0 / on_share,
+        priors=fit.priors, sent=known,
+    )  # fmt: skip
     w.fit_steady, w.fit = fit, nda.fit
+    law = w.levels.support() if w.levels.converged else ()
+    if law:
+        # The energies against the burst's own level law: what is left is the noise's.
+        n0 = nda.fit.noise_var
+        sent = np.full(len(z), -1) if known is None else known
+        stat, p, count = faded_energy_laws(
+            z.real**2 + z.imag**2, n0, [(wt, 0.0, g * n0) for g, wt in law],
+            None if m == "ook" else _fit_gram(w, *w.sel), np.asarray(fit.priors), sent,
+            m == "ook",
+        )  # fmt: skip
+        w.fit = dataclasses.replace(
+            w.fit, gof_statistic=stat, gof_pvalue=p, gof_n_values=count,
+            gof_test="ks-pit-branchwise-level-law",
+        )  # fmt: skip
     w.fading = dataclasses.replace(
         w.fading, k_db=nda.k_db, gamma=(1.0 + 2.0 * k) / (1.0 + k) ** 2, z=z_stat,
-        k_source="fading-fit",
+        k_source="fading-fit", esn0_law=law,
     )  # fmt: skip
     if w.fit_da is None or not w.fit_da.converged or w.known is None:
         return
@@ -222,9 +244,16 @@ def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
     pred = np.atleast_1d(theory.predicted_ber(ebn0, m, rho_abs=rho))
     for i, w in enumerate(use):
         if w.fit_steady is not None:
-            # Fading fit: the white-noise BER averaged over the fitted Rician law.
-            k = 10.0 ** (w.fading.k_db / 10.0)
-            pred[i] = ber_rician(ebn0[i], m, k, rho[i] if m != "ook" else 0.0)
+            # Fading fit: the white-noise BER averaged over the burst's own law of Es/N0
+            # (the grid mixture; the Rician law where the mixture did not converge).
+            r_i = rho[i] if m != "ook" else 0.0
+            if w.levels is not None and w.levels.converged:
+                scale = w.fit.priors[1] if m == "ook" else 1.0 / ctx.profile.bits_per_symbol
+                pred[i] = w.levels.average(
+                    lambda g, s=scale, r=r_i: theory.predicted_ber(g * s, m, rho_abs=r)
+                )
+            else:
+                pred[i] = ber_rician(ebn0[i], m, 10.0 ** (w.fading.k_db / 10.0), r_i)
         elif m != "ook" and w.sym_grams is not None:
             # Symbols of two lengths, two tone correlations: the mean of their BERs.
             pred[i] = sum(

@@ -20,6 +20,7 @@ from iqstat.errors import MeasurementError
 from iqstat.estimate import LinkEstimate
 from iqstat.fading import FadingEstimate
 from iqstat.fit import NoncoherentFit
+from iqstat.fit.level_mixture import LevelMixture
 from iqstat.patterns import BitCheck
 from iqstat.profile import FrameLayout, LinkProfile, bits_to_symbols
 from iqstat.results import BurstResult
@@ -63,6 +64,7 @@ class _Work:
     fit_da: NoncoherentFit | None = None
     fit_dd: NoncoherentFit | None = None
     fit_steady: NoncoherentFit | None = None  # the constant-amplitude fit, where it fades
+    levels: LevelMixture | None = None  # the law of the Es/N0 within a fading burst
     band: tuple[float | None, float | None] = (None, None)  # in-band energy, its width [Hz]
     available: AvailableEbN0 | None = None
     fading: FadingEstimate | None = None
