@@ -8,6 +8,7 @@ capture's own 95 % interval, widened for the spread of per-burst truths.
 from __future__ import annotations
 
 import json
+import tomllib
 import warnings
 from pathlib import Path
 
@@ -63,7 +64,11 @@ def test_measure_sample_capture_cli_and_api(tmp_path, name):
     lo, hi = s["ebn0_db_ci95"]
     assert s["bursts"] == len(sent)
     assert lo - 0.3 <= truth_db <= hi + 0.3, (s["ebn0_db"], truth_db)
-    assert s["bits_checked"] >= 0.9 * len(sent) * 400
+    # Under fading a burst whose sync word falls in a deep fade goes unchecked: 80 % then.
+    scenario = tomllib.loads((SAMPLES / f"{name}.toml").read_text())
+    fades = "rician_k_db" in scenario.get("impairments", {})
+    assert s["bits_checked"] >= (0.8 if fades else 0.9) * len(sent) * 400
+    assert ("fading" in s["flags"]) == fades
     # Eb/N0 from power: the capture's interval holds the truth (the band keeps all but a
     # sliver of the CPFSK spectrum), and so do the bursts' intervals but for a few: with 10
     # bursts, binomial(10, 0.05) gives P(at most two misses) = 0.988.
