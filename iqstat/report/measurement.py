@@ -332,8 +332,8 @@ def _headline(report: MeasurementReport, console: Console) -> None:
         if s.fading_k_db is not None:
             t.add_row(
                 "required in fading",
-                f"BER {s.required_ber:.0e} with K ≈ {s.fading_k_db:.1f} dB (median of the fading "
-                f"bursts) → mean Eb/N0 {_db(s.fading_required_ebn0_db, 2)}",
+                f"BER {s.required_ber:.0e}, Rician K ≈ {s.fading_k_db:.1f} dB → mean Eb/N0 "
+                f"{_db(s.fading_required_ebn0_db, 2)}",
             )
             ok = s.fading_margin_db is not None and s.fading_margin_db >= 0
             t.add_row(
