@@ -74,6 +74,24 @@ CASES = {
         10,
         {"interferer": {"kind": "tone", "offset_hz": 1e3, "inr_db": 0.0}},
         {},
+        "truth",
+    ),
+    "interferer-inside": (
+        "2fsk",
+        4800,
+        4800,
+        250e3,
+        (-500, 500),
+        10,
+        {
+            "interferer": {
+                "kind": "narrowband",
+                "offset_hz": 1e3,
+                "inr_db": 0.0,
+                "bandwidth_hz": 200.0,
+            }
+        },
+        {},
         "interference",
     ),
     "fading": (

@@ -426,13 +426,33 @@ def test_a_strong_carrier_beside_the_band_is_cut_out():
         assert a_lo - 0.3 <= t.ebn0_db <= a_hi + 0.3, (b.available_ebn0_db, t.ebn0_db)
 
 
-def test_a_carrier_inside_the_band_is_flagged_as_interference():
+def test_a_steady_carrier_inside_the_band_is_cancelled():
+    # A carrier as strong as the whole band's noise, 1 kHz off centre, between the tones: it
+    # hides the gaps from the detection; cancelled, the capture reads as without it.
     doc = _doc("2fsk", 12.0, count=4)
     doc["bursts"]["cfo_hz"] = {"uniform": [-500.0, 500.0]}
     doc["bursts"]["gap_s"] = 0.03
     doc["impairments"]["interferer"] = {"kind": "tone", "offset_hz": 1000.0, "inr_db": 0.0}
+    report, truth_bursts = _run(doc)
+    s = report.summary
+    assert [ln.cancelled for ln in report.detection.lines] == [True]
+    assert report.detection.lines[0].freq_hz == pytest.approx(1000.0, abs=0.05)
+    assert "interference" not in s.flags and s.bursts == 4
+    truth = 10 * math.log10(np.mean([10 ** (b.ebn0_db / 10) for b in truth_bursts.bursts]))
+    lo, hi = s.ebn0_db_ci95
+    assert lo - 0.1 <= truth <= hi + 0.1, (s.ebn0_db, truth)
+
+
+def test_a_narrowband_interferer_inside_the_band_is_flagged_not_cancelled():
+    doc = _doc("2fsk", 12.0, count=4)
+    doc["bursts"]["cfo_hz"] = {"uniform": [-500.0, 500.0]}
+    doc["bursts"]["gap_s"] = 0.03
+    doc["impairments"]["interferer"] = {
+        "kind": "narrowband", "offset_hz": 1000.0, "inr_db": 0.0, "bandwidth_hz": 200.0,
+    }  # fmt: skip
     report, _ = _run(doc)
     s = report.summary
+    assert not any(ln.cancelled for ln in report.detection.lines)
     assert "interference" in s.flags and "profile-mismatch" not in s.flags
     if s.ebn0_db is None:
         assert "continuous signal" in s.message

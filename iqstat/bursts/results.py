@@ -70,12 +70,19 @@ class ContinuousLine:
         Its power above the noise, dBFS.
     cn0_dbhz : float
         That power over the noise PSD under it, dB-Hz (a line C/N0).
+    cancelled : bool
+        Whether it was steady enough to be subtracted from the samples (a line inside the
+        band, :mod:`iqstat.cancel`); the figures are then those of the capture without it.
+    freq_hz : float or None
+        Its frequency as measured for the cancellation (to a fraction of a hertz); else None.
     """
 
     f_lo_hz: float
     f_hi_hz: float
     power_dbfs: float
     cn0_dbhz: float
+    cancelled: bool = False
+    freq_hz: float | None = None
 
     @classmethod
     def of(cls, f_lo_hz: float, f_hi_hz: float, power: float, n0: float) -> ContinuousLine:
@@ -150,15 +157,16 @@ class BurstDetection:
         above 1/10 of its noise.
 
         Lines beside the band are cut out of the samples (:mod:`iqstat.excise`); those
-        overlapping it stay. A line of power C inside the band leaks C·T into a
-        rectangular correlator of a symbol T = 1/Rs, whose noise is N0: flagged when
-        (C/N0)·T exceeds INTERFERENCE_LEAK_RATIO. All lines count when the full band was used;
+        overlapping it stay unless they were cancelled (:mod:`iqstat.cancel`). A line of
+        power C inside the band leaks C·T into a rectangular correlator of a symbol T = 1/Rs,
+        whose noise is N0: flagged when (C/N0)·T exceeds INTERFERENCE_LEAK_RATIO. All lines
+        count when the full band was used;
         with Rs unknown, every line left in the band.
         """
         if self.band_hz is None:
-            return self.lines
+            return tuple(ln for ln in self.lines if not ln.cancelled)
         lo, hi = self.band_hz
-        left = [ln for ln in self.lines if ln.f_hi_hz > lo and ln.f_lo_hz < hi]
+        left = [ln for ln in self.lines if ln.f_hi_hz > lo and ln.f_lo_hz < hi and not ln.cancelled]
         if not symbol_rate_hz:
             return tuple(left)
         t = 1.0 / symbol_rate_hz

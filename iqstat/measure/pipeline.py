@@ -18,6 +18,7 @@ import numpy as np
 
 from iqstat import theory
 from iqstat.bursts import Burst, BurstDetection, detect_bursts, survey_capture
+from iqstat.cancel import LineCancelledCapture, fit_line_model
 from iqstat.capture import Capture
 from iqstat.errors import MeasurementError
 from iqstat.estimate import LinkEstimate
@@ -104,6 +105,26 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     ]
 
 
+def _cancel_steady_lines(capture, detection, profile, options):
+    """A steady line inside the band (a spur, a carrier) is subtracted from the samples
+    (:mod:`iqstat.cancel`) and the bursts detected again without it; an unsteady one stays
+    and is flagged as interference."""
+    rate = profile.symbol_rate_hz
+    inside = detection.interfering_lines(rate)
+    if not inside or not rate:
+        return capture, detection
+    model, _why = fit_line_model(capture, detection, inside, rate)
+    if model is None:
+        return capture, detection
+    clean = LineCancelledCapture(capture, model)
+    again = detect_bursts(clean, **options)
+    done = tuple(
+        dataclasses.replace(ln, cancelled=True, freq_hz=tr.freq_hz)
+        for ln, tr in zip(inside, model.tracks, strict=True)
+    )
+    return clean, dataclasses.replace(again, lines=again.lines + done)
+
+
 def measure_burst(
     capture: Capture,
     burst: Burst,
@@ -173,6 +194,7 @@ def measure_capture(
             facts, detection = survey_capture(capture, **options)
         else:
             detection = detect_bursts(capture, **options)
+        capture, detection = _cancel_steady_lines(capture, detection, profile, options)
     facts = compute_facts(capture) if facts is None else facts
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50

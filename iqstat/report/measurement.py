@@ -58,8 +58,8 @@ FLAG_TEXT = {
     "mean over the fades and their predicted BER is averaged over them",
     "below-requirement-in-fading": "the mean Eb/N0 meets the requirement in steady noise but "
     "not under the fading measured (see the margin in fading)",
-    "interference": "a continuous narrowband signal (in the gaps too) lies in the signal band: "
-    "the figures count it as noise",
+    "interference": "a continuous narrowband signal (in the gaps too) lies in the signal band "
+    "and is not steady enough to cancel: the figures count it as noise",
 }
 
 
@@ -160,10 +160,14 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
         inside = det.band_hz is None or (
             ln.f_hi_hz > det.band_hz[0] and ln.f_lo_hz < det.band_hz[1]
         )
-        dc += (
-            f"; continuous signal at {0.5e-3 * (ln.f_lo_hz + ln.f_hi_hz):+.1f} kHz "
-            f"({ln.power_dbfs:.1f} dBFS, {'in the band' if inside else 'cut out'})"
+        state = "cancelled" if ln.cancelled else ("in the band" if inside else "cut out")
+        where = (
+            f"{0.5e-3 * (ln.f_lo_hz + ln.f_hi_hz):+.1f} kHz"
+            if ln.freq_hz is None
+            else f"{ln.freq_hz:+.1f} Hz"
         )
+        dc += f"; continuous signal at {where} ({ln.power_dbfs:.1f} dBFS, {state})"
+
     console.print(
         f"  {f.samples:,} samples of {f.datatype} at {f.sample_rate_hz / 1e3:g} kS/s "
         f"({f.duration_s:.3f} s); noise floor {_db(det.noise_floor_dbfs, 1, ' dBFS')}"
