@@ -41,8 +41,14 @@ MIN_GAPS = 3
 #: duration over the whole capture: what a burst adds to a block's estimate is its projection
 #: onto a line of the block's duration, ~P_s/(T·B) of its power.
 BLOCK_S = 0.1
+#: Memory stays bounded: at most MAX_SPANS gaps (or blocks), evenly spread over the capture,
+#: each at most MAX_SPAN_S long (its middle), are read.
+MAX_SPANS = 64
+MAX_SPAN_S = 0.1
 #: The residual a cancelled line may leave, as a fraction of the interference threshold.
 RESIDUAL_SHARE = 0.5
+#: Samples of the line model made at a time.
+_BLOCK = 1 << 16
 #: Zero padding of the frequency search on the longest gap.
 _PAD = 8
 
@@ -63,15 +69,20 @@ class LineModel:
         self.fs = float(fs)
 
     def samples(self, start: int, n: int) -> np.ndarray:
-        """The lines' sum over samples [start, start + n), complex64."""
-        out = np.zeros(n, dtype=np.complex128)
-        pos = start + np.arange(n, dtype=np.float64)
-        for tr in self.tracks:
-            c = np.interp(pos, tr.knots, tr.amps.real) + 1j * np.interp(pos, tr.knots, tr.amps.imag)
-            step = tr.freq_hz / self.fs
-            frac0 = (step * start) % 1.0  # the phase at `start`, kept small for precision
-            out += c * np.exp(2j * np.pi * (frac0 + step * np.arange(n)))
-        return out.astype(np.complex64)
+        """The lines' sum over samples [start, start + n), complex64 (made in blocks of
+        _BLOCK samples, so that the temporaries stay small whatever n is)."""
+        out = np.zeros(n, dtype=np.complex64)
+        for a in range(0, n, _BLOCK):
+            m = min(_BLOCK, n - a)
+            pos = (start + a) + np.arange(m, dtype=np.float64)
+            for tr in self.tracks:
+                c = np.interp(pos, tr.knots, tr.amps.real) + 1j * np.interp(
+                    pos, tr.knots, tr.amps.imag
+                )
+                step = tr.freq_hz / self.fs
+                frac0 = (step * (start + a)) % 1.0  # the phase at the block's start, kept small
+                out[a : a + m] += c * np.exp(2j * np.pi * (frac0 + step * np.arange(m)))
+        return out
 
 
 class LineCancelledCapture(Capture):
@@ -102,6 +113,20 @@ def _gap_spans(detection: BurstDetection, n_samples: int) -> list[tuple[int, int
         if b2 - a2 >= MIN_GAP_FRAMES * detection.frame_samples:
             spans.append((a2, b2))
     return spans
+
+
+def _bounded(spans, max_len: int) -> list[tuple[int, int]]:
+    """At most MAX_SPANS of the spans, evenly spread, each cut to its middle max_len."""
+    if len(spans) > MAX_SPANS:
+        pick = np.unique(np.linspace(0, len(spans) - 1, MAX_SPANS).round().astype(int))
+        spans = [spans[i] for i in pick]
+    out = []
+    for a, b in spans:
+        if b - a > max_len:
+            a = (a + b - max_len) // 2
+            b = a + max_len
+        out.append((a, b))
+    return out
 
 
 def _peak_hz(x: np.ndarray, lo_hz: float, hi_hz: float, fs: float) -> float:
@@ -152,6 +177,7 @@ def fit_line_model(
         spans = [sp for sp in spans if sp[1] - sp[0] >= blk // 2]
         if len(spans) < MIN_GAPS:
             return None, "the capture is too short to measure the line's steadiness"
+    spans = _bounded(spans, int(MAX_SPAN_S * fs))
     dc = np.complex64(detection.dc_offset)
     xs = [capture.read(a, b - a) - dc for a, b in spans]
     n = np.array([b - a for a, b in spans], dtype=float)
@@ -166,15 +192,23 @@ def fit_line_model(
         half_bin = fs / detection.frame_samples
         f = _peak_hz(xs[longest], ln.f_lo_hz - half_bin, ln.f_hi_hz + half_bin, fs)
         c = _amplitudes(xs, spans, f, fs)
-        for _ in range(2):
-            # The phase advance across the gaps refines the frequency (weighted by |c|²·n).
-            phi = np.unwrap(np.angle(c))
-            wts = np.abs(c) ** 2 * n
-            t = centres / fs
-            tm = np.sum(wts * t) / np.sum(wts)
-            slope = np.sum(wts * (t - tm) * phi) / np.sum(wts * (t - tm) ** 2)
-            f += slope / (2.0 * np.pi)
-            c = _amplitudes(xs, spans, f, fs)
+        # The phase advance across the gaps refines the frequency (weighted by |c|²·n), over
+        # spans ever farther from the longest one, so that the phase never wraps unseen.
+        t = centres / fs
+        reach = 4.0 * float(np.min(np.diff(t))) if len(t) > 1 else 0.0
+        while True:
+            near = np.abs(t - t[longest]) <= reach
+            if np.count_nonzero(near) >= 2:
+                phi = np.unwrap(np.angle(c[near]))
+                wts = (np.abs(c) ** 2 * n)[near]
+                tn = t[near]
+                tm = np.sum(wts * tn) / np.sum(wts)
+                slope = np.sum(wts * (tn - tm) * phi) / np.sum(wts * (tn - tm) ** 2)
+                f += slope / (2.0 * np.pi)
+                c = _amplitudes(xs, spans, f, fs)
+            if near.all():
+                break
+            reach *= 2.0
         # Steadiness: each interior gap predicted linearly from its neighbours; the error
         # beyond what the noise of the three estimates explains is what would be left.
         w2 = (centres[1:-1] - centres[:-2]) / (centres[2:] - centres[:-2])
