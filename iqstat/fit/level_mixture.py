@@ -34,6 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from iqstat.fit.bessel import _log_i0
+from iqstat.fit.rician import _hypotheses
 
 __all__ = ["LevelMixture", "fit_level_mixture"]
 
@@ -138,12 +139,7 @@ def fit_level_mixture(
     sent : ndarray of int, optional
         Known hypothesis per symbol, −1 where unknown.
     """
-    z = np.asarray(z)
-    n, m = z.shape
-    ook = modulation == "ook"
-    n_hyp = 2 if ook else m
-    pi = np.full(n_hyp, 1.0 / n_hyp) if priors is None else np.asarray(priors, dtype=float)
-    sent = np.full(n, -1, dtype=np.intp) if sent is None else np.asarray(sent, dtype=np.intp)
+    z, ook, pi, sent = _hypotheses(z, modulation, priors, sent)
     levels = np.concatenate([[0.0], mean_esn0 * np.geomspace(GRID_LO, GRID_HI, GRID_POINTS)])
     r = np.abs(z) / math.sqrt(noise_var)  # (n, m)
     # log of exp(−γ_j)·I0(2√γ_j·R_nk): (n, m, J)

@@ -83,6 +83,19 @@ class RicianFit:
     likelihood_ratio: float | None = None
 
 
+def _hypotheses(z, modulation: str, priors, sent):
+    """(z as an array, OOK or not, the hypothesis priors, the known hypothesis per symbol or
+    −1): FSK has one hypothesis per tone, OOK two (off, on) on its one branch; priors
+    uniform unless given."""
+    z = np.asarray(z)
+    n, m = z.shape
+    ook = modulation == "ook"
+    n_hyp = 2 if ook else m
+    pi = np.full(n_hyp, 1.0 / n_hyp) if priors is None else np.asarray(priors, dtype=float)
+    known = np.full(n, -1, dtype=np.intp) if sent is None else np.asarray(sent, dtype=np.intp)
+    return z, ook, pi, known
+
+
 def _prepared(z: np.ndarray, gram):
     """|z_k|², |z_k|, the common quadratic form zᴴR⁻¹z of every symbol, and Σ log det R."""
     e = z.real**2 + z.imag**2
@@ -192,12 +205,8 @@ def fit_rician(
         ``fit.method`` is ``"nda-ml-rician"`` or, when every symbol is known,
         ``"da-ml-rician"``. A fit that cannot be made says why in ``fit.message``.
     """
-    z = np.asarray(z)
+    z, ook, pi, sent_arr = _hypotheses(z, modulation, priors, sent)
     n, m = z.shape
-    ook = modulation == "ook"
-    n_hyp = 2 if ook else m
-    pi = np.full(n_hyp, 1.0 / n_hyp) if priors is None else np.asarray(priors, dtype=float)
-    sent_arr = np.full(n, -1, dtype=np.intp) if sent is None else np.asarray(sent, dtype=np.intp)
     method = "da-ml-rician" if np.all(sent_arr >= 0) else "nda-ml-rician"
     e, r, q, log_det = _prepared(z, gram)
     log_pi = np.log(np.maximum(pi, 1e-300))
