@@ -27,7 +27,7 @@ import numpy as np
 import scipy.fft
 
 from iqstat.bursts.results import INTERFERENCE_LEAK_RATIO, BurstDetection, ContinuousLine
-from iqstat.capture import Capture
+from iqstat.capture import Capture, CorrectedCapture
 
 __all__ = ["LineModel", "LineCancelledCapture", "fit_line_model"]
 
@@ -85,18 +85,16 @@ class LineModel:
         return out
 
 
-class LineCancelledCapture(Capture):
+class LineCancelledCapture(CorrectedCapture):
     """A capture read with steady lines subtracted (every read path of :class:`Capture`)."""
 
     def __init__(self, base: Capture, model: LineModel) -> None:
-        self.__dict__.update(base.__getstate__())
-        self._file = None
+        super().__init__(base)
         self.line_model = model
 
-    def _read_into(self, start: int, stop: int, out: np.ndarray) -> int:
-        n_bad = super()._read_into(start, stop, out)
-        out[: stop - start] -= self.line_model.samples(start, stop - start)
-        return n_bad
+    def _correct(self, start: int, x: np.ndarray, scale: float) -> None:
+        lines = self.line_model.samples(start, len(x))
+        x -= lines if scale == 1.0 else lines / np.float32(scale)
 
 
 def _gap_spans(detection: BurstDetection, n_samples: int) -> list[tuple[int, int]]:

@@ -391,3 +391,36 @@ class Capture:
             f"Capture({self.name!r}, {self.datatype.name}, {self.n_samples} samples, "
             f"{self.sample_rate_hz:g} Hz)"
         )
+
+
+class CorrectedCapture(Capture):
+    """A capture read through a correction of its samples: every read path of the capture it
+    wraps (``base``, which may itself be corrected), then :meth:`_correct`.
+
+    Subclasses define ``_correct(start, x, scale)``, which corrects in place the samples
+    ``x`` starting at index ``start`` that are in units of ``scale`` × full scale (1 for
+    :meth:`read`; the integer type's scale for the unscaled chunks of the facts pass). The
+    stored components (:meth:`iter_raw_chunks`) stay those of the recording.
+    """
+
+    def __init__(self, base: Capture) -> None:
+        self.__dict__.update(base.__getstate__())
+        self._file = None
+        self._base = base
+
+    def _correct(self, start: int, x: np.ndarray, scale: float) -> None:
+        raise NotImplementedError
+
+    def _read_into(self, start: int, stop: int, out: np.ndarray) -> int:
+        n_bad = self._base._read_into(start, stop, out)
+        self._correct(start, out[: stop - start], 1.0)
+        return n_bad
+
+    def iter_raw_chunks(self, chunk_samples: int = DEFAULT_CHUNK_SAMPLES):
+        yield from self._base.iter_raw_chunks(chunk_samples)
+
+    def correct_unscaled(self, start: int, x: np.ndarray, scale: float) -> None:
+        """Apply the corrections of the whole chain to unscaled samples (innermost first)."""
+        if isinstance(self._base, CorrectedCapture):
+            self._base.correct_unscaled(start, x, scale)
+        self._correct(start, x, scale)

@@ -12,7 +12,7 @@ import numpy as np
 import scipy.fft
 from numpy.lib.stride_tricks import sliding_window_view
 
-from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture
+from iqstat.capture import DEFAULT_CHUNK_SAMPLES, Capture, CorrectedCapture
 from iqstat.noise import noise_floor_lowest_cluster
 from iqstat.units import db
 
@@ -354,9 +354,9 @@ def iter_unscaled_chunks(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SA
     Complex integer recordings are read from their stored components and converted to
     complex64 without the final scaling (multiply by :func:`unscaled_factor`, a power of two,
     so that results equal those on scaled samples exactly); ``raw`` is then the stored
-    components, shape (n, 2), for counting clipped samples. A capture with steady lines
-    cancelled (:class:`iqstat.cancel.LineCancelledCapture`) yields its samples less the
-    lines; ``raw`` stays the stored components. Other types use the capture's
+    components, shape (n, 2), for counting clipped samples. A corrected capture
+    (:class:`iqstat.capture.CorrectedCapture`: lines cancelled, gain steps undone) yields its
+    corrected samples; ``raw`` stays the stored components. Other types use the capture's
     ordinary conversion (which also counts non-finite values) and ``raw`` is None. The
     yielded arrays are reused buffers.
     """
@@ -366,15 +366,15 @@ def iter_unscaled_chunks(capture: Capture, chunk_samples: int = DEFAULT_CHUNK_SA
             yield start, x, bad, None
         return
     buf = np.empty((int(chunk_samples), 2), dtype=np.float32)
-    lines = getattr(capture, "line_model", None)  # iqstat.cancel.LineCancelledCapture
+    fix = capture.correct_unscaled if isinstance(capture, CorrectedCapture) else None
     for start, raw in capture.iter_raw_chunks(chunk_samples):
         b = buf[: len(raw)]
         np.copyto(b, raw, casting="unsafe")
         if dt.offset:
             b -= np.float32(dt.offset)
         x = b.reshape(-1).view(np.complex64)
-        if lines is not None:
-            x -= lines.samples(start, len(x)) / np.float32(dt.scale)
+        if fix is not None:
+            fix(start, x, dt.scale)
         yield start, x, 0, raw
 
 

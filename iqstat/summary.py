@@ -126,6 +126,8 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
         flags.append("interference")
     if not facts.is_complex:
         flags.append("real-valued-capture")
+    if detection.gain_span_db > 0:
+        flags.append("gain-steps")
     for fl in BURST_FLAGS_RAISED:
         if any(fl in r.flags for r in results):
             flags.append(fl)

@@ -71,6 +71,7 @@ class _Survey:
     noise_per_bin: np.ndarray  # noise power per rectangular-window bin, E|X_k|²/L², (L,)
     rel_std: float  # relative standard deviation of noise_per_bin summed over a band
     lines: tuple[ContinuousLine, ...] = ()  # continuous narrowband signals (not bursts)
+    level_span_db: float = 0.0  # how far the noise level moves between blocks (0: steady)
 
 
 def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
@@ -92,6 +93,11 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     pw += Xi * Xi
     spec = np.mean(pw, axis=1).astype(np.float64)  # as float32 means
     spec = np.fft.fftshift(spec, axes=1)
+    level_span_db, gains = _level_steps(spec, bf)
+    if gains is not None:
+        # A receiver gain step (AGC) moves every bin at once; the bursts only theirs. Taken
+        # off, the bins that come and go are the bursts' again.
+        spec = spec / gains[:, None]
     q = 0.1
     # Hann-windowed bins of white noise are complex Gaussian, so a block mean over bf frames is
     # Gamma(bf): the same low-quantile estimator as for frame powers.
@@ -137,7 +143,7 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     # so the noise's quantile correction 1/g_q would overstate it (by 1.6 dB at 16 frames).
     lines = _continuous_lines(continuous, np.maximum(own - ref, 0.0) * g_q, ref, sw2, L, fs)
     if idx.size == 0:
-        return _Survey(None, noise_per_bin, rel_std, lines)
+        return _Survey(None, noise_per_bin, rel_std, lines, level_span_db)
     # Clusters of occupied bins (gaps up to L/16 bins). The bursts are what comes and goes:
     # keep the cluster with most excess power in bins that do (a spur or a carrier present
     # all the time can be far stronger), or, when no bin comes and goes (bursts filling the
@@ -159,7 +165,33 @@ def _survey_band(capture: Capture, frame_samples: int) -> _Survey | None:
     while hi < L - 1 and smooth[hi + 1] > grow_thr and not dc[hi + 1]:
         hi += 1
     bins = np.sort(np.fft.fftshift(np.arange(L))[lo : hi + 1])
-    return _Survey(bins, noise_per_bin, rel_std, lines)
+    return _Survey(bins, noise_per_bin, rel_std, lines, level_span_db)
+
+
+#: The noise level is said to move between survey blocks when their median bins differ by
+#: more than LEVEL_SPAN_MIN_DB and by more than LEVEL_SPAN_Z standard errors.
+LEVEL_SPAN_MIN_DB = 0.5
+LEVEL_SPAN_Z = 6.0
+
+
+def _level_steps(spec: np.ndarray, bf: int) -> tuple[float, np.ndarray | None]:
+    """How far the noise level moves over the survey's blocks, and each block's level over
+    the capture's median (None when it does not move significantly).
+
+    A block's level is the median of its bins: a narrowband signal and lines hold a minority
+    of them. Its relative standard error under steady white noise is about √(π/2)/√(bf·L)
+    (bins of a Gamma(bf) mean; the normal approximation of a median, common practice, no
+    source).
+    """
+    level = np.median(spec, axis=1)
+    ref = float(np.median(level))
+    if not (ref > 0 and np.all(level > 0)):
+        return 0.0, None
+    se = math.sqrt(math.pi / 2.0) / math.sqrt(bf * spec.shape[1])
+    ratio = float(level.max() / level.min())
+    if 10.0 * math.log10(ratio) < LEVEL_SPAN_MIN_DB or ratio - 1.0 < 2.0 * LEVEL_SPAN_Z * se:
+        return 0.0, None
+    return 10.0 * math.log10(ratio), level / ref
 
 
 def _continuous_lines(mask, excess, ref, sw2: float, L: int, fs: float):

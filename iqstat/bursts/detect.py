@@ -41,6 +41,7 @@ from iqstat.facts import (
     unscaled_factor,
 )
 from iqstat.frontend import NO_CORRECTION, measure_iq_correction
+from iqstat.levels import gain_track
 from iqstat.noise import (
     noise_floor_lowest_cluster,
     threshold_from_floor,
@@ -516,6 +517,14 @@ def _detect_bursts(
                 energy = facts.last_frame_energy  # the same frames' Σ|x|², computed alike
         fpass.add(x, sc2, energy)
     fp = fpass.result()
+    track, track_span_db = None, 0.0
+    if survey is not None and survey.level_span_db > 0 and band_edges is not None:
+        # The receiver's gain moved: its noise level, frame by frame, from outside the band
+        # (iqstat.levels undoes it and detects again).
+        track, track_span_db = gain_track(
+            fp.full.astype(np.float64) - fp.band.astype(np.float64),
+            (L if capture.is_complex else L / 2) - fp.band_dof,
+        )
     p = fp.band.astype(np.float64)
     dof = fp.band_dof
     # A receiver DC offset is a stationary line at 0 Hz: in the band it would lift every
@@ -709,4 +718,6 @@ def _detect_bursts(
         dc_offset=dc,
         iq=iq,
         lines=lines,
+        gain_span_db=track_span_db,
+        gain_track=track,
     )

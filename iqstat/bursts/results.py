@@ -8,7 +8,7 @@ the other two its output (bursts, and the noise, DC offset and I/Q imbalance of 
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
@@ -151,6 +151,11 @@ class BurstDetection:
     dc_offset: complex
     iq: IqCorrection
     lines: tuple[ContinuousLine, ...]
+    #: When the receiver's gain moved during the capture (the survey saw every bin's level
+    #: move at once): how far, dB, and the per-frame noise level over its median (tracked
+    #: outside the band) that iqstat.levels undoes; 0.0 and None when steady.
+    gain_span_db: float = 0.0
+    gain_track: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     def interfering_lines(self, symbol_rate_hz: float | None) -> tuple[ContinuousLine, ...]:
         """The continuous lines left in the measured samples that a symbol correlator sees
@@ -196,6 +201,7 @@ class BurstDetection:
             "iq_image_rejection_db": self.iq.image_rejection_db,
             "iq_corrected": self.iq.applied,
             "lines": [ln.to_dict() for ln in self.lines],
+            "gain_span_db": self.gain_span_db,
         }
 
 

@@ -24,6 +24,7 @@ from iqstat.errors import MeasurementError
 from iqstat.estimate import LinkEstimate
 from iqstat.facts import CaptureFacts, compute_facts
 from iqstat.formats.open import open_capture
+from iqstat.levels import LevelNormalisedCapture
 from iqstat.measure.burst_figures import (
     _finish,
     _stage_available,
@@ -105,6 +106,16 @@ def _measure_batch(capture: Capture, bursts: Sequence[Burst], ctx: _Context) -> 
     ]
 
 
+def _undo_gain_steps(capture, detection, options):
+    """Where the receiver's gain moved during the capture, the samples are brought back to
+    one noise level (iqstat.levels) and the bursts detected again."""
+    if detection.gain_track is None:
+        return capture, detection
+    even = LevelNormalisedCapture(capture, detection.gain_track, detection.frame_samples)
+    again = detect_bursts(even, **options)
+    return even, dataclasses.replace(again, gain_span_db=detection.gain_span_db, gain_track=None)
+
+
 def _cancel_steady_lines(capture, detection, profile, options):
     """A steady line inside the band (a spur, a carrier) is subtracted from the samples
     (:mod:`iqstat.cancel`) and the bursts detected again without it; an unsteady one stays
@@ -122,7 +133,9 @@ def _cancel_steady_lines(capture, detection, profile, options):
         dataclasses.replace(ln, cancelled=True, freq_hz=tr.freq_hz)
         for ln, tr in zip(inside, model.tracks, strict=True)
     )
-    return clean, dataclasses.replace(again, lines=again.lines + done)
+    return clean, dataclasses.replace(
+        again, lines=again.lines + done, gain_span_db=detection.gain_span_db
+    )
 
 
 def measure_burst(
@@ -194,6 +207,7 @@ def measure_capture(
             facts, detection = survey_capture(capture, **options)
         else:
             detection = detect_bursts(capture, **options)
+        capture, detection = _undo_gain_steps(capture, detection, options)
         capture, detection = _cancel_steady_lines(capture, detection, profile, options)
     facts = compute_facts(capture) if facts is None else facts
     fs = capture.sample_rate_hz

@@ -58,6 +58,8 @@ FLAG_TEXT = {
     "mean over the fades and their predicted BER is averaged over them",
     "below-requirement-in-fading": "the mean Eb/N0 meets the requirement in steady noise but "
     "not under the fading measured (see the margin in fading)",
+    "gain-steps": "the receiver's gain moved during the capture (AGC?): the samples were "
+    "brought back to one noise level before measuring (see gain_span_db)",
     "interference": "a continuous narrowband signal (in the gaps too) lies in the signal band "
     "and is not steady enough to cancel: the figures count it as noise",
 }
@@ -111,6 +113,7 @@ def _document(report: MeasurementReport) -> dict:
             "dc_offset_removed_dbfs": report.detection.dc_offset_dbfs,
             "iq_image_rejection_db": report.detection.iq.image_rejection_db,
             "iq_corrected": report.detection.iq.applied,
+            "gain_span_db": report.detection.gain_span_db,
             "lines": [ln.to_dict() for ln in report.detection.lines],
             "detection_band_hz": report.detection.band_hz,
         },
@@ -156,6 +159,8 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
         dc = f", DC offset {det.dc_offset_dbfs:.1f} dBFS (removed)"
     if det.iq.applied:
         dc += f", I/Q image {det.iq.image_rejection_db:.1f} dB down (corrected)"
+    if det.gain_span_db > 0:
+        dc += f", gain moved by {det.gain_span_db:.1f} dB (levelled)"
     for ln in det.lines[:3]:
         inside = det.band_hz is None or (
             ln.f_hi_hz > det.band_hz[0] and ln.f_lo_hz < det.band_hz[1]
