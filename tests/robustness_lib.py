@@ -106,6 +106,8 @@ CASES = {
         "fading",
     ),
     "clipping": ("2fsk", 4800, 4800, 250e3, (-500, 500), 10, {"clip_dbfs": -6.0}, {}, "clipping"),
+    # A receiver gain step of +6 dB halfway (an AGC), applied to the recording afterwards.
+    "gain-step": ("2fsk", 4800, 4800, 250e3, (-500, 500), 12, {}, {}, "truth"),
     "long-50ppm": (
         "2fsk",
         4800,
@@ -207,11 +209,22 @@ def _binomial_p(errors: int, n: int, p: float) -> float:
     return float(min(1.0, 2.0 * min(lo, hi)))
 
 
+#: Cases whose recording is changed after synthesis: a gain step (dB) in the middle gap.
+GAIN_STEPS_DB = {"gain-step": 6.0}
+
+
 def run_case(name: str, n_bursts: int = 10, seed: int = 7) -> CaseResult:
     case = CASES[name]
     doc = _doc(case, n_bursts, seed)
     syn = synthesize(scenario_from_dict(doc), seed=seed)
     profile = profile_from_dict({k: doc[k] for k in ("link", "frame", "requirement")})
-    report = measure_capture(Capture.from_array(syn.samples, case[3]), profile)
+    x = syn.samples
+    if name in GAIN_STEPS_DB:
+        tb = syn.truth.bursts
+        k = len(tb) // 2
+        cut = (tb[k - 1].stop_sample + tb[k].start_sample) // 2
+        x = x.copy()
+        x[cut:] *= np.float32(10 ** (GAIN_STEPS_DB[name] / 20))
+    report = measure_capture(Capture.from_array(x, case[3]), profile)
     truth = 10 * math.log10(np.mean([10 ** (b.ebn0_db / 10) for b in syn.truth.bursts]))
     return CaseResult(name, len(syn.truth.bursts), report, truth)

@@ -1,5 +1,5 @@
 """The main job on the captures field work brings: rates, oversampling, receiver artefacts,
-interference, fading, pulse shaping, clipping (tests/robustness_lib.py).
+interference, fading, gain steps, pulse shaping, clipping (tests/robustness_lib.py).
 
 References: the synthetic truth (iqstat synth; Eb/N0 = P·(fs/Rb)/σ², docs/synth.md). The
 0.3 dB tolerance is about 3 standard errors of a capture's Eb/N0 over 10 bursts of ~450

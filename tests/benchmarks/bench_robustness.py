@@ -5,7 +5,7 @@ Run:  python tests/benchmarks/bench_robustness.py [--bursts 10] [CASE ...]
 The cases (tests/robustness_lib.py): other sample and symbol rates (5 to 1 700 samples per
 symbol, fractional), a carrier far off the centre, a receiver DC offset and I/Q imbalance, a
 strong carrier beside the band and one inside it (cancelled), a narrowband interferer inside
-it (flagged), Rician fading, GFSK and raised-cosine OOK
+it (flagged), a receiver gain step (levelled), Rician fading, GFSK and raised-cosine OOK
 (whose detection loss is real: the correlators are rectangular), clipping, long bursts with a
 clock offset. Prints per case: bursts found of sent, the capture's Eb/N0 against the truth, the
 Eb/N0 from power, the measured BER and the flags; then PASS/FAIL for what each case should
