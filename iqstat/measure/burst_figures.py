@@ -23,7 +23,7 @@ from iqstat import theory
 from iqstat.available import available_ebn0
 from iqstat.fading import MIN_SYMBOLS as FADING_MIN_KNOWN
 from iqstat.fading import FadingEstimate, fading_from_energies, k_from_gamma
-from iqstat.fit import fit_bursts_many
+from iqstat.fit import fit_bursts_many, ook_decision_threshold
 from iqstat.fit.goodness_of_fit import faded_energy_laws
 from iqstat.fit.level_mixture import fit_level_mixture
 from iqstat.fit.rician import FADING_LR_MIN, fit_rician
@@ -247,8 +247,10 @@ def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
             # Fading fit: the white-noise BER averaged over the burst's own law of Es/N0
             # (the grid mixture; the Rician law where the mixture did not converge).
             r_i = rho[i] if m != "ook" else 0.0
-            if w.levels is not None and w.levels.converged:
-                scale = w.fit.priors[1] if m == "ook" else 1.0 / ctx.profile.bits_per_symbol
+            if m == "ook" and w.levels is not None and w.levels.converged:
+                pred[i] = _ook_faded_ber(w)
+            elif w.levels is not None and w.levels.converged:
+                scale = 1.0 / ctx.profile.bits_per_symbol
                 pred[i] = w.levels.average(
                     lambda g, s=scale, r=r_i: theory.predicted_ber(g * s, m, rho_abs=r)
                 )
@@ -262,6 +264,24 @@ def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
             )
     for w, p in zip(use, pred, strict=True):
         w.predicted_ber = float(p)
+
+
+def _ook_faded_ber(w: _Work) -> float:
+    """BER of a fading OOK burst with the threshold its decisions used (set from the
+    constant-amplitude fit before the fades were known; it does not follow them), averaged
+    over the burst's own law of the "on" Es/N0: p_off·e^{−b²/2} + p_on·Σ_j w_j·(1 − Q1(a_j, b)),
+    a_j² = 2γ_j, b the threshold over √(N0/2) (Annamalai & Bhargava's law, iqstat.theory.ber_ook,
+    with the priors as fitted)."""
+    first = w.first_fit
+    p_on = float(first.priors[1])
+    t = ook_decision_threshold(first.amplitude, first.noise_var, p_on)
+    b = t / math.sqrt(0.5 * w.fit.noise_var)
+    # ber_ook is ½·[e^{−b²/2} + 1 − Q1(a, b)] with a² = 4γ_b: its miss term at γ_b = γ_j/2.
+    false_alarm = math.exp(-0.5 * b * b)
+    miss = w.levels.average(
+        lambda g: 2.0 * np.asarray(theory.ber_ook(0.5 * g, threshold=b)) - false_alarm
+    )
+    return float((1.0 - p_on) * false_alarm + p_on * miss)
 
 
 def _finish(w: _Work, ctx: _Context) -> None:
