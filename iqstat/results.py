@@ -173,6 +173,9 @@ class Summary:
     detection_loss_db: float | None
     detection_loss_db_ci95: tuple[float, float] | None
     predicted_ber: float | None
+    #: The prediction for the bits checked (the bursts whose payload locked, weighted by their
+    #: bits): what measured_ber is to be compared with.
+    predicted_ber_checked: float | None
     measured_ber: float | None
     measured_ber_ci95: tuple[float, float] | None
     bit_errors: int | None

@@ -133,12 +133,20 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
             flags.append(fl)
     if lo is not None and hi - lo > LEVEL_SPREAD_FLAG_DB:
         flags.append("level-spread")
-    if meas is not None and pred is not None and n_bits:
+    # The prediction for the bits that were checked: the bit-weighted mean of those bursts'
+    # own predictions (a burst that lost its sync word in a fade is predicted, not counted).
+    pred_checked = None
+    with_pred = [r for r in checked if r.predicted_ber is not None]
+    if with_pred and n_bits:
+        w_bits = np.array([r.bit_check.bits_checked for r in with_pred], dtype=float)
+        p_b = np.array([r.predicted_ber for r in with_pred])
+        pred_checked = float(np.sum(w_bits * p_b) / np.sum(w_bits)) if w_bits.sum() else None
+    if meas is not None and pred_checked is not None and n_bits:
         # Measured errors far outside what the fitted Eb/N0 predicts point at something
         # other than white noise (interference, fading, bit slips).
         # Binomial tails by the routines under scipy.stats.binom.cdf/sf (errors >= 0).
-        p_lo = special.bdtr(int(errors), int(n_bits), pred)
-        p_hi = special.bdtrc(int(errors) - 1, int(n_bits), pred)
+        p_lo = special.bdtr(int(errors), int(n_bits), pred_checked)
+        p_hi = special.bdtrc(int(errors) - 1, int(n_bits), pred_checked)
         if min(p_lo, p_hi) < 1e-4:
             flags.append("ber-disagrees-with-ebn0")
     if not results:
@@ -164,6 +172,7 @@ def summarise(results, profile, link_sum, facts, detection, rho) -> Summary:
         detection_loss_db=loss,
         detection_loss_db_ci95=detection_loss_ci95(pooled, mean_db, ci),
         predicted_ber=pred,
+        predicted_ber_checked=pred_checked,
         measured_ber=meas,
         measured_ber_ci95=ci_meas,
         bit_errors=errors,

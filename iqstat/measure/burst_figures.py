@@ -18,6 +18,7 @@ import dataclasses
 import math
 
 import numpy as np
+from scipy import optimize
 
 from iqstat import theory
 from iqstat.available import available_ebn0
@@ -27,6 +28,7 @@ from iqstat.fit import fit_bursts_many, ook_decision_threshold
 from iqstat.fit.goodness_of_fit import faded_energy_laws
 from iqstat.fit.level_mixture import fit_level_mixture
 from iqstat.fit.rician import FADING_LR_MIN, fit_rician
+from iqstat.measure.frame import _frame_symbols_many
 from iqstat.measure.gram_classes import _fit_gram, _fit_z, _theory_rho
 from iqstat.measure.work import MIN_FIT_SYMBOLS, _batched, _Context, _Work
 from iqstat.results import BurstResult
@@ -87,7 +89,7 @@ def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
         if sent is None or np.count_nonzero(sent >= 0) < FADING_MIN_KNOWN:
             if fit.esn0_db is None or fit.esn0_db < FADING_DECIDED_MIN_ESN0_DB:
                 if _suspect(w):
-                    _try_fading_fit(w, m, z)
+                    _try_fading_fit(w, m, z, ctx)
                 continue
             sent = w.hard[w.sel[0] : w.sel[1]][: len(z)]
         use = sent >= 0
@@ -112,7 +114,7 @@ def _stage_fading(batch: list[_Work], ctx: _Context) -> None:
             start_k = min(max(k_from_gamma(w.fading.gamma), 0.01), 1e3)
             nda = _fading_fit(w, m, z, start_k, test=False)
             if nda.fit.converged:
-                _use_fading_fit(w, m, z, nda, w.fading.z)
+                _use_fading_fit(w, m, z, nda, w.fading.z, ctx)
 
 
 def _suspect(w: _Work) -> bool:
@@ -136,7 +138,7 @@ def _fading_fit(w: _Work, m: str, z: np.ndarray, start_k: float, test: bool):
     )  # fmt: skip
 
 
-def _try_fading_fit(w: _Work, m: str, z: np.ndarray) -> None:
+def _try_fading_fit(w: _Work, m: str, z: np.ndarray, ctx: _Context) -> None:
     """The fading fit of a burst the moment test could not judge, kept when the likelihood
     ratio against a steady amplitude exceeds FADING_LR_MIN."""
     nda = _fading_fit(w, m, z, 1.0, test=True)
@@ -149,10 +151,10 @@ def _try_fading_fit(w: _Work, m: str, z: np.ndarray) -> None:
         symbols=len(z), k_source="fading-fit",
     )  # fmt: skip
     w.flags.append("fading")
-    _use_fading_fit(w, m, z, nda, w.fading.z)
+    _use_fading_fit(w, m, z, nda, w.fading.z, ctx)
 
 
-def _use_fading_fit(w: _Work, m: str, z: np.ndarray, nda, z_stat: float) -> None:
+def _use_fading_fit(w: _Work, m: str, z: np.ndarray, nda, z_stat: float, ctx: _Context) -> None:
     """Make the fading fit the burst's headline (the constant-amplitude fit kept beside it as
     ``fit_steady``, which reads low by the spread it takes for noise), and redo the
     data-aided fit the same way."""
@@ -179,6 +181,8 @@ def _use_fading_fit(w: _Work, m: str, z: np.ndarray, nda, z_stat: float) -> None
             w.fit, gof_statistic=stat, gof_pvalue=p, gof_n_values=count,
             gof_test="ks-pit-branchwise-level-law",
         )  # fmt: skip
+        if m == "ook":
+            _redecide_ook(w, ctx)
     w.fading = dataclasses.replace(
         w.fading, k_db=nda.k_db, gamma=(1.0 + 2.0 * k) / (1.0 + k) ** 2, z=z_stat,
         k_source="fading-fit", esn0_law=law,
@@ -266,22 +270,47 @@ def _stage_predict(batch: list[_Work], ctx: _Context) -> None:
         w.predicted_ber = float(p)
 
 
+def _ook_miss(levels, b: float) -> float:
+    """P(|z| < threshold | on), averaged over a level law: 1 − Q1(a_j, b), a_j² = 2γ_j, b the
+    threshold over √(N0/2); from ber_ook = ½·[e^{−b²/2} + 1 − Q1(a, b)] at γ_b = γ_j/2."""
+    fa = math.exp(-0.5 * b * b)
+    return levels.average(lambda g: 2.0 * np.asarray(theory.ber_ook(0.5 * g, threshold=b)) - fa)
+
+
+def _redecide_ook(w: _Work, ctx: _Context) -> None:
+    """Decide a fading OOK burst again with the threshold that minimises the error
+    probability of its fitted fading model (one threshold for the burst, over its level law),
+    and check its payload again: the constant-amplitude fit's threshold, set with the fades
+    taken for noise, sits far too high."""
+    n0, p_on = w.fit.noise_var, float(w.fit.priors[1])
+    sigma = math.sqrt(0.5 * n0)
+
+    def pb(b: float) -> float:
+        return (1.0 - p_on) * math.exp(-0.5 * b * b) + p_on * _ook_miss(w.levels, b)
+
+    top = math.sqrt(2.0 * float(np.max(w.levels.levels))) + 8.0
+    b = float(optimize.minimize_scalar(pb, bounds=(0.0, top), method="bounded").x)
+    w.ook_threshold = b * sigma
+    w.hard = (np.abs(w.z_all[:, 0]) > w.ook_threshold).astype(np.int64)
+    if w.frame is not None and w.frame.found:
+        ((_, _, check),) = _frame_symbols_many(
+            [(w.frame, w.hard, w.k1, w.timing)], 2, ctx.header, ctx.layout, ctx.profile
+        )
+        w.check = check
+
+
 def _ook_faded_ber(w: _Work) -> float:
-    """BER of a fading OOK burst with the threshold its decisions used (set from the
-    constant-amplitude fit before the fades were known; it does not follow them), averaged
-    over the burst's own law of the "on" Es/N0: p_off·e^{−b²/2} + p_on·Σ_j w_j·(1 − Q1(a_j, b)),
-    a_j² = 2γ_j, b the threshold over √(N0/2) (Annamalai & Bhargava's law, iqstat.theory.ber_ook,
-    with the priors as fitted)."""
+    """BER of a fading OOK burst with the threshold its decisions used (one for the burst: it
+    does not follow the fades), averaged over the burst's own law of the "on" Es/N0:
+    p_off·e^{−b²/2} + p_on·Σ_j w_j·(1 − Q1(a_j, b)), a_j² = 2γ_j, b the threshold over
+    √(N0/2) (Annamalai & Bhargava's law, iqstat.theory.ber_ook, with the priors as fitted)."""
     first = w.first_fit
     p_on = float(first.priors[1])
-    t = ook_decision_threshold(first.amplitude, first.noise_var, p_on)
+    t = w.ook_threshold
+    if t is None:
+        t = ook_decision_threshold(first.amplitude, first.noise_var, p_on)
     b = t / math.sqrt(0.5 * w.fit.noise_var)
-    # ber_ook is ½·[e^{−b²/2} + 1 − Q1(a, b)] with a² = 4γ_b: its miss term at γ_b = γ_j/2.
-    false_alarm = math.exp(-0.5 * b * b)
-    miss = w.levels.average(
-        lambda g: 2.0 * np.asarray(theory.ber_ook(0.5 * g, threshold=b)) - false_alarm
-    )
-    return float((1.0 - p_on) * false_alarm + p_on * miss)
+    return float((1.0 - p_on) * math.exp(-0.5 * b * b) + p_on * _ook_miss(w.levels, b))
 
 
 def _finish(w: _Work, ctx: _Context) -> None:

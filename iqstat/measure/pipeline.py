@@ -276,6 +276,7 @@ def measure_capture(
             ebn0_db_ci95=None,
             esn0_db=None,
             predicted_ber=None,
+            predicted_ber_checked=None,
             margin_db=None,
             worst_burst_margin_db=None,
             fading_required_ebn0_db=None,

@@ -65,6 +65,7 @@ class _Work:
     fit_dd: NoncoherentFit | None = None
     fit_steady: NoncoherentFit | None = None  # the constant-amplitude fit, where it fades
     levels: LevelMixture | None = None  # the law of the Es/N0 within a fading burst
+    ook_threshold: float | None = None  # OOK envelope threshold of the fading model
     band: tuple[float | None, float | None] = (None, None)  # in-band energy, its width [Hz]
     available: AvailableEbN0 | None = None
     fading: FadingEstimate | None = None

@@ -315,11 +315,15 @@ def _headline(report: MeasurementReport, console: Console) -> None:
         )
     t.add_row("predicted BER", _ber(s.predicted_ber))
     if s.bits_checked:
+        for_them = ""
+        pc, pa = s.predicted_ber_checked, s.predicted_ber
+        if pc is not None and pa is not None and abs(pc - pa) > 0.1 * max(pc, pa):
+            for_them = f"; predicted for them {_ber(pc)}"
         t.add_row(
             "measured BER",
             f"{_ber(s.measured_ber)}{_ci(s.measured_ber_ci95, _ber)}"
             f"   ({s.bit_errors} errors in {s.bits_checked:,} known bits, "
-            f"{s.bursts_checked} bursts)",
+            f"{s.bursts_checked} bursts{for_them})",
         )
     else:
         t.add_row("measured BER", "— (no known bits checked)")
