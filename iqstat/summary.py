@@ -28,6 +28,7 @@ BURST_FLAGS_RAISED = (
     "too-few-symbols",
     "not-measured",
     "link-not-estimated",
+    "unmodulated",
 )
 #: Fraction of full-scale samples above which a capture is flagged as clipped.
 CLIPPING_FLAG_FRACTION = 1e-4
@@ -207,7 +208,8 @@ def profile_mismatch(
     (unless at the profile's rates at least half the measured bursts are framed, and fewer
     than half fail the energy-law test or show a detection loss); or, among the measured
     bursts, most fail the energy-law test while the frame is found in fewer than half; or
-    most frames match their header far worse than their payload.
+    most keep one tone (unmodulated); or most frames match their header far worse than their
+    payload.
     """
     measured = [r for r in results if r.fit is not None]
     n = len(measured)
@@ -225,6 +227,8 @@ def profile_mismatch(
     if not measured:
         return None
     header_bad = sum("header-mismatch" in r.flags for r in measured)
+    if sum("unmodulated" in r.flags for r in measured) >= 0.5 * n:
+        return "the signal keeps one tone (or stays on): a carrier, not the profile's modulation"
     if layout.n_header_bits and not_awgn >= 0.5 * n and framed < 0.5 * n:
         return "branch energies do not follow the model and the frame is rarely found"
     if header_bad >= 0.5 * n:

@@ -116,3 +116,20 @@ def test_a_wrong_sample_rate_gives_no_made_up_headline(clean, factor):
     x, prof = clean
     s = _measure(x, prof, fs=FS * factor).summary
     assert s.ebn0_db is None or "profile-mismatch" in s.flags or s.bursts_measured == 0
+
+
+@pytest.mark.parametrize("mod", ["2fsk", "4fsk"])
+def test_a_plain_carrier_is_not_read_as_fsk(mod):
+    # A steady carrier with noise, measured with an FSK profile that gives no frame (so the
+    # frame cannot tell): every decision is one tone, and no made-up Eb/N0 is given (it read
+    # 20.1 dB before, with only not-awgn).
+    rng = np.random.default_rng(51)
+    n = 100_000
+    t = np.arange(n)
+    x = (rng.standard_normal(n) + 1j * rng.standard_normal(n)) * 0.01
+    x = (x + 0.02 * np.exp(2j * np.pi * 1000.0 * t / FS)).astype(np.complex64)
+    link = {"modulation": mod, "symbol_rate": 4800.0, "tone_spacing": 4800.0}
+    report = _measure(x, {"link": link})
+    s = report.summary
+    assert "unmodulated" in s.flags and "profile-mismatch" in s.flags
+    assert s.ebn0_db is None and s.margin_db is None

@@ -41,6 +41,12 @@ FADING_DECIDED_MIN_ESN0_DB = 8.0
 #: Goodness-of-fit p-value below which the branch energies are flagged as not AWGN-like.
 GOF_FLAG_PVALUE = 1e-3
 
+#: A burst whose decisions hold one tone (OOK: one state) in at least this share of at least
+#: UNMODULATED_MIN_SYMBOLS symbols is flagged "unmodulated": a carrier, not the profile's
+#: modulation (any real frame changes tone: a preamble, a sync word, scrambled data).
+UNMODULATED_SHARE = 0.98
+UNMODULATED_MIN_SYMBOLS = 200
+
 #: Detection loss (available − detected Eb/N0) above which the burst is flagged, when its
 #: 95 % interval also lies above zero (a loss the noise of the two figures cannot explain).
 DETECTION_LOSS_FLAG_DB = 1.5
@@ -322,6 +328,12 @@ def _finish(w: _Work, ctx: _Context) -> None:
         flags.append("fit-failed")
     elif fit.gof_pvalue is not None and fit.gof_pvalue < GOF_FLAG_PVALUE:
         flags.append("not-awgn")
+    if w.hard is not None:
+        hard = np.asarray(w.hard[w.sel[0] : w.sel[1]])
+        if hard.size >= UNMODULATED_MIN_SYMBOLS:
+            top = np.bincount(hard[hard >= 0]).max(initial=0) / hard.size
+            if top >= UNMODULATED_SHARE:
+                flags.append("unmodulated")
     b = w.burst
     res = BurstResult(
         index=b.index,

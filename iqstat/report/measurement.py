@@ -58,6 +58,8 @@ FLAG_TEXT = {
     "mean over the fades and their predicted BER is averaged over them",
     "below-requirement-in-fading": "the mean Eb/N0 meets the requirement in steady noise but "
     "not under the fading measured (see the margin in fading)",
+    "unmodulated": "the decisions keep one tone (OOK: one state) in some bursts: a carrier, not "
+    "the profile's modulation",
     "gain-steps": "the receiver's gain moved during the capture (AGC?): the samples were "
     "brought back to one noise level before measuring (see gain_span_db)",
     "interference": "a continuous narrowband signal (in the gaps too) lies in the signal band "
