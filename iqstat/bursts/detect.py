@@ -627,6 +627,11 @@ def _detect_bursts(
         joined = again
     if expected_burst_s is not None and expected_burst_s > 0:
         joined = _join_faded(joined, expected_burst_s * fs, p, floor, L)
+    # The parts of a split transmission meet where one ends: edge refinement on a part's far
+    # side can run into its neighbour (a transmission far longer than the profile's frame).
+    for prev, cur in zip(joined, joined[1:], strict=False):
+        if cur[0] < prev[1]:
+            cur[0] = prev[1]
     joined = [sp for sp in joined if sp[1] - sp[0] >= max(min_burst, 1)]
 
     thr = threshold_from_floor(floor, dof, pfa)

@@ -28,7 +28,7 @@ from iqstat.fit import fit_bursts_many, ook_decision_threshold
 from iqstat.fit.goodness_of_fit import faded_energy_laws
 from iqstat.fit.level_mixture import fit_level_mixture
 from iqstat.fit.rician import FADING_LR_MIN, fit_rician
-from iqstat.measure.frame import _frame_symbols_many
+from iqstat.measure.frame import _checked_as_is, _frame_symbols_many
 from iqstat.measure.gram_classes import _fit_gram, _fit_z, _theory_rho
 from iqstat.measure.work import MIN_FIT_SYMBOLS, _batched, _Context, _Work
 from iqstat.results import BurstResult
@@ -298,9 +298,14 @@ def _redecide_ook(w: _Work, ctx: _Context) -> None:
     b = float(optimize.minimize_scalar(pb, bounds=(0.0, top), method="bounded").x)
     w.ook_threshold = b * sigma
     w.hard = (np.abs(w.z_all[:, 0]) > w.ook_threshold).astype(np.int64)
-    if w.frame is not None and w.frame.found:
+    if w.burst.piece > 0:
+        known = w.known
+        _checked_as_is([w], ctx)  # a later part of a long transmission: checked as it stands
+        w.known = known
+    elif w.frame is not None and w.frame.found:
+        cap = w.k1 if w.burst.pieces > 1 else None
         ((_, _, check),) = _frame_symbols_many(
-            [(w.frame, w.hard, w.k1, w.timing)], 2, ctx.header, ctx.layout, ctx.profile
+            [(w.frame, w.hard, w.k1, w.timing, cap)], 2, ctx.header, ctx.layout, ctx.profile
         )
         w.check = check
 
@@ -351,6 +356,7 @@ def _finish(w: _Work, ctx: _Context) -> None:
         available=w.available,
         fading=w.fading,
         fit_steady=w.fit_steady,
+        piece=b.piece,
         predicted_ber=w.predicted_ber,
         flags=(),
         message=fit.message,

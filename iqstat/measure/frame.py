@@ -13,6 +13,7 @@ carrier (corrections above CFO_REFINE_MIN_HZ) on those symbols and decides again
 from __future__ import annotations
 
 import dataclasses
+import math
 from collections.abc import Sequence
 
 import numpy as np
@@ -33,6 +34,32 @@ LOOSE_HEADER_ERROR_FRACTION = 0.3
 #: Header errors less probable than this at the payload's error rate reject the header
 #: (lenient: the first symbols of a burst err more often than the payload).
 HEADER_CONSISTENCY_P = 1e-5
+
+
+def _cap(w: _Work) -> int | None:
+    """The last symbol (exclusive) a burst's frame may take: the part's own end when the
+    transmission goes on in a next part (which measures it from there, not twice)."""
+    return w.k1 if w.burst.pieces > 1 else None
+
+
+def _checked_as_is(batch: list[_Work], ctx: _Context) -> None:
+    """No frame: every symbol measured, the payload pattern checked on all the bits (a later
+    part of a long transmission: up to where its frame ends, when the first part found it)."""
+    profile, m = ctx.profile, ctx.profile.modulation
+    for w in batch:
+        end = ctx.frame_ends.get(w.burst.index - w.burst.piece) if w.burst.piece else None
+        if end is not None:
+            t = w.timing
+            k_end = math.floor((end - w.x0 - t.t0_samples) / t.period_samples + 1e-9)
+            w.k1 = max(w.k0, min(w.k1, k_end))
+    checks = [None] * len(batch)
+    if profile.payload_kind != "unknown":
+        checks = _check_payload_many(
+            [symbols_to_bits(w.hard[w.k0 : w.k1], m) for w in batch], ctx.layout, profile
+        )
+    for w, c in zip(batch, checks, strict=True):
+        w.frame, w.sel, w.known, w.check = None, (w.k0, w.k1), None, c
+
 
 #: Below this line SNR [dB] the timing is refined on the known symbols of a found frame (the
 #: bursts timed again at full rate, see :func:`~iqstat.measure.link_timing._stage_timing`).
@@ -109,13 +136,15 @@ def _frame_symbols_many(items, n_tones: int, header, layout: FrameLayout, profil
     if layout.payload_length is not None:
         n_payload_sym = layout.payload_length // profile.bits_per_symbol
     plans = []
-    for frame, hard, k1, timing in items:
+    for frame, hard, k1, timing, *cap in items:
         start = frame.start_symbol
         stop = (
             k1
             if n_payload_sym is None
             else min(timing.n_symbols, start + len(header) + n_payload_sym)
         )
+        if cap and cap[0] is not None:  # the first part of a long transmission ends at k1
+            stop = min(stop, cap[0])
         stop = max(stop, start)
         # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions,
         # apply it to the known symbols.
@@ -143,75 +172,92 @@ def _stage_frame(batch: list[_Work], ctx: _Context) -> None:
     m = profile.modulation
     # Per burst: (frame, selection, known symbols, payload check, flags to add).
     outcome: dict[int, tuple] = {}
+    cont = [w for w in batch if w.burst.piece > 0]
+    if cont and len(header):
+        # The continuations of a long transmission hold no header: their payload is checked
+        # where it stands (a pattern locks at any phase), the rest framed as usual.
+        heads = [w for w in batch if w.burst.piece == 0]
+        if heads:
+            _stage_frame(heads, ctx)  # first: where their frames end
+        _checked_as_is(cont, ctx)
+        return
     if not len(header):
-        checks = [None] * len(batch)
-        if profile.payload_kind != "unknown":
-            checks = _check_payload_many(
-                [symbols_to_bits(w.hard[w.k0 : w.k1], m) for w in batch], layout, profile
-            )
-        for i, (w, c) in enumerate(zip(batch, checks, strict=True)):
-            outcome[i] = (None, (w.k0, w.k1), None, c, ())
-    else:
-        # Search the whole read window: a detected edge can be a symbol or two off, and a
-        # header that starts before it must still be found.
-        n_tones = 2 if m == "ook" else batch[0].z_all.shape[1]
-        softs = [None if m == "ook" else np.abs(w.z_all) ** 2 for w in batch]
+        _checked_as_is(batch, ctx)
+        return
+    # Search the whole read window: a detected edge can be a symbol or two off, and a
+    # header that starts before it must still be found.
+    n_tones = 2 if m == "ook" else batch[0].z_all.shape[1]
+    softs = [None if m == "ook" else np.abs(w.z_all) ** 2 for w in batch]
 
-        def align(ws, idx, **kw):
-            idx = list(idx)
-            return align_frame_many(
-                [ws[i].hard for i in idx],
-                header,
-                softs=None if m == "ook" else [softs[i] for i in idx],
-                n_tones=n_tones,
-                detect_inverted=m != "ook",
-                **kw,
-            )
+    def align(ws, idx, **kw):
+        idx = list(idx)
+        return align_frame_many(
+            [ws[i].hard for i in idx],
+            header,
+            softs=None if m == "ook" else [softs[i] for i in idx],
+            n_tones=n_tones,
+            detect_inverted=m != "ook",
+            **kw,
+        )
 
-        def checked(frame_of, idx):
-            """Frame symbols and payload check of bursts idx at frame_of[i]; and, for those
-            whose payload locked, whether the header's errors are consistent with it."""
-            framed = _frame_symbols_many(
-                [(frame_of[i], batch[i].hard, batch[i].k1, batch[i].timing) for i in idx],
-                n_tones,
-                header,
-                layout,
-                profile,
-            )
-            locked = [j for j, fr in enumerate(framed) if fr[2] is not None and fr[2].locked]
-            ok = _header_consistent_many(
-                [frame_of[idx[j]] for j in locked], [framed[j][2] for j in locked], profile
-            )
-            verdict = {idx[j]: bool(o) for j, o in zip(locked, ok, strict=True)}
-            return dict(zip(idx, framed, strict=True)), verdict
+    def checked(frame_of, idx):
+        """Frame symbols and payload check of bursts idx at frame_of[i]; and, for those
+        whose payload locked, whether the header's errors are consistent with it."""
+        framed = _frame_symbols_many(
+            [
+                (frame_of[i], batch[i].hard, batch[i].k1, batch[i].timing, _cap(batch[i]))
+                for i in idx
+            ],
+            n_tones,
+            header,
+            layout,
+            profile,
+        )
+        locked = [j for j, fr in enumerate(framed) if fr[2] is not None and fr[2].locked]
+        ok = _header_consistent_many(
+            [frame_of[idx[j]] for j in locked], [framed[j][2] for j in locked], profile
+        )
+        verdict = {idx[j]: bool(o) for j, o in zip(locked, ok, strict=True)}
+        return dict(zip(idx, framed, strict=True)), verdict
 
-        frames = align(batch, range(len(batch)))
-        found = [i for i, f in enumerate(frames) if f.found]
-        framed, verdict = checked(frames, found)
-        for i in found:
-            bad = verdict.get(i) is False
-            outcome[i] = (frames[i], *framed[i], ("header-mismatch",) if bad else ())
-        rest = [i for i, f in enumerate(frames) if not f.found]
-        if rest and profile.payload_kind != "unknown":
-            # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a
-            # looser match only when the payload pattern then locks (its own false-lock
-            # probability is 1e-6), which confirms the position.
-            max_errors = int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol)
-            loose = dict(zip(rest, align(batch, rest, max_errors=max_errors), strict=True))
-            trials, verdict = checked(loose, [i for i in rest if loose[i].found])
-            for i, ok in verdict.items():
-                if ok:
-                    frame = dataclasses.replace(
-                        loose[i], message=loose[i].message + "; confirmed by the payload pattern"
-                    )
-                    outcome[i] = (frame, *trials[i], ())
-        for i in rest:
-            if i not in outcome:
-                w = batch[i]
-                outcome[i] = (frames[i], (w.k0, w.k1), None, None, ("sync-not-found",))
+    frames = align(batch, range(len(batch)))
+    found = [i for i, f in enumerate(frames) if f.found]
+    framed, verdict = checked(frames, found)
+    for i in found:
+        bad = verdict.get(i) is False
+        outcome[i] = (frames[i], *framed[i], ("header-mismatch",) if bad else ())
+    rest = [i for i, f in enumerate(frames) if not f.found]
+    if rest and profile.payload_kind != "unknown":
+        # At low Eb/N0 a header has too many errors for a safe lock on its own; accept a
+        # looser match only when the payload pattern then locks (its own false-lock
+        # probability is 1e-6), which confirms the position.
+        max_errors = int(LOOSE_HEADER_ERROR_FRACTION * len(header) * profile.bits_per_symbol)
+        loose = dict(zip(rest, align(batch, rest, max_errors=max_errors), strict=True))
+        trials, verdict = checked(loose, [i for i in rest if loose[i].found])
+        for i, ok in verdict.items():
+            if ok:
+                frame = dataclasses.replace(
+                    loose[i], message=loose[i].message + "; confirmed by the payload pattern"
+                )
+                outcome[i] = (frame, *trials[i], ())
+    for i in rest:
+        if i not in outcome:
+            w = batch[i]
+            outcome[i] = (frames[i], (w.k0, w.k1), None, None, ("sync-not-found",))
     for i, w in enumerate(batch):
         w.frame, w.sel, w.known, w.check, more = outcome[i]
         w.flags.extend(more)
+        if w.burst.pieces > 1 and w.frame is not None and w.frame.found:
+            # The first part of a long transmission: its frame goes on in the next parts,
+            # which measure it up to its end (not the noise after).
+            t = w.timing
+            n_frame = len(header) + (
+                layout.payload_length // profile.bits_per_symbol
+                if layout.payload_length is not None
+                else 10**12
+            )
+            end = w.frame.start_symbol + n_frame
+            ctx.frame_ends[w.burst.index] = w.x0 + t.t0_samples + end * t.period_samples
 
 
 def _refine_on_known(w: _Work, ctx: _Context) -> None:
@@ -254,8 +300,9 @@ def _refine_on_known(w: _Work, ctx: _Context) -> None:
     hard = _hard_decisions(probe, m)
     k1 = _symbols_inside(timing, w.lo_edge, w.hi_edge)[1]
     n_tones = 2 if m == "ook" else z_all.shape[1]
+    cap = k1 if w.burst.pieces > 1 else None
     ((sel, known, check),) = _frame_symbols_many(
-        [(frame, hard, k1, timing)], n_tones, header, ctx.layout, ctx.profile
+        [(frame, hard, k1, timing, cap)], n_tones, header, ctx.layout, ctx.profile
     )
     w.timing, w.link, w.cum, w.z_all, w.hard = timing, link, cum, z_all, hard
     w.gram, w.sym_grams, w.gram_classes = gram, sym_grams, gram_classes

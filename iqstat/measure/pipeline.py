@@ -36,7 +36,13 @@ from iqstat.measure.frame import _refine_on_known, _stage_frame
 from iqstat.measure.gram_classes import _theory_rho
 from iqstat.measure.link_timing import _stage_decide, _stage_link, _stage_timing
 from iqstat.measure.rates import _blind_rates, _check_profile_rates
-from iqstat.measure.windows import EDGE_MARGIN_SYMBOLS, _batches, _read_bursts
+from iqstat.measure.windows import (
+    EDGE_MARGIN_SYMBOLS,
+    MAX_PIECE_SAMPLES,
+    _batches,
+    _pieces,
+    _read_bursts,
+)
 from iqstat.measure.work import _batched, _Context, _context, _each, _unmeasured, _Work
 from iqstat.profile import FrameLayout, LinkProfile, frame_layout, load_profile, override_profile
 from iqstat.results import BurstResult, LinkSummary, MeasurementReport
@@ -210,6 +216,8 @@ def measure_capture(
         capture, detection = _undo_gain_steps(capture, detection, options)
         capture, detection = _cancel_steady_lines(capture, detection, profile, options)
     facts = compute_facts(capture) if facts is None else facts
+    if any(b.n_samples > MAX_PIECE_SAMPLES for b in detection.bursts):
+        detection = dataclasses.replace(detection, bursts=_pieces(detection.bursts))
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))

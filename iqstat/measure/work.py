@@ -84,6 +84,9 @@ class _Context:
     header_error: str | None
     symbol_rate_hz: float
     tone_spacing_hz: float | None
+    #: Where the frame of a transmission measured in parts ends (sample of the capture), by
+    #: the index of its first part: the later parts measure up to there.
+    frame_ends: dict = dataclasses.field(default_factory=dict)
 
 
 def _header_symbols(layout: FrameLayout, modulation: str) -> np.ndarray:
@@ -134,6 +137,7 @@ def _unmeasured(
         predicted_ber=None,
         flags=(flag,),
         message=message,
+        piece=burst.piece,
     )
 
 
