@@ -8,6 +8,7 @@ samples (NaN, Inf) are erasures: they read as 0 and are counted.
 
 from __future__ import annotations
 
+import abc
 import datetime
 import os
 from collections.abc import Iterator
@@ -393,7 +394,7 @@ class Capture:
         )
 
 
-class CorrectedCapture(Capture):
+class CorrectedCapture(Capture, abc.ABC):
     """A capture read through a correction of its samples: every read path of the capture it
     wraps (``base``, which may itself be corrected), then :meth:`_correct`.
 
@@ -408,8 +409,9 @@ class CorrectedCapture(Capture):
         self._file = None
         self._base = base
 
+    @abc.abstractmethod
     def _correct(self, start: int, x: np.ndarray, scale: float) -> None:
-        raise NotImplementedError
+        """Correct ``x`` (samples from index ``start``, in units of ``scale``) in place."""
 
     def _read_into(self, start: int, stop: int, out: np.ndarray) -> int:
         n_bad = self._base._read_into(start, stop, out)
