@@ -809,3 +809,18 @@ def test_truth_reproduces_the_bursts(link, waveform):
         np.testing.assert_allclose(syn.samples[seg], s[seg], atol=1e-5)
         p = np.mean(np.abs(s[seg]) ** 2)
         assert p == pytest.approx(b.signal_power, rel=1e-9)
+
+
+def test_a_burst_too_long_to_make_in_memory_is_refused_with_a_reason():
+    from iqstat.synth import scenario_from_dict, synthesize
+    from iqstat.synth.generate import MAX_BURST_SAMPLES
+
+    bits = int(MAX_BURST_SAMPLES / (250e3 / 4800.0)) + 10_000  # just over the limit
+    doc = {
+        "link": {"modulation": "2fsk", "symbol_rate": 4800.0, "tone_spacing": 4800.0},
+        "frame": {"payload": "pn9", "payload_bits": bits},
+        "capture": {"sample_rate": 250e3, "datatype": "ci16_le", "seed": 1},
+        "bursts": {"count": 1, "ebn0_db": 10.0},
+    }
+    with pytest.raises(ParameterError, match="at most"):
+        synthesize(scenario_from_dict(doc))

@@ -47,6 +47,10 @@ from iqstat.waveform import modulate, symbol_period_samples
 
 CHUNK_SAMPLES = 1 << 20
 BURST_CACHE_SAMPLES = 1 << 22
+#: Most samples one burst may hold: each is made whole in memory (about 85 bytes a sample at
+#: the peak: 2.1 GB for 25 M samples, so some 2.8 GB here, 134 s at 250 kS/s); a 2 000 s
+#: continuous burst was killed for memory.
+MAX_BURST_SAMPLES = 1 << 25
 TRUTH_FORMAT = "iqstat-synth-truth"
 TRUTH_VERSION = 1
 TRUTH_EXT = ".truth.json"
@@ -221,6 +225,12 @@ class _Generator:
             bp.start = int(math.ceil(t0 - 1e-9))
             bp.stop = int(math.ceil(t0 + symbols.size * period - 1e-9))
             bp.base = int(math.floor(t0)) - pad
+            if bp.stop - bp.start > MAX_BURST_SAMPLES:
+                raise ParameterError(
+                    f"burst {b} would hold {bp.stop - bp.start:,} samples; iqstat synth makes "
+                    f"each burst whole in memory and takes at most {MAX_BURST_SAMPLES:,} "
+                    "(give fewer payload_bits per burst, or more bursts)"
+                )
             tail = int(math.ceil(period)) + pad if ook_rc else 0
             self.bursts.append(bp)
             cursor = bp.stop + tail + int(round(gap * self.fs))
