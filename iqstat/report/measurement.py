@@ -202,7 +202,7 @@ def render_report(report: MeasurementReport, console: Console, *, max_bursts: in
             highlight=False,
             style="dim",
         )
-        for line in _burst_notes(report.bursts[:max_bursts]):
+        for line in _transmission_notes(report.bursts) + _burst_notes(report.bursts[:max_bursts]):
             console.print(line, markup=False, highlight=False)
     _headline(report, console)
 
@@ -240,6 +240,22 @@ def _burst_notes(bursts) -> list[str]:
         idx = [b.index for b in members]
         lines.append((idx[0], f"  {label} {_ranges(idx)}: {', '.join(words)}"))
     return [text for _, text in sorted(lines)]
+
+
+def _transmission_notes(bursts) -> list[str]:
+    """One line per transmission measured in parts (consecutive pieces 0, 1, …)."""
+    lines, run = [], []
+    for b in [*bursts, None]:
+        if b is not None and run and b.piece == run[-1].piece + 1:
+            run.append(b)
+            continue
+        if len(run) > 1:
+            lines.append(
+                f"  bursts {run[0].index}–{run[-1].index}: one transmission, measured in "
+                f"{len(run)} parts"
+            )
+        run = [b] if b is not None and b.piece == 0 else []
+    return lines
 
 
 def _burst_table(bursts: tuple[BurstResult, ...], fs: float, max_rows: int) -> Table:
