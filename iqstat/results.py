@@ -48,8 +48,8 @@ class BurstResult:
     start_time: str | None = None  # UTC time of start_sample (RFC 3339), if recorded
     #: Where the burst fades and ``fit`` is the fading fit: the constant-amplitude fit.
     fit_steady: NoncoherentFit | None = None
-    #: 0, or k for the k-th continuation of a transmission measured in parts (Burst.piece).
-    piece: int = 0
+    #: 0, or k for the k-th continuation of a transmission measured in parts (Burst.part).
+    part: int = 0
 
     @property
     def ebn0_db(self) -> float | None:
@@ -100,7 +100,7 @@ class BurstResult:
             "tone_spacing_hz": None if self.link is None else self.link.tone_spacing_hz,
             "clock_offset_ppm": None if self.timing is None else self.timing.clock_offset_ppm,
             "timing_offset_samples": None if self.timing is None else self.timing.t0_samples,
-            "piece": self.piece,
+            "part": self.part,
             "power_dbfs": self.power_dbfs,
             "ebn0_db": self.ebn0_db,
             "ebn0_db_ci95": None if fit is None or not fit.converged else fit.ebn0_db_ci95,

@@ -551,10 +551,10 @@ def test_fading_within_bursts_is_flagged_with_its_k_factor():
 
 @pytest.mark.parametrize("framed", [True, False])
 def test_a_long_transmission_is_measured_in_parts(framed):
-    # 24 000 payload bits at 4.8 kBd, 250 kS/s: 1.25 M samples, more than MAX_PIECE_SAMPLES,
+    # 24 000 payload bits at 4.8 kBd, 250 kS/s: 1.25 M samples, more than MAX_PART_SAMPLES,
     # so three parts, each timed and fitted on its own; every symbol and payload bit counted
     # once, the header found in the first, the pattern locked where it stands in the others.
-    from iqstat.measure.windows import MAX_PIECE_SAMPLES
+    from iqstat.measure.windows import MAX_PART_SAMPLES
 
     doc = _doc("2fsk", 11.0, count=1, payload_bits=24_000)
     doc["bursts"]["cfo_hz"] = 400.0
@@ -564,9 +564,9 @@ def test_a_long_transmission_is_measured_in_parts(framed):
         said["frame"] = {"payload": "pn9"}
     report = measure_capture(Capture.from_array(syn.samples, FS), profile_from_dict(said))
     t = syn.truth.bursts[0]
-    assert t.stop_sample - t.start_sample > 2 * MAX_PIECE_SAMPLES
+    assert t.stop_sample - t.start_sample > 2 * MAX_PART_SAMPLES
     s = report.summary
-    assert [b.piece for b in report.bursts] == [0, 1, 2]
+    assert [b.part for b in report.bursts] == [0, 1, 2]
     assert abs(sum(b.symbols for b in report.bursts) - t.n_symbols) <= 8
     assert "sync-not-found" not in s.flags
     if framed:

@@ -32,9 +32,9 @@ class Burst:
     peak_dbfs : float
         Highest one-frame mean power (full band) among frames wholly inside the burst, dBFS
         (the mean power for bursts shorter than two frames).
-    piece, pieces : int
-        Part ``piece`` (0-based) of ``pieces``: measurement cuts transmissions longer than a
-        few seconds into parts (iqstat.measure.windows.MAX_PIECE_SAMPLES; the power figures
+    part, parts : int
+        Part ``part`` (0-based) of ``parts``: measurement cuts transmissions longer than a
+        few seconds into parts (iqstat.measure.windows.MAX_PART_SAMPLES; the power figures
         are the whole one's). 0 of 1 for a burst on its own.
     """
 
@@ -44,8 +44,8 @@ class Burst:
     power_dbfs: float
     band_snr_db: float
     peak_dbfs: float
-    piece: int = 0
-    pieces: int = 1
+    part: int = 0
+    parts: int = 1
 
     @property
     def n_samples(self) -> int:

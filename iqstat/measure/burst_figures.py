@@ -28,7 +28,7 @@ from iqstat.fit import fit_bursts_many, ook_decision_threshold
 from iqstat.fit.goodness_of_fit import faded_energy_laws
 from iqstat.fit.level_mixture import fit_level_mixture
 from iqstat.fit.rician import FADING_LR_MIN, fit_rician
-from iqstat.measure.frame import _checked_as_is, _frame_symbols_many
+from iqstat.measure.frame import _cap, _checked_as_is, _frame_symbols_many
 from iqstat.measure.gram_classes import _fit_gram, _fit_z, _theory_rho
 from iqstat.measure.work import MIN_FIT_SYMBOLS, _batched, _Context, _Work
 from iqstat.results import BurstResult
@@ -151,13 +151,10 @@ def _try_fading_fit(w: _Work, m: str, z: np.ndarray, ctx: _Context) -> None:
     lr = nda.likelihood_ratio
     if not nda.fit.converged or lr is None or lr < FADING_LR_MIN:
         return
-    k = nda.k_factor
-    w.fading = FadingEstimate(
-        gamma=(1.0 + 2.0 * k) / (1.0 + k) ** 2, k_db=nda.k_db, z=math.sqrt(lr), fading=True,
-        symbols=len(z), k_source="fading-fit",
-    )  # fmt: skip
+    # gamma and K are the fading fit's: _use_fading_fit sets them
+    w.fading = FadingEstimate(gamma=0.0, k_db=None, z=0.0, fading=True, symbols=len(z))
     w.flags.append("fading")
-    _use_fading_fit(w, m, z, nda, w.fading.z, ctx)
+    _use_fading_fit(w, m, z, nda, math.sqrt(lr), ctx)
 
 
 def _use_fading_fit(w: _Work, m: str, z: np.ndarray, nda, z_stat: float, ctx: _Context) -> None:
@@ -298,14 +295,13 @@ def _redecide_ook(w: _Work, ctx: _Context) -> None:
     b = float(optimize.minimize_scalar(pb, bounds=(0.0, top), method="bounded").x)
     w.ook_threshold = b * sigma
     w.hard = (np.abs(w.z_all[:, 0]) > w.ook_threshold).astype(np.int64)
-    if w.burst.piece > 0:
+    if w.burst.part > 0:
         known = w.known
         _checked_as_is([w], ctx)  # a later part of a long transmission: checked as it stands
         w.known = known
     elif w.frame is not None and w.frame.found:
-        cap = w.k1 if w.burst.pieces > 1 else None
         ((_, _, check),) = _frame_symbols_many(
-            [(w.frame, w.hard, w.k1, w.timing, cap)], 2, ctx.header, ctx.layout, ctx.profile
+            [(w.frame, w.hard, w.k1, w.timing, _cap(w))], 2, ctx.header, ctx.layout, ctx.profile
         )
         w.check = check
 
@@ -356,7 +352,7 @@ def _finish(w: _Work, ctx: _Context) -> None:
         available=w.available,
         fading=w.fading,
         fit_steady=w.fit_steady,
-        piece=b.piece,
+        part=b.part,
         predicted_ber=w.predicted_ber,
         flags=(),
         message=fit.message,

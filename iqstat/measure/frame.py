@@ -39,7 +39,7 @@ HEADER_CONSISTENCY_P = 1e-5
 def _cap(w: _Work) -> int | None:
     """The last symbol (exclusive) a burst's frame may take: the part's own end when the
     transmission goes on in a next part (which measures it from there, not twice)."""
-    return w.k1 if w.burst.pieces > 1 else None
+    return w.k1 if w.burst.parts > 1 else None
 
 
 def _checked_as_is(batch: list[_Work], ctx: _Context) -> None:
@@ -47,7 +47,7 @@ def _checked_as_is(batch: list[_Work], ctx: _Context) -> None:
     part of a long transmission: up to where its frame ends, when the first part found it)."""
     profile, m = ctx.profile, ctx.profile.modulation
     for w in batch:
-        end = ctx.frame_ends.get(w.burst.index - w.burst.piece) if w.burst.piece else None
+        end = ctx.frame_ends.get(w.burst.index - w.burst.part) if w.burst.part else None
         if end is not None:
             t = w.timing
             k_end = math.floor((end - w.x0 - t.t0_samples) / t.period_samples + 1e-9)
@@ -129,22 +129,23 @@ def _header_consistent_many(
 
 
 def _frame_symbols_many(items, n_tones: int, header, layout: FrameLayout, profile: LinkProfile):
-    """Symbols of the frames found: per ``(frame, hard decisions, k1, timing)`` item, the
+    """Symbols of the frames found: per ``(frame, hard decisions, k1, timing, cap)`` item
+    (``cap``: the last symbol the frame may take, or None; see :func:`_cap`), the
     ``(selection, known symbols, payload check)`` of that burst."""
     m = profile.modulation
     n_payload_sym = None
     if layout.payload_length is not None:
         n_payload_sym = layout.payload_length // profile.bits_per_symbol
     plans = []
-    for frame, hard, k1, timing, *cap in items:
+    for frame, hard, k1, timing, cap in items:
         start = frame.start_symbol
         stop = (
             k1
             if n_payload_sym is None
             else min(timing.n_symbols, start + len(header) + n_payload_sym)
         )
-        if cap and cap[0] is not None:  # the first part of a long transmission ends at k1
-            stop = min(stop, cap[0])
+        if cap is not None:  # the first part of a long transmission ends at its own end
+            stop = min(stop, cap)
         stop = max(stop, start)
         # An inverted link reverses the tone order (t → M−1−t): undo it on the decisions,
         # apply it to the known symbols.
@@ -172,11 +173,11 @@ def _stage_frame(batch: list[_Work], ctx: _Context) -> None:
     m = profile.modulation
     # Per burst: (frame, selection, known symbols, payload check, flags to add).
     outcome: dict[int, tuple] = {}
-    cont = [w for w in batch if w.burst.piece > 0]
+    cont = [w for w in batch if w.burst.part > 0]
     if cont and len(header):
         # The continuations of a long transmission hold no header: their payload is checked
         # where it stands (a pattern locks at any phase), the rest framed as usual.
-        heads = [w for w in batch if w.burst.piece == 0]
+        heads = [w for w in batch if w.burst.part == 0]
         if heads:
             _stage_frame(heads, ctx)  # first: where their frames end
         _checked_as_is(cont, ctx)
@@ -247,7 +248,7 @@ def _stage_frame(batch: list[_Work], ctx: _Context) -> None:
     for i, w in enumerate(batch):
         w.frame, w.sel, w.known, w.check, more = outcome[i]
         w.flags.extend(more)
-        if w.burst.pieces > 1 and w.frame is not None and w.frame.found:
+        if w.burst.parts > 1 and w.frame is not None and w.frame.found:
             # The first part of a long transmission: its frame goes on in the next parts,
             # which measure it up to its end (not the noise after).
             t = w.timing
@@ -300,9 +301,12 @@ def _refine_on_known(w: _Work, ctx: _Context) -> None:
     hard = _hard_decisions(probe, m)
     k1 = _symbols_inside(timing, w.lo_edge, w.hi_edge)[1]
     n_tones = 2 if m == "ook" else z_all.shape[1]
-    cap = k1 if w.burst.pieces > 1 else None
     ((sel, known, check),) = _frame_symbols_many(
-        [(frame, hard, k1, timing, cap)], n_tones, header, ctx.layout, ctx.profile
+        [(frame, hard, k1, timing, k1 if w.burst.parts > 1 else None)],
+        n_tones,
+        header,
+        ctx.layout,
+        ctx.profile,
     )
     w.timing, w.link, w.cum, w.z_all, w.hard = timing, link, cum, z_all, hard
     w.gram, w.sym_grams, w.gram_classes = gram, sym_grams, gram_classes

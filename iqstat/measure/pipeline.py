@@ -38,9 +38,9 @@ from iqstat.measure.link_timing import _stage_decide, _stage_link, _stage_timing
 from iqstat.measure.rates import _blind_rates, _check_profile_rates
 from iqstat.measure.windows import (
     EDGE_MARGIN_SYMBOLS,
-    MAX_PIECE_SAMPLES,
+    MAX_PART_SAMPLES,
     _batches,
-    _pieces,
+    _parts,
     _read_bursts,
 )
 from iqstat.measure.work import _batched, _Context, _context, _each, _unmeasured, _Work
@@ -216,8 +216,8 @@ def measure_capture(
         capture, detection = _undo_gain_steps(capture, detection, options)
         capture, detection = _cancel_steady_lines(capture, detection, profile, options)
     facts = compute_facts(capture) if facts is None else facts
-    if any(b.n_samples > MAX_PIECE_SAMPLES for b in detection.bursts):
-        detection = dataclasses.replace(detection, bursts=_pieces(detection.bursts))
+    if any(b.n_samples > MAX_PART_SAMPLES for b in detection.bursts):
+        detection = dataclasses.replace(detection, bursts=_parts(detection.bursts))
     fs = capture.sample_rate_hz
     rate_guess = profile.symbol_rate_hz or fs / 50
     margin = int(math.ceil(EDGE_MARGIN_SYMBOLS * fs / rate_guess))

@@ -106,16 +106,16 @@ def _read_bursts(
 #: (a 100 s continuous stream at 250 kS/s took 6.4 GB read whole), and a slow drift of the
 #: carrier or clock is followed part by part. 2^19 samples: 2.1 s at 250 kS/s, some 10 000
 #: symbols at 4.8 kBd.
-MAX_PIECE_SAMPLES = 1 << 19
+MAX_PART_SAMPLES = 1 << 19
 
 
-def _pieces(bursts: Sequence[Burst]) -> tuple[Burst, ...]:
-    """The bursts, those longer than MAX_PIECE_SAMPLES cut into equal consecutive parts, all
+def _parts(bursts: Sequence[Burst]) -> tuple[Burst, ...]:
+    """The bursts, those longer than MAX_PART_SAMPLES cut into equal consecutive parts, all
     numbered again in order."""
     out = []
     for b in bursts:
         n = b.stop_sample - b.start_sample
-        k = -(-n // MAX_PIECE_SAMPLES)
+        k = -(-n // MAX_PART_SAMPLES)
         edges = [b.start_sample + (n * i) // k for i in range(k + 1)]
         for j in range(k):
             out.append(
@@ -124,8 +124,8 @@ def _pieces(bursts: Sequence[Burst]) -> tuple[Burst, ...]:
                     index=len(out),
                     start_sample=edges[j],
                     stop_sample=edges[j + 1],
-                    piece=j,
-                    pieces=k,
+                    part=j,
+                    parts=k,
                 )  # fmt: skip
             )
     return tuple(out)

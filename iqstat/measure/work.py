@@ -137,7 +137,7 @@ def _unmeasured(
         predicted_ber=None,
         flags=(flag,),
         message=message,
-        piece=burst.piece,
+        part=burst.part,
     )
 
 

@@ -243,10 +243,10 @@ def _burst_notes(bursts) -> list[str]:
 
 
 def _transmission_notes(bursts) -> list[str]:
-    """One line per transmission measured in parts (consecutive pieces 0, 1, …)."""
+    """One line per transmission measured in parts (consecutive parts 0, 1, …)."""
     lines, run = [], []
     for b in [*bursts, None]:
-        if b is not None and run and b.piece == run[-1].piece + 1:
+        if b is not None and run and b.part == run[-1].part + 1:
             run.append(b)
             continue
         if len(run) > 1:
@@ -254,7 +254,7 @@ def _transmission_notes(bursts) -> list[str]:
                 f"  bursts {run[0].index}–{run[-1].index}: one transmission, measured in "
                 f"{len(run)} parts"
             )
-        run = [b] if b is not None and b.piece == 0 else []
+        run = [b] if b is not None and b.part == 0 else []
     return lines
 
 
